@@ -1,0 +1,67 @@
+"""Per-Volume shared state: results computed once and reused by several analysers."""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+from app.io.volume import Volume
+
+
+@dataclass
+class AnalysisContext:
+    """What analysers share while one Volume is analysed.
+
+    Attributes
+    ----------
+    volume : Volume
+    workers : int
+        Threads for ``scipy.fft`` (``workers=``).
+    batch : int
+        Frames per slice batch when streaming through the volume.
+    max_frames : int or None
+        Upper bound on frames analysed; when the volume has more, an evenly spaced
+        subset is used and the report states it.
+    options : dict
+        Reader/CLI options (``domain``, ``coil_axis``, ``dataset``).
+    notes : list of str
+        Sentences added to the report's warnings (for example a stated subsampling).
+    """
+
+    volume: Volume
+    workers: int = 2
+    batch: int = 16
+    max_frames: int | None = None
+    options: dict[str, Any] = field(default_factory=dict)
+    notes: list[str] = field(default_factory=list)
+    _cache: dict[str, Any] = field(default_factory=dict, repr=False)
+
+    def cached(self, key: str, factory: Callable[[], Any]) -> Any:
+        """Compute ``factory()`` once per Volume under ``key`` and reuse it.
+
+        An exception raised by the factory is cached too and raised again, so a
+        shared step that fails is not recomputed by every analyser.
+        """
+        if key not in self._cache:
+            try:
+                self._cache[key] = (True, factory())
+            except Exception as exc:  # noqa: BLE001 - re-raised to each caller
+                self._cache[key] = (False, exc)
+        ok, value = self._cache[key]
+        if not ok:
+            raise value
+        return value
+
+    def frame_indices(self) -> Any:
+        """Flat frame indices to analyse (all, or an evenly spaced stated subset)."""
+        import numpy as np
+
+        n = self.volume.n_slices
+        if self.max_frames is None or n <= self.max_frames:
+            return np.arange(n)
+        idx = np.unique(np.linspace(0, n - 1, self.max_frames).round().astype(int))
+        note = f"analysed {len(idx)} of {n} frames, evenly spaced"
+        if note not in self.notes:
+            self.notes.append(note)
+        return idx

@@ -1,0 +1,272 @@
+"""Run every registered analyser over a dataset and assemble the report contract.
+
+The contract is in ``shared/REPORT_CONTRACT.md`` (schema ``rawproof.report/1``);
+``app/schema/report.schema.json`` is its machine-checkable form.
+"""
+
+from __future__ import annotations
+
+import importlib
+import pkgutil
+import time
+import traceback
+from collections.abc import Callable
+from typing import Any
+
+import numpy as np
+
+import app
+from app.io.volume import Volume
+from app.traces import base
+from app.traces.context import AnalysisContext
+
+SCHEMA = "rawproof.report/1"
+_SKIP = {"base", "context", "report"}
+_SEVERITY = {"present": 2, "inconclusive": 1, "absent": 0}
+
+ProgressFn = Callable[[str], None]
+
+
+def analysers() -> dict[str, base.Analyser]:
+    """Import every module of ``app.traces`` once and return the registry.
+
+    A new analyser is one new module that calls :func:`app.traces.base.register`;
+    nothing else needs to change.
+    """
+    import app.traces as pkg
+
+    for info in pkgutil.iter_modules(pkg.__path__):
+        if info.name not in _SKIP and not info.name.startswith("_"):
+            importlib.import_module(f"app.traces.{info.name}")
+    return base.registered()
+
+
+def analyser_versions() -> dict[str, str]:
+    """Trace id -> analyser version, stored beside each report."""
+    return {tid: a.version for tid, a in analysers().items()}
+
+
+def verdict_of(traces: dict[str, dict]) -> str:
+    """The contract's verdict rule.
+
+    ``processed`` when any trace is present, ``raw-like`` when every trace is
+    absent, else ``inconclusive``.
+    """
+    statuses = [t["status"] for t in traces.values()]
+    if any(s == "present" for s in statuses):
+        return "processed"
+    if statuses and all(s == "absent" for s in statuses):
+        return "raw-like"
+    return "inconclusive"
+
+
+def _jsonable(obj: Any) -> Any:
+    """Turn numpy scalars/arrays and tuples into plain JSON values (NaN -> None)."""
+    if isinstance(obj, dict):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, list | tuple):
+        return [_jsonable(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return _jsonable(obj.tolist())
+    if isinstance(obj, np.bool_ | bool):
+        return bool(obj)
+    if isinstance(obj, np.integer):
+        return int(obj)
+    if isinstance(obj, np.floating | float):
+        f = float(obj)
+        return None if not np.isfinite(f) else f
+    if isinstance(obj, np.complexfloating | complex):
+        return [float(obj.real), float(obj.imag)]
+    return obj
+
+
+def _header_section(volume: Volume) -> dict[str, Any]:
+    from app.traces import header as header_mod
+
+    declared, notes = header_mod.provenance(volume)
+    return {"declared": declared, "notes": notes}
+
+
+def _input_section(volume: Volume, path: str, fmt: str, n_files: int) -> dict[str, Any]:
+    return {
+        "path": path,
+        "format": fmt,
+        "n_files": int(n_files),
+        "shape": list(volume.shape),
+        "dtype": str(volume.dtype),
+        "domain": volume.domain,
+        "value_type": volume.value_type,
+    }
+
+
+def analyse_volume(
+    volume: Volume,
+    *,
+    path: str = "",
+    fmt: str | None = None,
+    n_files: int | None = None,
+    workers: int = 2,
+    max_frames: int | None = None,
+    options: dict[str, Any] | None = None,
+    progress: ProgressFn | None = None,
+) -> dict[str, Any]:
+    """Run every analyser over one Volume and return a contract report object.
+
+    Parameters
+    ----------
+    volume : Volume
+    path, fmt, n_files
+        What the ``input`` section says; defaults from the Volume.
+    workers : int
+        ``scipy.fft`` workers for the shared spectral step.
+    max_frames : int, optional
+        Analyse at most this many frames (evenly spaced); stated in ``warnings``.
+    options : dict, optional
+        Reader options passed on to analysers through the context.
+    progress : callable, optional
+        Called with one short line per analyser (the CLI prints it to stderr).
+
+    Returns
+    -------
+    dict
+        ``schema``, ``tool_version``, ``input``, ``verdict``, ``traces``,
+        ``header``, ``warnings``, and ``timing`` (seconds per analyser).
+    """
+    ctx = AnalysisContext(
+        volume, workers=workers, max_frames=max_frames, options=dict(options or {})
+    )
+    warnings: list[str] = []
+    try:
+        header = _header_section(volume)
+    except Exception as exc:  # noqa: BLE001 - a header we cannot interpret is not fatal
+        header = {"declared": {}, "notes": [f"header could not be interpreted: {exc}"]}
+    ctx.options.setdefault("header_declared", header["declared"])
+    traces: dict[str, dict] = {}
+    timing: dict[str, float] = {}
+    for tid, an in analysers().items():
+        if progress:
+            progress(f"{volume.name or path}: {tid}")
+        t0 = time.perf_counter()
+        try:
+            trace = an.func(volume, ctx)
+            if trace.id != tid:
+                raise RuntimeError(f"analyser returned trace id {trace.id!r}")
+            missing = set(an.default_estimates) - set(trace.estimates)
+            if missing:
+                raise RuntimeError(f"analyser left out required estimates {sorted(missing)}")
+        except Exception as exc:  # noqa: BLE001 - one failing analyser never sinks a report
+            trace = base.inconclusive(
+                tid,
+                f"The {tid} analyser failed on this input: {exc}",
+                error=f"{type(exc).__name__}: {exc}",
+                traceback=traceback.format_exc(limit=4)[-2000:],
+            )
+        timing[tid] = round(time.perf_counter() - t0, 4)
+        traces[tid] = _jsonable(trace.to_dict())
+    warnings.extend(ctx.notes)
+    report = {
+        "schema": SCHEMA,
+        "tool_version": app.__version__,
+        "input": _input_section(
+            volume, path, fmt or volume.format, n_files or max(1, len(volume.source_files))
+        ),
+        "verdict": verdict_of(traces),
+        "traces": traces,
+        "header": _jsonable(header),
+        "warnings": warnings,
+        "caution": app.CAUTION,
+        "analyser_versions": {tid: a.version for tid, a in analysers().items()},
+        "timing": timing,
+    }
+    return report
+
+
+def combine_groups(
+    group_reports: list[dict[str, Any]], *, path: str, fmt: str, n_files: int
+) -> dict[str, Any]:
+    """Merge per-group reports of a folder or archive into one contract report.
+
+    Each top-level trace is the most severe one across groups (present over
+    inconclusive over absent), with the group named in its summary and evidence,
+    so the verdict rule still holds; every group's full report is kept under
+    ``groups``.
+    """
+    if len(group_reports) == 1:
+        rep = dict(group_reports[0])
+        rep["input"] = dict(rep["input"], path=path, format=fmt, n_files=n_files)
+        return rep
+    traces: dict[str, dict] = {}
+    for g in group_reports:
+        gname = g.get("group", "")
+        for tid, t in g["traces"].items():
+            best = traces.get(tid)
+            if best is None or _SEVERITY[t["status"]] > _SEVERITY[best["status"]] or (
+                _SEVERITY[t["status"]] == _SEVERITY[best["status"]]
+                and t["confidence"] > best["confidence"]
+            ):
+                merged = dict(t)
+                merged["summary"] = f"[{gname}] {t['summary']}" if gname else t["summary"]
+                merged["evidence"] = dict(t["evidence"], group=gname)
+                traces[tid] = merged
+    first = max(group_reports, key=lambda g: int(np.prod(g["input"]["shape"])))
+    warnings = [f"[{g.get('group', '')}] {w}" for g in group_reports for w in g["warnings"]]
+    notes = [f"[{g.get('group', '')}] {n}" for g in group_reports for n in g["header"]["notes"]]
+    declared = {g.get("group", str(i)): g["header"]["declared"] for i, g in enumerate(group_reports)}
+    return {
+        "schema": SCHEMA,
+        "tool_version": app.__version__,
+        "input": dict(first["input"], path=path, format=fmt, n_files=n_files),
+        "verdict": verdict_of(traces),
+        "traces": traces,
+        "header": {"declared": declared, "notes": notes},
+        "warnings": warnings,
+        "caution": app.CAUTION,
+        "analyser_versions": first.get("analyser_versions", {}),
+        "groups": group_reports,
+    }
+
+
+def analyse_path(
+    path: str,
+    *,
+    domain: str | None = None,
+    coil_axis: int | None = None,
+    dataset: str | None = None,
+    workers: int = 2,
+    max_frames: int | None = None,
+    limits: Any = None,
+    progress: ProgressFn | None = None,
+) -> dict[str, Any]:
+    """Read a file, folder or zip and return its contract report.
+
+    Raises
+    ------
+    app.errors.InputError
+        When the input cannot be read (the CLI turns it into exit code 2).
+    """
+    from app.io import open_input
+
+    options = {"domain": domain, "coil_axis": coil_axis, "dataset": dataset}
+    with open_input(
+        path, domain=domain, coil_axis=coil_axis, dataset=dataset, limits=limits
+    ) as loaded:
+        group_reports = []
+        for vol in loaded.volumes:
+            rep = analyse_volume(
+                vol,
+                path=path,
+                fmt=vol.format,
+                n_files=max(1, len(vol.source_files)),
+                workers=workers,
+                max_frames=max_frames,
+                options=options,
+                progress=progress,
+            )
+            rep["group"] = vol.name or vol.format
+            rep["source_files"] = [str(f) for f in vol.source_files[:50]]
+            group_reports.append(rep)
+        report = combine_groups(
+            group_reports, path=path, fmt=loaded.format, n_files=loaded.n_files
+        )
+        report["warnings"] = list(loaded.warnings) + report["warnings"]
+    return report
