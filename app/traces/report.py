@@ -21,7 +21,7 @@ from app.traces import base
 from app.traces.context import AnalysisContext
 
 SCHEMA = "rawproof.report/1"
-_SKIP = {"base", "context", "report"}
+_SKIP = {"base", "context", "report", "previews", "jpeg_tables", "header"}
 _SEVERITY = {"present": 2, "inconclusive": 1, "absent": 0}
 
 ProgressFn = Callable[[str], None]
@@ -236,8 +236,13 @@ def analyse_path(
     max_frames: int | None = None,
     limits: Any = None,
     progress: ProgressFn | None = None,
+    previews: dict[str, Any] | None = None,
 ) -> dict[str, Any]:
     """Read a file, folder or zip and return its contract report.
+
+    With ``previews`` (a dict), each group's preview images (small uint8 slices
+    and their log spectra, from :func:`app.traces.previews.make_previews`) are put
+    in it under the group name, for the web app's slice viewer.
 
     Raises
     ------
@@ -265,6 +270,10 @@ def analyse_path(
             rep["group"] = vol.name or vol.format
             rep["source_files"] = [str(f) for f in vol.source_files[:50]]
             group_reports.append(rep)
+            if previews is not None:
+                from app.traces.previews import make_previews
+
+                previews[rep["group"]] = make_previews(vol)
         report = combine_groups(
             group_reports, path=path, fmt=loaded.format, n_files=loaded.n_files
         )
