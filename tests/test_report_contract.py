@@ -1,0 +1,158 @@
+"""The report mechanism and the contract of shared/REPORT_CONTRACT.md.
+
+These check the project's own public interface (the contract is the reference),
+not an analyser's numbers; analyser accuracy is tested beside each analyser.
+"""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+import jsonschema
+import numpy as np
+import pytest
+
+from app.cli import main
+from app.io.volume import Volume
+from app.schema import report_schema
+from app.traces import base
+from app.traces.report import analyse_path, analyse_volume, combine_groups, verdict_of
+
+VALIDATOR = jsonschema.Draft202012Validator(report_schema())
+
+
+def _validate(obj: dict) -> None:
+    errors = sorted(VALIDATOR.iter_errors(obj), key=lambda e: list(e.path))
+    assert not errors, [f"{list(e.path)}: {e.message}" for e in errors[:5]]
+
+
+@pytest.mark.parametrize(
+    ("statuses", "verdict"),
+    [
+        (["absent", "absent"], "raw-like"),
+        (["absent", "present"], "processed"),
+        (["inconclusive", "present"], "processed"),
+        (["absent", "inconclusive"], "inconclusive"),
+        ([], "inconclusive"),
+    ],
+)
+def test_verdict_rule(statuses, verdict):
+    """REPORT_CONTRACT.md: processed if any present, raw-like if all absent, else inconclusive."""
+    traces = {f"t{i}": {"status": s} for i, s in enumerate(statuses)}
+    assert verdict_of(traces) == verdict
+
+
+def test_one_registered_function_plugs_in(monkeypatch):
+    """DESIGN: an analyser plugs in by registering one function; no other file changes."""
+    monkeypatch.setattr(base, "_REGISTRY", dict(base._REGISTRY))
+
+    @base.register("test_constant_image", default_estimates={"value": None})
+    def _constant(volume, ctx):
+        arr = volume.to_array()
+        flat = bool(np.ptp(arr) == 0)
+        return base.Trace("test_constant_image", "present" if flat else "absent", 1.0,
+                          "constant" if flat else "varies", {"value": float(arr.flat[0])})
+
+    rep = analyse_volume(Volume.from_array(np.full((2, 8, 8), 3.0)))
+    assert rep["traces"]["test_constant_image"]["status"] == "present"
+    assert rep["traces"]["test_constant_image"]["estimates"]["value"] == 3.0
+    assert rep["verdict"] == "processed"
+    _validate(rep)
+
+
+def test_failing_analyser_gives_inconclusive_with_error(monkeypatch):
+    """A failing analyser yields an inconclusive trace with the error, never a crash."""
+    monkeypatch.setattr(base, "_REGISTRY", dict(base._REGISTRY))
+
+    @base.register("test_broken", default_estimates={"rows": None})
+    def _broken(volume, ctx):
+        raise ZeroDivisionError("deliberate")
+
+    rep = analyse_volume(Volume.from_array(np.ones((8, 8))))
+    t = rep["traces"]["test_broken"]
+    assert t["status"] == "inconclusive"
+    assert "ZeroDivisionError" in t["evidence"]["error"]
+    assert t["estimates"] == {"rows": None}
+    assert rep["verdict"] != "raw-like"
+
+
+def test_analyser_missing_required_estimates_is_caught(monkeypatch):
+    monkeypatch.setattr(base, "_REGISTRY", dict(base._REGISTRY))
+
+    @base.register("test_incomplete", default_estimates={"needed": None})
+    def _incomplete(volume, ctx):
+        return base.Trace("test_incomplete", "absent", 0.9, "forgot a key", {})
+
+    rep = analyse_volume(Volume.from_array(np.ones((8, 8))))
+    assert rep["traces"]["test_incomplete"]["status"] == "inconclusive"
+    assert "needed" in rep["traces"]["test_incomplete"]["summary"]
+
+
+def test_shared_step_runs_once_per_volume(monkeypatch):
+    """Analysers share results through AnalysisContext.cached (computed once per Volume)."""
+    monkeypatch.setattr(base, "_REGISTRY", dict(base._REGISTRY))
+    calls = []
+
+    def shared(ctx):
+        return ctx.cached("test_shared", lambda: calls.append(1) or 42)
+
+    for name in ("test_a", "test_b"):
+        def fn(volume, ctx, name=name):
+            return base.Trace(name, "absent", 1.0, f"shared {shared(ctx)}", {})
+        base.register(name)(fn)
+    analyse_volume(Volume.from_array(np.ones((8, 8))))
+    assert calls == [1]
+
+
+def test_group_merge_keeps_most_severe_and_verdict_rule():
+    g1 = {"group": "a", "input": {"shape": [2, 8, 8]}, "warnings": [], "header": {"declared": {}, "notes": []},
+          "traces": {"x": {"status": "absent", "confidence": 0.9, "summary": "s", "estimates": {}, "evidence": {}}}}
+    g2 = {"group": "b", "input": {"shape": [4, 8, 8]}, "warnings": ["w"], "header": {"declared": {}, "notes": []},
+          "traces": {"x": {"status": "present", "confidence": 0.5, "summary": "p", "estimates": {}, "evidence": {}}}}
+    rep = combine_groups([g1, g2], path="p", fmt="folder", n_files=2)
+    assert rep["traces"]["x"]["status"] == "present"
+    assert rep["traces"]["x"]["evidence"]["group"] == "b"
+    assert rep["verdict"] == "processed"
+    assert [g["group"] for g in rep["groups"]] == ["a", "b"]
+    assert rep["warnings"] == ["[b] w"]
+
+
+def test_cli_report_is_contract_valid(tmp_path, capsys):
+    """`rawproof analyse PATH --json` prints one contract-valid object; -o writes the same."""
+    p = tmp_path / "scan.npy"
+    np.save(p, np.random.default_rng(0).random((3, 32, 32)).astype(np.float32))
+    out = tmp_path / "r.json"
+    assert main(["analyse", str(p), "--json", "-o", str(out), "--quiet"]) == 0
+    printed = json.loads(capsys.readouterr().out)
+    assert printed == json.loads(out.read_text())
+    _validate(printed)
+    assert printed["input"]["shape"] == [3, 32, 32]
+    assert printed["input"]["format"] == "npy"
+    assert "not a medical device" in printed["caution"]
+
+
+def test_unreadable_input_exit_code_2_and_error_object(tmp_path):
+    """Contract: exit code 2, the error object on stdout, one human line on stderr."""
+    proc = subprocess.run(
+        [sys.executable, "-m", "app.cli", "analyse", str(tmp_path / "missing.dcm"), "--json"],
+        capture_output=True, text=True, check=False,
+    )
+    assert proc.returncode == 2
+    obj = json.loads(proc.stdout)
+    _validate(obj)
+    assert obj["error"]["code"]
+    assert "Traceback" not in proc.stderr
+    assert len(proc.stderr.strip().splitlines()) == 1
+
+
+def test_sidecar_sets_domain(tmp_path):
+    """Contract: scan.npy beside scan.json holding {"domain": "kspace", "coil_axis": 0}."""
+    p = tmp_path / "scan.npy"
+    np.save(p, (np.ones((4, 16, 16)) + 1j).astype(np.complex64))
+    (tmp_path / "scan.json").write_text('{"domain": "kspace", "coil_axis": 0}')
+    rep = analyse_path(str(p))
+    assert rep["input"]["domain"] == "kspace"
+    assert rep["input"]["value_type"] == "complex"
+    _validate(rep)
