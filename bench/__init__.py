@@ -1,0 +1,1 @@
+"""rawproof benchmarks: `python -m bench` (performance) and accuracy scripts."""
