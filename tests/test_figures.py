@@ -1,0 +1,237 @@
+"""Evidence figures (app/web/figures.py): what is drawn matches the evidence.
+
+The evidence dicts are built here from synthetic truths (demo_data/synth.py)
+and from outside references: scipy.stats densities (Rayleigh, chi), the
+standard luminance table of ITU-T T.81 Annex K scaled as libjpeg does
+(app/traces/jpeg_tables.scaled_table, itself checked against Pillow's encoder
+in its own tests). Each test inspects the matplotlib artists, so a figure that
+draws the wrong edge, table or curve fails; the PNG tests decode the bytes with
+Pillow and require a non-blank picture.
+"""
+
+from __future__ import annotations
+
+import io
+
+import numpy as np
+import pytest
+import scipy.stats as st
+from matplotlib.patches import Rectangle
+from PIL import Image
+
+from app.traces.jpeg_tables import scaled_table
+from app.web import figures
+from demo_data import synth
+
+
+def _profile_db(kspace: np.ndarray, axis: int) -> np.ndarray:
+    other = tuple(a for a in range(kspace.ndim) if a != axis)
+    e = (np.abs(kspace) ** 2).sum(axis=other)
+    return 10 * np.log10(e + 1e-30)
+
+
+@pytest.fixture(scope="module")
+def zf_report() -> dict:
+    """Truth: 96 x 64 acquired, zero-filled to 96 x 128 (cols support 32..95), one slice."""
+    img = synth.acquire((96, 64), n_coils=1, n_slices=1, seed=5)[0, 0]
+    k = synth.zero_fill(synth.to_kspace(img), (96, 128))
+    prof_r, prof_c = _profile_db(k, 0), _profile_db(k, 1)
+    power = 10 * np.log10(np.abs(k) ** 2 + 1e-30)
+    step = 2
+    pmap = power.reshape(48, 2, 64, 2).mean(axis=(1, 3))
+    return {
+        "input": {"shape": [1, 96, 128]},
+        "traces": {
+            "zero_filling": {
+                "status": "present", "confidence": 0.9, "summary": "s", "estimates": {},
+                "evidence": {
+                    "profiles_db": {"rows": prof_r.tolist(), "cols": prof_c.tolist()},
+                    "edges": {"rows": None, "cols": [32, 95]},
+                    "drop_db": {"rows": None, "cols": 250.0},
+                    "noise_floor_db": {"rows": float(np.median(prof_r)), "cols": -300.0},
+                    "spectrum_map_db": pmap.tolist(),
+                    "spectrum_map_step": [step, step],
+                    "spectrum_slice": 0,
+                },
+            },
+        },
+    }
+
+
+def _decode(png: bytes) -> np.ndarray:
+    im = Image.open(io.BytesIO(png))
+    im.load()
+    assert im.format == "PNG"
+    return np.asarray(im.convert("L"))
+
+
+def test_spectrum_map_outlines_truth_support(zf_report: dict) -> None:
+    """The outline spans columns 32..95 of 128 (k = -32.5 .. 31.5 from centre) and
+    the full 96 rows, because the row axis had no detected edge. Tolerance 1e-9."""
+    fig = figures.build_spectrum_map(zf_report)
+    ax = fig.axes[0]
+    rects = [p for p in ax.patches if isinstance(p, Rectangle)]
+    assert rects, "no support outline"
+    r = rects[-1]
+    assert r.get_x() == pytest.approx(32 - 64 - 0.5)
+    assert r.get_width() == pytest.approx(64.0)
+    assert r.get_y() == pytest.approx(-48 - 0.5)
+    assert r.get_height() == pytest.approx(96.0)
+    assert "dB" in fig.axes[1].get_ylabel()
+    assert "samples" in ax.get_xlabel() and "samples" in ax.get_ylabel()
+
+
+def test_profiles_plot_measured_energy_and_edges(zf_report: dict) -> None:
+    """The plotted profile is the evidence itself, and the edge lines sit at the
+    truth edges (32 and 95, i.e. -32 and +31 from the centre)."""
+    fig = figures.build_kspace_profiles(zf_report)
+    ax_rows, ax_cols = fig.axes[:2]
+    ev = zf_report["traces"]["zero_filling"]["evidence"]
+    line = ax_cols.get_lines()[0]
+    np.testing.assert_allclose(line.get_ydata(), ev["profiles_db"]["cols"])
+    np.testing.assert_allclose(line.get_xdata(), np.arange(128) - 64)
+    vlines = sorted(ln.get_xdata()[0] for ln in ax_cols.get_lines()[1:]
+                    if len(set(ln.get_xdata())) == 1 and ln.get_linestyle() == "--")
+    assert vlines == [-32, 31]
+    texts = " ".join(t.get_text() for t in ax_cols.texts)
+    assert "250.0 dB" in texts
+    assert "dB" in ax_rows.get_ylabel() and "samples" in ax_rows.get_xlabel()
+
+
+def test_profiles_with_downsampled_profile_scale_to_samples() -> None:
+    """A 2048-sample axis whose profile was averaged to 1024 points is drawn on
+    the original sample scale (-1024 .. 1022 in steps of 2)."""
+    rep = {"input": {"shape": [2048, 2048]}, "traces": {"kspace_filtering": {"evidence": {
+        "profiles_db": {"cols": list(np.linspace(0, 1, 1024))},
+        "fits": {"cols": {"window": "hann", "param": None,
+                          "curve_db": list(np.linspace(0, 1, 1024)), "error": 0.1}}}}}}
+    fig = figures.build_kspace_profiles(rep)
+    x = fig.axes[0].get_lines()[0].get_xdata()
+    assert x[0] == -1024 and x[-1] == 1022
+    labels = [ln.get_label() for ln in fig.axes[0].get_lines()]
+    assert "fitted hann" in labels
+
+
+def test_background_densities_match_scipy_and_mark_choice() -> None:
+    """Truth: magnitude of 8-channel root-sum-of-squares noise, sigma = 1, i.e. a
+    central chi law with 8 channels (scipy.stats.chi(df=16, scale=1)) -- the
+    chosen law; Rayleigh from scipy.stats.rayleigh. The drawn curves are these
+    densities exactly, and the chosen one is drawn thickest with L in its label."""
+    rng = np.random.default_rng(0)
+    samples = np.sqrt((rng.standard_normal((20000, 16)) ** 2).sum(1))
+    counts, edges = np.histogram(samples, bins=60, density=True)
+    x = np.linspace(edges[0], edges[-1], 200)
+    chi = st.chi(df=16).pdf(x)
+    ray = st.rayleigh(scale=samples.mean() / np.sqrt(np.pi / 2)).pdf(x)
+    rep = {"traces": {"coil_combination": {"evidence": {
+        "histogram": {"edges": edges.tolist(), "counts": counts.tolist()},
+        "density_x": x.tolist(),
+        "densities": {"gaussian": None, "rayleigh": ray.tolist(), "noncentral_chi": chi.tolist()},
+        "chosen": "noncentral_chi", "effective_channels": 8, "sigma": 1.0,
+        "statistics": {"rayleigh": {"statistic": 0.3, "p_value": 1e-9},
+                       "noncentral_chi": {"statistic": 0.01, "p_value": 0.6}},
+        "n_background": 20000}}}}
+    fig = figures.build_background_noise(rep)
+    ax = fig.axes[0]
+    lines = {ln.get_label(): ln for ln in ax.get_lines()}
+    chosen = [lbl for lbl in lines if "[chosen]" in lbl]
+    assert len(chosen) == 1 and "L = 8" in chosen[0] and "non-central chi" in chosen[0]
+    np.testing.assert_allclose(lines[chosen[0]].get_ydata(), chi)
+    ray_lbl = next(lbl for lbl in lines if lbl.startswith("Rayleigh"))
+    np.testing.assert_allclose(lines[ray_lbl].get_ydata(), ray)
+    assert lines[chosen[0]].get_linewidth() > lines[ray_lbl].get_linewidth()
+    assert lines[chosen[0]].get_linestyle() != lines[ray_lbl].get_linestyle()
+    assert not any(lbl.startswith("Gaussian") for lbl in lines)
+    # the histogram is a density: its area is 1 (numpy.histogram(density=True))
+    assert float((np.diff(edges) * counts).sum()) == pytest.approx(1.0, rel=1e-9)
+
+
+def test_grey_levels_mark_clip_values() -> None:
+    """Truth: an 8-bit image clipped at 0 and 255 (2 % and 1 % of samples)."""
+    counts = np.ones(256)
+    counts[0], counts[255] = 500, 250
+    rep = {"traces": {"intensity_quantization": {"evidence": {
+        "histogram": {"edges": list(np.arange(257) - 0.5), "counts": counts.tolist()},
+        "clipped_low_fraction": 0.02, "clipped_high_fraction": 0.01, "clip_values": [0, 255],
+        "distinct_levels": 256, "stated_bits": 16, "comb_score": 0.1}}}}
+    fig = figures.build_grey_levels(rep)
+    ax = fig.axes[0]
+    v = {ln.get_label(): ln.get_xdata()[0] for ln in ax.get_lines()}
+    assert v["low clip (2.00 % of samples)"] == 0
+    assert v["high clip (1.00 % of samples)"] == 255
+    assert "256 distinct levels" in ax.get_title() and "16-bit" in ax.get_title()
+
+
+def test_block_tables_show_annex_k_at_matched_quality() -> None:
+    """The right-hand table is T.81 Annex K luminance scaled to quality 75
+    (libjpeg scaling); each cell's printed number equals that table's entry."""
+    matched = scaled_table(75)
+    est = matched.astype(float).copy()
+    est[6:, 6:] = np.nan
+    est_list = [[None if np.isnan(v) else float(v) for v in row] for row in est]
+    rep = {"traces": {"lossy_compression": {"estimates": {"quality": 75}, "evidence": {
+        "blocking_signature": {"rows": [3, 1, 1, 1, 1, 1, 1, 1], "cols": [3, 1, 1, 1, 1, 1, 1, 1]},
+        "estimated_table": est_list, "matched_table": matched.tolist(),
+        "fit_error": 0.2, "block_origin": [0, 0]}}}}
+    fig = figures.build_block_signature(rep)
+    ax_sig, ax_est, ax_match = fig.axes[:3]
+    assert "quality 75" in ax_match.get_title()
+    printed = np.array([float(t.get_text()) for t in ax_match.texts]).reshape(8, 8)
+    np.testing.assert_array_equal(printed, matched)
+    est_texts = [t.get_text() for t in ax_est.texts]
+    assert est_texts.count("·") == 4
+    np.testing.assert_allclose(ax_sig.get_lines()[0].get_ydata(), [3, 1, 1, 1, 1, 1, 1, 1])
+
+
+def test_periodicity_marks_peaks() -> None:
+    """Truth: upsampling by 4/3 leaves a residual peak at 1/4 cycle/sample
+    (period 4 samples of the output grid, common practice, no source)."""
+    f = np.linspace(0, 0.5, 101)
+    p = 1 + 20 * np.exp(-((f - 0.25) / 0.005) ** 2)
+    rep = {"traces": {"resampling": {"evidence": {"periodicity": {
+        "cols": {"freq": f.tolist(), "power": p.tolist(), "peaks": [0.25]}}}}}}
+    fig = figures.build_periodicity(rep)
+    marks = [ln for ln in fig.axes[0].get_lines() if ln.get_marker() == "v"]
+    assert marks[0].get_xdata()[0] == pytest.approx(0.25)
+    assert marks[0].get_ydata()[0] == pytest.approx(21.0, rel=1e-3)
+
+
+def test_missing_keys_skip_figures() -> None:
+    """No evidence, wrong shapes, or nulls: the figure is unavailable, not an error."""
+    assert figures.available(None) == []
+    bad = {"traces": {
+        "zero_filling": {"evidence": {"spectrum_map_db": None, "profiles_db": {"rows": []}}},
+        "coil_combination": {"evidence": {"histogram": {"edges": [0, 1], "counts": [1, 2]}}},
+        "lossy_compression": {"evidence": {"blocking_signature": None}},
+        "resampling": {"evidence": {"periodicity": {"rows": {"freq": [0], "power": [1, 2]}}}},
+        "intensity_quantization": {"status": "absent"},
+    }}
+    assert figures.available(bad) == []
+    for name in figures.FIGURES:
+        assert figures.render(name, bad) is None
+    with pytest.raises(KeyError):
+        figures.render("nonexistent", bad)
+
+
+def test_png_decodes_and_is_not_blank(zf_report: dict) -> None:
+    """Rendered PNG bytes decode with Pillow, have a sensible size and real content."""
+    names = [s.name for s in figures.available(zf_report)]
+    assert names == ["spectrum_map", "kspace_profiles"]
+    for name in names:
+        px = _decode(figures.render(name, zf_report))
+        assert px.shape[0] >= 250 and px.shape[1] >= 400
+        assert px.std() > 10 and (px < 128).mean() > 0.01
+
+
+def test_every_spec_has_caption_about_raw_data() -> None:
+    """Every figure says what a raw acquisition would look like instead."""
+    for spec in figures.FIGURES.values():
+        assert "raw" in spec.caption.lower() or "acquired grid" in spec.caption.lower()
+
+
+def test_preview_png_roundtrip() -> None:
+    """A uint8 preview comes back byte-identical from the PNG (lossless)."""
+    a = (np.arange(64 * 48) % 256).astype(np.uint8).reshape(48, 64)
+    np.testing.assert_array_equal(_decode(figures.preview_png(a)), a)
+    with pytest.raises(ValueError):
+        figures.preview_png(np.zeros(5, dtype=np.uint8))
