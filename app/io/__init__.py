@@ -1,21 +1,23 @@
 """Readers: candidate files -> Volume.
 
 Public surface: :func:`open_input` (a file, folder or zip -> groups of Volumes),
-:class:`Volume`, :class:`Header`, :class:`Loaded`.
+:class:`Volume`, :class:`Header`, :class:`Loaded`. One module per family:
+:mod:`app.io.dicom`, :mod:`app.io.nifti`, :mod:`app.io.arrays`,
+:mod:`app.io.hdf5`, :mod:`app.io.raster`, :mod:`app.io.archive`,
+:mod:`app.io.folder`.
 """
 
 from __future__ import annotations
 
 import contextlib
-import json
+import tempfile
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 
-import numpy as np
-
 from app.config import Limits
 from app.errors import InputError
+from app.io.options import ReadOptions
 from app.io.volume import Header, Volume
 
 __all__ = ["Header", "Loaded", "Volume", "open_input"]
@@ -31,6 +33,46 @@ class Loaded:
     warnings: list[str] = field(default_factory=list)
 
 
+def read_file_family(family: str, paths: list[Path], opts: ReadOptions, *,
+                     folder: Path | None = None) -> list[Volume]:
+    """Read files of one reader family (several only for DICOM and image stacks)."""
+    if family == "dicom":
+        from app.io.dicom import read_dicom
+
+        return read_dicom(paths, opts)
+    if family in ("png", "jpeg", "tiff"):
+        from app.io.raster import read_raster
+
+        name = None
+        if len(paths) > 1 and folder is not None:
+            rel = paths[0].parent.relative_to(folder) if paths[0].parent != folder else None
+            name = str(rel) if rel is not None else folder.name
+        return read_raster(paths, opts, name=name)
+    (p,) = paths
+    if family == "nifti":
+        from app.io.nifti import read_nifti
+
+        return read_nifti(p, opts)
+    if family == "npy":
+        from app.io.arrays import read_npy
+
+        return read_npy(p, opts)
+    if family == "npz":
+        from app.io.arrays import read_npz
+
+        return read_npz(p, opts)
+    if family == "hdf5":
+        from app.io.hdf5 import read_hdf5
+
+        return read_hdf5(p, opts)
+    raise InputError("unsupported_format", f"rawproof does not read {p.name}.", str(p))
+
+
+def _single_format(volumes: list[Volume], fallback: str) -> str:
+    formats = {v.format for v in volumes}
+    return formats.pop() if len(formats) == 1 else fallback
+
+
 @contextlib.contextmanager
 def open_input(
     path: str | Path,
@@ -42,7 +84,27 @@ def open_input(
 ) -> Iterator[Loaded]:
     """Open a file, folder or zip archive as groups of Volumes.
 
-    A context manager: temporary extractions (zip) live until it exits.
+    A context manager: temporary extractions (zip) and open HDF5 files live
+    until it exits.
+
+    Parameters
+    ----------
+    path : str or Path
+        A file (``.dcm``, ``.nii``, ``.nii.gz``, ``.npy``, ``.npz``, ``.h5``,
+        ``.png``, ``.jpg``, ``.tif``), a folder, or a ``.zip``.
+    domain : {"image", "kspace"}, optional
+        Overrides what the file or its sidecar says.
+    coil_axis : int, optional
+        Axis of a multi-coil array that holds receive channels.
+    dataset : str, optional
+        HDF5 dataset (or npz array) to analyse.
+    limits : Limits, optional
+
+    Yields
+    ------
+    Loaded
+        ``format`` is the file's format, ``"zip"`` for an archive, ``"folder"``
+        for a folder of mixed content (a folder of one kind has that kind).
 
     Raises
     ------
@@ -50,16 +112,56 @@ def open_input(
         For anything that cannot be read, with a code and a message a person can act on.
     """
     p = Path(path)
+    if domain is not None and domain not in ("image", "kspace"):
+        raise InputError("bad_option", f"domain must be 'image' or 'kspace', not {domain!r}")
     if not p.exists():
         raise InputError("not_found", f"No such file or folder: {p}", str(p))
-    if p.suffix.lower() == ".npy":
-        arr = np.load(p, mmap_mode="r", allow_pickle=False)
-        side = p.with_suffix(".json")
-        meta = json.loads(side.read_text()) if side.exists() else {}
-        dom = domain or meta.get("domain", "image")
-        cax = coil_axis if coil_axis is not None else meta.get("coil_axis")
-        vol = Volume.from_array(arr, domain=dom, coil_axis=cax, format="npy",
-                                source_files=[str(p)], name=p.stem, header=Header())
-        yield Loaded([vol], "npy", 1)
-        return
-    raise InputError("unsupported_format", f"rawproof cannot read {p.name} yet", str(p))
+    with contextlib.ExitStack() as stack:
+        opts = ReadOptions(domain=domain, coil_axis=coil_axis, dataset=dataset,
+                           limits=limits or Limits(), stack=stack)
+        if p.is_dir():
+            from app.io.folder import read_folder
+
+            volumes, n_files = read_folder(p, opts)
+            fmt = _single_format(volumes, "folder")
+            yield Loaded(volumes, fmt, n_files, opts.warnings)
+            return
+        loaded = _open_file(p, opts, stack)
+        yield loaded
+
+
+def _open_file(p: Path, opts: ReadOptions, stack: contextlib.ExitStack) -> Loaded:
+    from app.io.formats import family_of
+
+    try:
+        size = p.stat().st_size
+    except OSError as exc:
+        raise InputError("unreadable", f"{p.name} cannot be read: {exc}", str(p)) from exc
+    if size == 0:
+        raise InputError("empty_file", f"{p.name} is empty (0 bytes).", str(p))
+    family = family_of(p)
+    if family is None:
+        raise InputError("unsupported_format", f"rawproof does not read {p.name}: give a .dcm, "
+                         ".nii, .nii.gz, .npy, .npz, .h5, .png, .jpg, .tif file, a folder or "
+                         "a .zip.", str(p))
+    if family == "zip":
+        from app.io.archive import extract_zip
+        from app.io.folder import read_folder
+
+        tmp = Path(stack.enter_context(tempfile.TemporaryDirectory(prefix="rawproof-zip-")))
+        opts.warnings.extend(extract_zip(p, tmp, opts.limits))
+        if not any(tmp.iterdir()):
+            raise InputError("empty", f"{p.name} holds no file to analyse.", str(p))
+        volumes, n_files = read_folder(tmp, opts)
+        for v in volumes:
+            v.source_files = [_relabel(f, tmp, p) for f in v.source_files]
+        return Loaded(volumes, "zip", n_files, opts.warnings)
+    volumes = read_file_family(family, [p], opts)
+    return Loaded(volumes, volumes[0].format, 1, opts.warnings)
+
+
+def _relabel(f: str, tmp: Path, archive: Path) -> str:
+    try:
+        return f"{archive}:{Path(f).relative_to(tmp).as_posix()}"
+    except ValueError:
+        return f

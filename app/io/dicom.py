@@ -1,0 +1,520 @@
+"""DICOM reader: files -> one Volume per series (or per multi-frame file).
+
+Each file is read once. Slices are ordered by ImagePositionPatient projected on
+the slice normal (the cross product of the two ImageOrientationPatient
+direction cosines), else by InstanceNumber, and stacked into one preallocated
+array of *stored* values; RescaleSlope/RescaleIntercept go to ``Volume.scale``
+and ``Volume.offset``. Compressed transfer syntaxes are decoded by pydicom's
+pixel handlers (pylibjpeg plugins for JPEG, JPEG-LS, JPEG 2000 and RLE).
+
+References
+----------
+NEMA PS3.3 (DICOM Information Object Definitions), C.7.6.2 Image Plane Module
+(ImagePositionPatient, ImageOrientationPatient), C.7.6.1 General Image Module
+(ImageType, LossyImageCompression), C.8.3.1 MR Image Module (AcquisitionMatrix,
+InPlanePhaseEncodingDirection, PercentPhaseFieldOfView, PercentSampling).
+NEMA PS3.5, Section 8.2 and Annex A.4 (encapsulated transfer syntaxes).
+"""
+
+from __future__ import annotations
+
+import warnings as _warnings
+from collections import defaultdict
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from app.errors import InputError
+from app.io.jpeg_markers import parse_jpeg_markers
+from app.io.options import ReadOptions, check_array_bytes
+from app.io.volume import Header, Volume
+
+#: Transfer syntaxes whose pixel data went through a lossy coder (PS3.5 / PS3.6).
+LOSSY_TRANSFER_SYNTAXES = {
+    "1.2.840.10008.1.2.4.50": "JPEG baseline (process 1)",
+    "1.2.840.10008.1.2.4.51": "JPEG extended (processes 2 and 4)",
+    "1.2.840.10008.1.2.4.81": "JPEG-LS near-lossless",
+    "1.2.840.10008.1.2.4.91": "JPEG 2000 (may be irreversible)",
+    "1.2.840.10008.1.2.4.93": "JPEG 2000 Part 2 multi-component (may be irreversible)",
+    "1.2.840.10008.1.2.4.100": "MPEG2 main profile",
+    "1.2.840.10008.1.2.4.101": "MPEG2 main profile high level",
+    "1.2.840.10008.1.2.4.102": "MPEG-4 AVC/H.264",
+    "1.2.840.10008.1.2.4.103": "MPEG-4 AVC/H.264 BD-compatible",
+    "1.2.840.10008.1.2.4.110": "JPEG XL",
+    "1.2.840.10008.1.2.4.112": "JPEG XL JPEG recompression",
+    "1.2.840.10008.1.2.4.203": "High-Throughput JPEG 2000 (may be irreversible)",
+}
+#: Transfer syntaxes that carry a JPEG (ITU-T T.81) stream with quantisation tables.
+JPEG_DCT_TRANSFER_SYNTAXES = {"1.2.840.10008.1.2.4.50", "1.2.840.10008.1.2.4.51"}
+
+_RAW_SKIP = {"PixelData", "FloatPixelData", "DoubleFloatPixelData", "OverlayData"}
+
+
+class UndecodablePixelsError(InputError):
+    """Pixel data no installed decoder can read; the header evidence is attached.
+
+    Attributes
+    ----------
+    header : Header
+        The normalised header fields (declared compression, stored JPEG tables).
+    """
+
+    def __init__(self, message: str, path: str, header: Header) -> None:
+        super().__init__("undecodable_pixels", message, path)
+        self.header = header
+
+
+@dataclass
+class _Item:
+    path: Path
+    ds: Any
+
+
+def is_dicom_file(path: Path) -> bool:
+    """True when the file has the DICOM preamble magic ``DICM`` at byte 128."""
+    try:
+        with open(path, "rb") as fh:
+            head = fh.read(132)
+    except OSError:
+        return False
+    return len(head) == 132 and head[128:132] == b"DICM"
+
+
+def _text(value: Any) -> str:
+    s = str(value)
+    return s if len(s) <= 200 else s[:197] + "..."
+
+
+def _float_or_none(value: Any) -> float | None:
+    if value is None or value == "":
+        return None
+    if not isinstance(value, str | bytes) and hasattr(value, "__len__"):
+        if len(value) == 0:
+            return None
+        value = value[0]
+    try:
+        return float(value)
+    except (TypeError, ValueError):
+        return None
+
+
+def _int_or_none(value: Any) -> int | None:
+    f = _float_or_none(value)
+    return None if f is None else int(f)
+
+
+def _read_dataset(path: Path) -> Any:
+    import pydicom
+    from pydicom.errors import InvalidDicomError
+
+    try:
+        with _warnings.catch_warnings():
+            _warnings.simplefilter("ignore")
+            ds = pydicom.dcmread(str(path), defer_size="1 MB")
+    except InvalidDicomError as exc:
+        raise InputError(
+            "unreadable", f"{path.name} is not a DICOM file: {exc}", str(path)
+        ) from exc
+    except Exception as exc:  # noqa: BLE001 - pydicom raises many types on damaged files
+        raise InputError(
+            "truncated_dicom",
+            f"{path.name} could not be parsed as DICOM (damaged or truncated): {exc}",
+            str(path),
+        ) from exc
+    if "PixelData" not in ds and "FloatPixelData" not in ds and "DoubleFloatPixelData" not in ds:
+        raise InputError(
+            "no_pixel_data",
+            f"{path.name} is a DICOM file without image pixels "
+            f"(SOP class {ds.get('SOPClassUID', 'unknown')}); give image files.",
+            str(path),
+        )
+    return ds
+
+
+def _transfer_syntax(ds: Any) -> str:
+    meta = getattr(ds, "file_meta", None)
+    uid = meta.get("TransferSyntaxUID") if meta is not None else None
+    return str(uid) if uid is not None else "1.2.840.10008.1.2"
+
+
+def _jpeg_tables(ds: Any) -> tuple[list[list[int]], dict[str, Any]]:
+    """Quantisation tables of the first encapsulated JPEG frame (natural order)."""
+    from pydicom.encaps import generate_frames
+
+    try:
+        n_frames = int(ds.get("NumberOfFrames", 1) or 1)
+        frame = next(generate_frames(ds.PixelData, number_of_frames=n_frames))
+        m = parse_jpeg_markers(frame)
+    except Exception:  # noqa: BLE001 - a stream we cannot parse simply has no table evidence
+        return [], {}
+    lum = m.luminance_table()
+    order = sorted(m.tables)
+    if lum is not None:
+        order = sorted(order, key=lambda k: m.tables[k] is not lum)
+    tables = [m.tables[k].reshape(64).astype(int).tolist() for k in order]
+    return tables, {"jpeg_process": m.process, "jpeg_precision": m.precision}
+
+
+def header_fields(ds: Any) -> Header:
+    """Normalised provenance fields and a raw summary of one dataset.
+
+    Parameters
+    ----------
+    ds : pydicom.Dataset
+
+    Returns
+    -------
+    Header
+        ``fields`` uses the keys documented in :class:`app.io.volume.Header`.
+    """
+    from pydicom.uid import UID
+
+    f: dict[str, Any] = {}
+    ts = _transfer_syntax(ds)
+    f["transfer_syntax"] = ts
+    try:
+        f["transfer_syntax_name"] = UID(ts).name
+    except Exception:  # noqa: BLE001
+        f["transfer_syntax_name"] = ts
+    it = ds.get("ImageType")
+    if it is not None:
+        vals = [str(v) for v in (it if not isinstance(it, str) else it.split("\\"))]
+        f["image_type"] = vals
+    lic = ds.get("LossyImageCompression")
+    if lic is not None and str(lic).strip() != "":
+        f["lossy_compression"] = str(lic).strip() == "01"
+    ratio = ds.get("LossyImageCompressionRatio")
+    if ratio not in (None, ""):
+        vals = ratio if not isinstance(ratio, str | float | int) else [ratio]
+        try:
+            f["lossy_ratio"] = float(list(vals)[0])
+        except (TypeError, ValueError, IndexError):
+            pass
+    method = ds.get("LossyImageCompressionMethod")
+    if method not in (None, ""):
+        m = method if isinstance(method, str) else "\\".join(str(v) for v in method)
+        f["lossy_method"] = m
+    am = ds.get("AcquisitionMatrix")
+    if am is not None and len(am) == 4:
+        f["acquisition_matrix"] = [int(v) for v in am]
+    f["rows"] = int(ds.get("Rows", 0) or 0)
+    f["columns"] = int(ds.get("Columns", 0) or 0)
+    for key, name in (
+        ("InPlanePhaseEncodingDirection", "phase_encoding_direction"),
+        ("DerivationDescription", "derivation_description"),
+        ("Modality", "modality"),
+        ("Manufacturer", "manufacturer"),
+        ("PhotometricInterpretation", "photometric_interpretation"),
+    ):
+        v = ds.get(key)
+        if v not in (None, ""):
+            f[name] = str(v).strip()
+    for key, name in (("PercentPhaseFieldOfView", "percent_phase_fov"),
+                      ("PercentSampling", "percent_sampling"),
+                      ("RescaleSlope", "rescale_slope"),
+                      ("RescaleIntercept", "rescale_intercept")):
+        v = _float_or_none(ds.get(key))
+        if v is not None:
+            f[name] = v
+    for key, name in (("BitsStored", "bits_stored"), ("BitsAllocated", "bits_allocated"),
+                      ("PixelRepresentation", "pixel_representation"),
+                      ("SamplesPerPixel", "samples_per_pixel")):
+        v = _int_or_none(ds.get(key))
+        if v is not None:
+            f[name] = v
+    ps = ds.get("PixelSpacing")
+    if ps is not None and len(ps) == 2:
+        f["pixel_spacing"] = [float(ps[0]), float(ps[1])]
+    if ts in JPEG_DCT_TRANSFER_SYNTAXES and "PixelData" in ds:
+        tables, extra = _jpeg_tables(ds)
+        if tables:
+            f["jpeg_quant_tables"] = tables
+        f.update({k: v for k, v in extra.items() if v is not None})
+    raw: dict[str, Any] = {}
+    for elem in ds:
+        kw = elem.keyword
+        if not kw or kw in _RAW_SKIP or elem.VR == "SQ" or elem.tag.is_private:
+            continue
+        try:
+            raw[kw] = _text(elem.value)
+        except Exception:  # noqa: BLE001
+            continue
+    return Header(fields=f, raw=raw)
+
+
+def read_header_only(path: str | Path) -> Header:
+    """Read one DICOM file's header (and its JPEG tables) without decoding pixels.
+
+    Parameters
+    ----------
+    path : str or Path
+
+    Returns
+    -------
+    Header
+
+    Raises
+    ------
+    InputError
+        When the file is not DICOM or is damaged.
+    """
+    return header_fields(_read_dataset(Path(path)))
+
+
+def _undecodable(item: _Item, exc: Exception) -> UndecodablePixelsError:
+    from app.traces.jpeg_tables import match_quality
+
+    hdr = header_fields(item.ds)
+    f = hdr.fields
+    parts = [f"{item.path.name}: the pixel data ({f.get('transfer_syntax_name')}, "
+             f"{f.get('transfer_syntax')}) could not be decoded by the installed decoders"]
+    declared = []
+    if f.get("lossy_compression") or f.get("transfer_syntax") in LOSSY_TRANSFER_SYNTAXES:
+        declared.append("declared lossy" + (" JPEG" if f.get("transfer_syntax")
+                                             in JPEG_DCT_TRANSFER_SYNTAXES else ""))
+    if f.get("jpeg_quant_tables"):
+        q, _err, exact = match_quality(np.asarray(f["jpeg_quant_tables"][0]).reshape(8, 8))
+        declared.append(f"stored table quality {q}" + ("" if exact else " (nearest IJG quality)"))
+    msg = parts[0] + (f"; header evidence: {', '.join(declared)}" if declared else "")
+    msg += f". Decoder said: {str(exc)[:160]}"
+    return UndecodablePixelsError(msg, str(item.path), hdr)
+
+
+def _pixels(item: _Item) -> np.ndarray:
+    try:
+        with _warnings.catch_warnings():
+            _warnings.simplefilter("ignore")
+            arr = item.ds.pixel_array
+    except (MemoryError, KeyboardInterrupt):
+        raise
+    except Exception as exc:  # noqa: BLE001 - decoders raise many types
+        ts = _transfer_syntax(item.ds)
+        if ts.startswith("1.2.840.10008.1.2.4") or ts == "1.2.840.10008.1.2.5":
+            raise _undecodable(item, exc) from exc
+        raise InputError(
+            "truncated_dicom",
+            f"{item.path.name}: the pixel data could not be read "
+            f"(damaged or truncated file): {exc}",
+            str(item.path),
+        ) from exc
+    return np.asarray(arr)
+
+
+def _normal(ds: Any) -> np.ndarray | None:
+    iop = ds.get("ImageOrientationPatient")
+    if iop is None or len(iop) != 6:
+        return None
+    r = np.asarray([float(v) for v in iop[:3]])
+    c = np.asarray([float(v) for v in iop[3:]])
+    n = np.cross(r, c)
+    norm = np.linalg.norm(n)
+    return None if norm == 0 else n / norm
+
+
+def _order(items: list[_Item]) -> tuple[list[_Item], float | None]:
+    """Sort slices; return them and the slice spacing along the normal (mm)."""
+    normal = _normal(items[0].ds)
+    pos = []
+    for it in items:
+        ipp = it.ds.get("ImagePositionPatient")
+        pos.append(None if ipp is None or len(ipp) != 3 else np.asarray([float(v) for v in ipp]))
+    if normal is not None and all(p is not None for p in pos):
+        proj = np.asarray([float(np.dot(p, normal)) for p in pos])
+        if len(np.unique(np.round(proj, 4))) == len(proj):
+            order = np.argsort(proj, kind="stable")
+            sp = np.diff(proj[order])
+            spacing = float(np.median(np.abs(sp))) if len(sp) else None
+            return [items[i] for i in order], spacing
+    inst = [it.ds.get("InstanceNumber") for it in items]
+    if all(v is not None for v in inst):
+        order = np.argsort([int(v) for v in inst], kind="stable")
+        items = [items[i] for i in order]
+    return items, None
+
+
+def _group_key(ds: Any) -> tuple:
+    n = _normal(ds)
+    orient = tuple(np.round(n, 3)) if n is not None else None
+    return (str(ds.get("SeriesInstanceUID", "")), int(ds.get("Rows", 0) or 0),
+            int(ds.get("Columns", 0) or 0), int(ds.get("SamplesPerPixel", 1) or 1), orient)
+
+
+def _name(ds: Any, path: Path) -> str:
+    num = ds.get("SeriesNumber")
+    desc = str(ds.get("SeriesDescription", "") or "").strip()
+    label = " ".join(s for s in (f"series {num}" if num not in (None, "") else "", desc) if s)
+    return label or path.stem
+
+
+def _luminance(arr: np.ndarray, photometric: str) -> np.ndarray:
+    """BT.601 luma of the RGB pixels pydicom returns (it converts YBR to RGB),
+    rounded back to the stored integer type as Pillow's ``convert("L")`` does."""
+    w = np.asarray([0.299, 0.587, 0.114], dtype=np.float32)
+    y = arr[..., :3].astype(np.float32) @ w
+    if np.issubdtype(arr.dtype, np.integer):
+        info = np.iinfo(arr.dtype)
+        return np.clip(np.rint(y), info.min, info.max).astype(arr.dtype)
+    return y
+
+
+def _declared_bytes(ds: Any) -> int:
+    rows = int(ds.get("Rows", 0) or 0)
+    cols = int(ds.get("Columns", 0) or 0)
+    frames = int(ds.get("NumberOfFrames", 1) or 1)
+    spp = int(ds.get("SamplesPerPixel", 1) or 1)
+    bits = int(ds.get("BitsAllocated", 16) or 16)
+    return rows * cols * frames * spp * max(1, bits // 8)
+
+
+def _stored_range(data: np.ndarray) -> list[float]:
+    if data.size == 0:
+        return []
+    return [float(np.min(data)), float(np.max(data))]
+
+
+def _volume_of(items: list[_Item], opts: ReadOptions) -> Volume:
+    """Stack one series (single-frame files) or wrap one multi-frame file."""
+    spacing_mm: float | None = None
+    if len(items) > 1:
+        items, spacing_mm = _order(items)
+    first = items[0]
+    ds0 = first.ds
+    hdr = header_fields(ds0)
+    photometric = str(first.ds.get("PhotometricInterpretation", "MONOCHROME2"))
+    spp = int(first.ds.get("SamplesPerPixel", 1) or 1)
+    frames = int(first.ds.get("NumberOfFrames", 1) or 1)
+    slopes = {(_float_or_none(it.ds.get("RescaleSlope")) or 1.0,
+               _float_or_none(it.ds.get("RescaleIntercept")) or 0.0) for it in items}
+    if len(items) == 1:
+        arr = _pixels(first)
+        if spp > 1:
+            arr = _luminance(arr, photometric)
+            opts.warnings.append(f"{first.path.name}: colour ({photometric}) pixels were "
+                                 "converted to luminance.")
+        data = arr
+    else:
+        rows, cols = hdr.fields["rows"], hdr.fields["columns"]
+        data = None
+        for k, it in enumerate(items):
+            arr = _pixels(it)
+            if spp > 1:
+                arr = _luminance(arr, photometric)
+            if arr.shape != (rows, cols):
+                raise InputError("inconsistent_series",
+                                 f"{it.path.name} has {arr.shape} pixels where the series "
+                                 f"has {(rows, cols)}.", str(it.path))
+            if data is None:
+                dtype = arr.dtype if len(slopes) == 1 else np.float32
+                data = np.empty((len(items), rows, cols), dtype=dtype)
+            if len(slopes) == 1:
+                data[k] = arr
+            else:
+                s = _float_or_none(it.ds.get("RescaleSlope")) or 1.0
+                o = _float_or_none(it.ds.get("RescaleIntercept")) or 0.0
+                data[k] = arr.astype(np.float32) * s + o
+            if k:
+                it.ds = None  # free each decoded dataset once its pixels are copied
+        if spp > 1:
+            opts.warnings.append(f"{_name(ds0, first.path)}: colour ({photometric}) "
+                                 "pixels were converted to luminance.")
+    assert data is not None
+    if len(slopes) == 1:
+        scale, offset = next(iter(slopes))
+    else:
+        scale, offset = 1.0, 0.0
+        opts.warnings.append(f"{_name(ds0, first.path)}: RescaleSlope/Intercept differ "
+                             "between slices; physical values were computed per slice.")
+    ps = hdr.fields.get("pixel_spacing")
+    if data.ndim == 3 and spacing_mm is None and len(items) == 1 and frames > 1:
+        spacing_mm = _float_or_none(ds0.get("SpacingBetweenSlices")) or _float_or_none(
+            ds0.get("SliceThickness"))
+    elif data.ndim == 3 and spacing_mm is None:
+        spacing_mm = _float_or_none(ds0.get("SpacingBetweenSlices"))
+    spacing = None
+    if ps is not None:
+        spacing = (spacing_mm or float("nan"),) * (data.ndim - 2) + (ps[0], ps[1])
+        spacing = tuple(float(s) for s in spacing)
+    hdr.fields["stored_value_range"] = _stored_range(data)
+    hdr.fields["n_files"] = len(items)
+    domain = opts.domain or "image"
+    return Volume.from_array(
+        data,
+        domain=domain,
+        format="dicom",
+        source_files=[str(it.path) for it in items],
+        header=hdr,
+        scale=float(scale),
+        offset=float(offset),
+        name=_name(ds0, first.path),
+        spacing=spacing,
+        affine=_affine(ds0, spacing_mm),
+    )
+
+
+def _affine(ds: Any, slice_mm: float | None) -> np.ndarray | None:
+    iop = ds.get("ImageOrientationPatient")
+    ipp = ds.get("ImagePositionPatient")
+    ps = ds.get("PixelSpacing")
+    if iop is None or ipp is None or ps is None or len(iop) != 6 or len(ps) != 2:
+        return None
+    r = np.asarray([float(v) for v in iop[:3]])
+    c = np.asarray([float(v) for v in iop[3:]])
+    n = np.cross(r, c)
+    a = np.eye(4)
+    # voxel index order (slice, row, col) -> patient coordinates (PS3.3 C.7.6.2.1.1)
+    a[:3, 2] = r * float(ps[1])
+    a[:3, 1] = c * float(ps[0])
+    a[:3, 0] = n * (slice_mm or 1.0)
+    a[:3, 3] = [float(v) for v in ipp]
+    return a
+
+
+def read_dicom(paths: list[Path], opts: ReadOptions) -> list[Volume]:
+    """Read DICOM files into one Volume per series (each multi-frame file its own).
+
+    Parameters
+    ----------
+    paths : list of Path
+        Files of one or several series, in any order.
+    opts : ReadOptions
+
+    Returns
+    -------
+    list of Volume
+
+    Raises
+    ------
+    InputError
+        Damaged or truncated files, undecodable pixel data
+        (:class:`UndecodablePixelsError`, which carries the header evidence),
+        or more declared pixel data than ``opts.limits`` allows.
+
+    References
+    ----------
+    NEMA PS3.3 C.7.6.2 (slice ordering by position along the normal).
+    """
+    groups: dict[tuple, list[_Item]] = defaultdict(list)
+    singles: list[list[_Item]] = []
+    total = 0
+    for p in paths:
+        ds = _read_dataset(p)
+        total += _declared_bytes(ds)
+        check_array_bytes(total, opts.limits, str(p), "This DICOM input")
+        item = _Item(p, ds)
+        if int(ds.get("NumberOfFrames", 1) or 1) > 1:
+            singles.append([item])
+        else:
+            groups[_group_key(ds)].append(item)
+    out = [_volume_of(items, opts) for items in groups.values()]
+    out += [_volume_of(items, opts) for items in singles]
+    names: dict[str, int] = {}
+    for v in out:
+        names[v.name] = names.get(v.name, 0) + 1
+    seen: dict[str, int] = {}
+    for v in out:
+        if names[v.name] > 1:
+            seen[v.name] = seen.get(v.name, 0) + 1
+            v.name = f"{v.name} #{seen[v.name]}"
+    return out

@@ -1,0 +1,109 @@
+"""HDF5 reader via h5py: one dataset, read lazily.
+
+The dataset is ``opts.dataset`` if given, else one named like k-space
+(``kspace``, ``k_space``; domain k-space), else the largest numeric array with at
+least two dimensions. ``Volume.data`` is the h5py Dataset itself (slicing reads
+only what is asked for); the file stays open in ``opts.stack`` until the caller's
+context manager exits.
+
+References
+----------
+The HDF Group, HDF5 File Format Specification Version 3.0; h5py documentation
+(``Dataset`` slicing reads from disk on demand).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from app.errors import InputError
+from app.io.options import ReadOptions
+from app.io.volume import Header, Volume
+
+
+def _datasets(f: Any) -> dict[str, Any]:
+    import h5py
+
+    found: dict[str, Any] = {}
+
+    def visit(name: str, obj: Any) -> None:
+        if isinstance(obj, h5py.Dataset):
+            found[name] = obj
+
+    f.visititems(visit)
+    return found
+
+
+def _usable(ds: Any) -> bool:
+    dt = np.dtype(ds.dtype)
+    return len(ds.shape) >= 2 and dt.fields is None and dt.kind in "biufc" and min(ds.shape) > 0
+
+
+def _is_kspace_name(name: str) -> bool:
+    leaf = name.rsplit("/", 1)[-1].lower().replace("-", "_")
+    return leaf in ("kspace", "k_space", "ksp", "kdata") or "kspace" in leaf
+
+
+def read_hdf5(path: Path, opts: ReadOptions) -> list[Volume]:
+    """Open one dataset of an HDF5 file as a lazily read Volume.
+
+    Raises
+    ------
+    InputError
+        Not HDF5, no such dataset (the message lists those present), no numeric
+        array of at least two dimensions, or compound (non-native complex) types.
+    """
+    import h5py
+
+    try:
+        f = h5py.File(path, "r")
+    except (OSError, ValueError) as exc:
+        raise InputError("unreadable", f"{path.name} is not a readable HDF5 file: {exc}",
+                         str(path)) from exc
+    opts.stack.callback(f.close)
+    all_ds = _datasets(f)
+    if opts.dataset is not None:
+        key = opts.dataset.strip("/")
+        if key not in all_ds:
+            listed = ", ".join(sorted(all_ds)[:20]) or "none"
+            raise InputError("no_such_dataset", f"{path.name} has no dataset {opts.dataset!r}; "
+                             f"datasets present: {listed}.", str(path))
+        if not _usable(all_ds[key]):
+            ds = all_ds[key]
+            raise InputError("unsupported_dtype", f"{path.name}:{key} has shape "
+                             f"{list(ds.shape)} and type {ds.dtype}; rawproof reads numeric "
+                             "(real or complex) arrays of two or more dimensions.", str(path))
+    else:
+        usable = {k: d for k, d in all_ds.items() if _usable(d)}
+        if not usable:
+            raise InputError("empty", f"{path.name} holds no numeric array with two or more "
+                             "dimensions (compound complex types are not supported).", str(path))
+        named = [k for k in usable if _is_kspace_name(k)]
+        if named:
+            key = max(named, key=lambda k: usable[k].size)
+        else:
+            key = max(usable, key=lambda k: usable[k].size * usable[k].dtype.itemsize)
+        others = sorted(set(usable) - {key})
+        if others:
+            opts.warnings.append(f"{path.name}: analysed the dataset {key!r}; also present: "
+                                 f"{', '.join(others[:10])} (choose with --dataset).")
+    ds = all_ds[key]
+    domain = opts.domain or ("kspace" if _is_kspace_name(key) else "image")
+    attr_cax = ds.attrs.get("coil_axis")
+    cax = opts.coil_axis if opts.coil_axis is not None else (
+        int(attr_cax) if attr_cax is not None else None)
+    if cax is None and domain == "kspace" and len(ds.shape) == 4:
+        opts.warnings.append(f"{path.name}:{key} is 4D k-space with no coil axis given; if an "
+                             "axis holds receive coils, say so with --coil-axis.")
+    fields: dict[str, Any] = {"dataset": key, "bit_depth": ds.dtype.itemsize * 8}
+    raw = {str(k): str(v)[:200] for k, v in list(f.attrs.items())[:50]}
+    raw.update({f"{key}.{k}": str(v)[:200] for k, v in list(ds.attrs.items())[:50]})
+    try:
+        return [Volume.from_array(ds, domain=domain, coil_axis=cax, format="hdf5",
+                                  source_files=[str(path)], name=f"{path.stem}:{key}",
+                                  header=Header(fields=fields, raw=raw))]
+    except ValueError as exc:
+        raise InputError("bad_axes", f"{path.name}:{key}: {exc}", str(path)) from exc
