@@ -25,8 +25,8 @@ TRACE_NAMES: dict[str, str] = {
 }
 
 OUTCOME_NAMES = {
-    "fit_reconstruction": "fit for reconstruction research",
-    "fit_downstream": "fit for downstream tasks only",
+    "fit_for_reconstruction": "fit for reconstruction research",
+    "downstream_only": "fit for downstream tasks only",
     "rejected": "rejected",
 }
 
@@ -160,8 +160,8 @@ def methods_statement(report: dict[str, Any], decision: dict[str, Any] | None = 
     report : dict
         A ``rawproof.report/1`` object.
     decision : dict, optional
-        The lab's current decision: ``outcome`` (``fit_reconstruction``,
-        ``fit_downstream`` or ``rejected``) and ``rationale``; ``caveats`` if any.
+        The lab's current decision: ``outcome`` (``fit_for_reconstruction``,
+        ``downstream_only`` or ``rejected``, as in app.store.models.OUTCOMES) and ``rationale``; ``caveats`` if any.
     effective : dict, optional
         An effective-rate result from :mod:`app.sampling`: ``family``,
         ``acceleration`` (nominal) and ``effective_acceleration``.

@@ -55,7 +55,7 @@ def test_effective_rate_and_decision_sentences() -> None:
         "present", rows={"support_fraction": 1.0, "padding_factor": 1.0},
         cols={"support_fraction": 0.5, "padding_factor": 2.0})})
     text = methods_statement(
-        rep, {"outcome": "fit_downstream", "rationale": "interpolated magnitude images"},
+        rep, {"outcome": "downstream_only", "rationale": "interpolated magnitude images"},
         effective={"family": "random_1d", "acceleration": 4, "effective_acceleration": 2.0})
     assert "R = 4 with random 1d masks" in text and "R_eff = 2" in text
     assert "fit for downstream tasks only (interpolated magnitude images)." in text
@@ -66,7 +66,7 @@ def test_raw_like_report() -> None:
     """Truth: every trace absent -> no trace found, consistent with raw data, and no
     undersampling warning."""
     rep = _report({t: _trace("absent") for t in TRACE_NAMES})
-    text = methods_statement(rep, {"outcome": "fit_reconstruction", "rationale": ""})
+    text = methods_statement(rep, {"outcome": "fit_for_reconstruction", "rationale": ""})
     assert "No trace of processing was found." in text
     assert "consistent with raw acquisitions" in text
     assert "not measured k-space" not in text
