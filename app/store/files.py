@@ -1,0 +1,196 @@
+"""The content-addressed file store under the data folder.
+
+A file's bytes live once at ``<data_dir>/store/ab/abcdef...`` (its sha256);
+datasets link to them under their original, sanitised relative names. Uploads
+are written to ``<data_dir>/tmp`` while they are hashed, then moved into place
+in one rename, so a half-written upload never appears in the store.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import re
+import shutil
+import unicodedata
+import uuid
+from dataclasses import dataclass
+from pathlib import Path, PurePosixPath
+
+from app.config import Settings
+from app.store.errors import ValidationError
+
+CHUNK = 1 << 20
+
+_FORMATS = {
+    ".dcm": "dicom", ".dicom": "dicom", ".ima": "dicom",
+    ".nii": "nifti", ".gz": "nifti", ".npy": "npy", ".npz": "npz",
+    ".h5": "hdf5", ".hdf5": "hdf5", ".mat": "mat",
+    ".png": "png", ".jpg": "jpeg", ".jpeg": "jpeg", ".tif": "tiff", ".tiff": "tiff",
+    ".zip": "zip", ".json": "json", ".txt": "text", ".csv": "text",
+}
+_UNSAFE_CHARS = re.compile(r"[\x00-\x1f\x7f<>:\"|?*]")
+
+
+class UploadTooLargeError(ValidationError):
+    """An upload went past the configured size limit while streaming."""
+
+    status_code = 413
+
+
+def blob_path(settings: Settings, sha256: str) -> Path:
+    """Where the bytes with this sha256 live."""
+    if not re.fullmatch(r"[0-9a-f]{64}", sha256):
+        raise ValueError(f"not a sha256 hex digest: {sha256!r}")
+    return settings.store_dir / sha256[:2] / sha256
+
+
+def tmp_dir(settings: Settings) -> Path:
+    path = settings.data_dir / "tmp"
+    path.mkdir(parents=True, exist_ok=True)
+    return path
+
+
+def previews_file(settings: Settings, report_id: int) -> Path:
+    """The ``previews.npz`` stored beside report ``report_id`` (it may not exist)."""
+    return settings.data_dir / "reports" / str(int(report_id)) / "previews.npz"
+
+
+def sanitise_relative_name(name: str) -> str:
+    """Turn a browser- or archive-supplied relative name into a safe relative path.
+
+    Backslashes become slashes; empty, ``.`` and ``..`` parts, drive letters,
+    control and reserved characters are dropped; each part is at most 200
+    characters. The result is never absolute and never empty.
+    """
+    name = unicodedata.normalize("NFC", str(name)).replace("\\", "/")
+    parts = []
+    for part in name.split("/"):
+        part = _UNSAFE_CHARS.sub("", part).strip().strip(".") if part not in (".", "..") else ""
+        if re.fullmatch(r"[A-Za-z]:?", part) and not parts and "/" in name:
+            part = ""  # a Windows drive letter in front
+        if part:
+            parts.append(part[:200])
+    return str(PurePosixPath(*parts)) if parts else "file"
+
+
+def guess_format(name: str) -> str:
+    """A short format word from a file name (``"dicom"``, ``"npy"``...; ``""`` if unknown)."""
+    lower = name.lower()
+    if lower.endswith(".nii.gz"):
+        return "nifti"
+    suffix = PurePosixPath(lower).suffix
+    if not suffix and "/" in lower:
+        return "dicom"  # DICOM series often have bare names inside a folder
+    return _FORMATS.get(suffix, suffix.lstrip(".")[:16])
+
+
+@dataclass
+class StoredBlob:
+    sha256: str
+    size: int
+    path: Path
+    created: bool
+
+
+class HashingWriter:
+    """Write a stream to a temporary file while hashing it; commit into the store.
+
+    Parameters
+    ----------
+    settings : Settings
+    budget : callable, optional
+        Called with the number of bytes about to be written; raises
+        :class:`UploadTooLargeError` to stop the stream (the partial file is removed).
+    """
+
+    def __init__(self, settings: Settings, budget=None) -> None:  # noqa: ANN001
+        self.settings = settings
+        self.budget = budget
+        self.tmp = tmp_dir(settings) / f"upload-{uuid.uuid4().hex}.part"
+        self._fh = open(self.tmp, "wb")  # noqa: SIM115 - closed in commit/abort
+        self._hash = hashlib.sha256()
+        self.size = 0
+
+    def write(self, chunk: bytes) -> None:
+        if self.budget is not None:
+            self.budget(len(chunk))
+        self._fh.write(chunk)
+        self._hash.update(chunk)
+        self.size += len(chunk)
+
+    def abort(self) -> None:
+        """Close and remove the partial file."""
+        if not self._fh.closed:
+            self._fh.close()
+        self.tmp.unlink(missing_ok=True)
+
+    def commit(self) -> StoredBlob:
+        """Move the finished file to its content address (or drop it if already there)."""
+        self._fh.flush()
+        os.fsync(self._fh.fileno())
+        self._fh.close()
+        sha = self._hash.hexdigest()
+        dest = blob_path(self.settings, sha)
+        if dest.exists():
+            self.tmp.unlink(missing_ok=True)
+            return StoredBlob(sha, self.size, dest, created=False)
+        dest.parent.mkdir(parents=True, exist_ok=True)
+        os.replace(self.tmp, dest)
+        os.chmod(dest, 0o444)
+        return StoredBlob(sha, self.size, dest, created=True)
+
+
+def store_bytes(settings: Settings, data: bytes) -> StoredBlob:
+    """Put ``data`` into the store."""
+    writer = HashingWriter(settings)
+    try:
+        writer.write(data)
+    except BaseException:
+        writer.abort()
+        raise
+    return writer.commit()
+
+
+def store_path(settings: Settings, path: Path) -> StoredBlob:
+    """Copy the file at ``path`` into the store, hashing it on the way."""
+    writer = HashingWriter(settings)
+    try:
+        with open(path, "rb") as fh:
+            while chunk := fh.read(CHUNK):
+                writer.write(chunk)
+    except BaseException:
+        writer.abort()
+        raise
+    return writer.commit()
+
+
+def assemble_folder(settings: Settings, items: list[tuple[str, str]], dest: Path) -> Path:
+    """Lay out a dataset's files under their relative names in ``dest``.
+
+    Hard links where the file system allows, copies otherwise, so that readers
+    that group a folder by file names see the original layout.
+
+    Parameters
+    ----------
+    items : list of (relative_name, sha256)
+    dest : Path
+        An empty folder.
+
+    Returns
+    -------
+    Path
+        The path to analyse: the single file itself for a one-file dataset, else ``dest``.
+    """
+    dest.mkdir(parents=True, exist_ok=True)
+    placed = []
+    for rel, sha in items:
+        target = dest / sanitise_relative_name(rel)
+        target.parent.mkdir(parents=True, exist_ok=True)
+        src = blob_path(settings, sha)
+        try:
+            os.link(src, target)
+        except OSError:
+            shutil.copyfile(src, target)
+        placed.append(target)
+    return placed[0] if len(placed) == 1 else dest
