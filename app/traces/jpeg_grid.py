@@ -1,0 +1,494 @@
+"""JPEG compression history from pixels alone: block grid and quantiser estimation.
+
+Pure functions (arrays in, dataclasses out). The analyser in
+:mod:`app.traces.lossy_compression` chains them:
+
+1. :func:`find_lattice` undoes an affine intensity map (``v = a * k + b``), so that a
+   JPEG decoded to 8 or 12 bits and rescaled to 16 bits is measured in its own
+   integer grey levels ``k``;
+2. :func:`blocking_signature` measures the blocking artefact per phase offset along
+   each axis, and :func:`find_block_origin` locates the 8 x 8 grid (the data may
+   have been cropped after compression);
+3. :func:`estimate_steps` estimates the quantisation step of each of the 64 DCT
+   frequencies from the periodicity of its coefficient histogram.
+
+References
+----------
+Z. Fan and R. L. de Queiroz, "Identification of bitmap compression history: JPEG
+detection and quantizer estimation", IEEE Trans. Image Processing 12(2):230-235,
+2003.
+ITU-T Recommendation T.81 (1992) | ISO/IEC 10918-1, A.3.3 (the 8 x 8 forward DCT
+with the level shift of A.3.1, equal to the orthonormal 2D DCT-II).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import scipy.fft as sfft
+from scipy.stats import binom
+
+#: Residual tolerance (grey-level DCT units) for a coefficient to count as lying on a
+#: multiple of a candidate step. Decoded pixels are rounded to integers (variance
+#: 1/12 per pixel, the same per coefficient for an orthonormal DCT: std 0.29), so one
+#: unit is over three standard deviations.
+_TOL = 1.0
+#: Smallest share of the informative coefficients that must fit a step.
+_MIN_FIT = 0.8
+#: One-sided z score (binomial, against the share expected by chance) a step needs.
+_MIN_Z = 6.0
+#: Fewest informative coefficients for a step to be measured.
+_MIN_SUPPORT = 8
+#: Informative coefficients needed to call a frequency's step 1 (fine, no lattice).
+_MIN_SUPPORT_FINE = 30
+
+
+@dataclass
+class Lattice:
+    """An affine grey-level lattice ``v = a * k + b`` with integer ``k``.
+
+    Attributes
+    ----------
+    found : bool
+    a, b : float
+        Lattice step and offset (``a = 1, b = 0`` for plain integers).
+    n_levels : int
+        Distinct values seen.
+    span : int
+        ``k_max - k_min``: how many lattice steps the data cover.
+    max_residual : float
+        Largest ``|v - (a k + b)|``; at most 0.5 for integer-rounded rescaling.
+    reason : str
+        Why no lattice was found (empty when found).
+    """
+
+    found: bool
+    a: float = 1.0
+    b: float = 0.0
+    n_levels: int = 0
+    span: int = 0
+    max_residual: float = 0.0
+    reason: str = ""
+
+
+@dataclass
+class GridEstimate:
+    """The block grid and the per-frequency quantisation steps.
+
+    Attributes
+    ----------
+    origin : tuple of int
+        ``(row, col)``, 0-7: first row and column at which a block starts.
+    signature_rows, signature_cols : ndarray
+        Blocking signature per phase offset 0-7 along each axis (mean ratio 1).
+    steps : ndarray
+        8 x 8 estimated steps in natural order; NaN where not measurable, 1 where the
+        coefficients are measurable but show no step above 1.
+    support : ndarray
+        8 x 8 count of informative (non-zero) coefficients per frequency.
+    fit : ndarray
+        8 x 8 share of the informative coefficients that lie on multiples of the step.
+    z : ndarray
+        8 x 8 one-sided z score of that share against chance (0 where no step > 1).
+    n_blocks : int
+        Blocks used (not flat, not touching the clipping levels).
+    origin_scores : ndarray
+        8 x 8 grid-search score per candidate origin (lower is more JPEG-like).
+    """
+
+    origin: tuple[int, int]
+    signature_rows: np.ndarray
+    signature_cols: np.ndarray
+    steps: np.ndarray
+    support: np.ndarray
+    fit: np.ndarray
+    z: np.ndarray
+    n_blocks: int
+    origin_scores: np.ndarray = field(default_factory=lambda: np.zeros((8, 8)))
+
+    @property
+    def n_measured(self) -> int:
+        """Frequencies whose step (> 1) was measured with significance."""
+        return int(np.sum(np.isfinite(self.steps) & (self.steps > 1)))
+
+
+def find_lattice(values: np.ndarray, *, max_levels: int = 65536) -> Lattice:
+    """Find an affine lattice ``v = a * k + b`` (integer ``k``) carrying the values.
+
+    The step ``a`` is estimated from the differences of the sorted distinct values:
+    the smallest differences belong to neighbouring lattice levels (within one unit
+    when the rescaled values were rounded to integers); the lattice index of every
+    value then follows, and ``a, b`` are refined by least squares.
+
+    Parameters
+    ----------
+    values : ndarray
+        Grey levels (any real dtype).
+    max_levels : int
+        More distinct values than this are not treated as a lattice.
+
+    Returns
+    -------
+    Lattice
+
+    References
+    ----------
+    Common practice, no source: a linear rescale of integer data keeps the values on
+    an arithmetic progression; its step is the robust common difference.
+    """
+    v = np.asarray(values)
+    if np.iscomplexobj(v):
+        return Lattice(False, reason="complex values")
+    u = np.unique(v[np.isfinite(v)].astype(np.float64))
+    n = int(u.size)
+    if n < 2:
+        return Lattice(False, n_levels=n, reason="fewer than two distinct values")
+    if n > max_levels:
+        return Lattice(False, n_levels=n, reason=f"{n} distinct values, not a lattice")
+    d = np.diff(u)
+    integer = bool(np.all(u == np.round(u)))
+    dmin = float(d.min())
+    tol = 1.0 + 1e-9 if integer and dmin >= 1.5 else 1e-6 * max(1.0, float(np.abs(u).max()))
+    if integer and dmin < 1.5:
+        a0 = 1.0
+    else:
+        near = d[d <= dmin + 2 * tol]
+        a0 = float(np.mean(near))
+    a, b = a0, float(u[0])
+    for _ in range(3):
+        k = np.round((u - b) / a)
+        if k[-1] - k[0] > 16 * max_levels:
+            return Lattice(False, n_levels=n, reason="values are not on a regular lattice")
+        if np.ptp(k) == 0:
+            break
+        a, b = np.polyfit(k, u, 1)
+        a, b = float(a), float(b)
+    k = np.round((u - b) / a)
+    res = float(np.max(np.abs(u - (a * k + b))))
+    limit = 0.5 + 1e-6 if integer and a > 1.5 else 1e-4 * max(1.0, a)
+    if integer and abs(a - 1.0) < 1e-9:
+        res = 0.0
+    if res > limit:
+        return Lattice(False, n_levels=n, max_residual=res,
+                       reason="values are not on a regular lattice")
+    if integer and a < 1.5:
+        a, b = 1.0, 0.0
+    else:
+        # put b on the lowest value's lattice level so that k starts at 0
+        b = b + a * float(k[0])
+    return Lattice(True, a=a, b=b, n_levels=n, span=int(k[-1] - k[0]), max_residual=res)
+
+
+def lattice_levels(values: np.ndarray, lattice: Lattice) -> np.ndarray:
+    """Integer lattice index ``k = round((v - b) / a)`` of each value (float64)."""
+    return np.round((np.asarray(values, dtype=np.float64) - lattice.b) / lattice.a)
+
+
+def blocking_signature(images: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Blocking artefact strength per phase offset 0-7 along rows and columns.
+
+    For each phase ``p`` along an axis, the mean absolute difference between
+    neighbouring pixels across the boundary at index ``i`` with ``i % 8 == p``, with
+    differences clipped at their 99th percentile so that object edges do not
+    dominate; divided by the mean over the eight phases. A JPEG-compressed image
+    shows a peak at the phase where its blocks start.
+
+    Parameters
+    ----------
+    images : ndarray
+        ``(frames, rows, cols)`` or ``(rows, cols)``.
+
+    Returns
+    -------
+    rows, cols : ndarray
+        Eight values each (ratio to the mean; 1 everywhere for no blocking).
+
+    References
+    ----------
+    Fan and de Queiroz (2003), section II: the blocking signature (pixel
+    differences across block boundaries against those inside blocks).
+    """
+    x = np.asarray(images, dtype=np.float64)
+    if x.ndim == 2:
+        x = x[None]
+    out = []
+    for axis in (1, 2):
+        d = np.abs(np.diff(x, axis=axis))
+        if d.size == 0:
+            out.append(np.ones(8))
+            continue
+        cap = np.percentile(d, 99)
+        if cap > 0:
+            d = np.minimum(d, cap)
+        prof = d.mean(axis=(0, 2) if axis == 1 else (0, 1))
+        # the difference d[i] is between i and i + 1: a boundary where a block starts at i + 1
+        phase = (np.arange(prof.size) + 1) % 8
+        sig = np.array([prof[phase == p].mean() if np.any(phase == p) else 0.0
+                        for p in range(8)])
+        m = sig.mean()
+        out.append(sig / m if m > 0 else np.ones(8))
+    return out[0], out[1]
+
+
+def block_dct(images: np.ndarray, origin: tuple[int, int], *, workers: int = 1
+              ) -> tuple[np.ndarray, np.ndarray]:
+    """Orthonormal 8 x 8 DCT-II of every whole block on the grid starting at ``origin``.
+
+    Parameters
+    ----------
+    images : ndarray
+        ``(frames, rows, cols)`` float64 grey levels.
+    origin : (int, int)
+        First row and column of the grid.
+
+    Returns
+    -------
+    coefs : ndarray
+        ``(n_blocks, 8, 8)`` DCT coefficients (JPEG's FDCT of T.81 A.3.3).
+    pixels : ndarray
+        ``(n_blocks, 8, 8)`` the blocks themselves.
+
+    References
+    ----------
+    ITU-T T.81, A.3.3: the FDCT with C(0) = 1/sqrt(2) and the factor 1/4 is the
+    orthonormal 2D DCT-II of an 8 x 8 block.
+    """
+    r0, c0 = origin
+    x = images[:, r0:, c0:]
+    f, h, w = x.shape
+    h8, w8 = h // 8, w // 8
+    x = x[:, :h8 * 8, :w8 * 8].reshape(f, h8, 8, w8, 8).transpose(0, 1, 3, 2, 4)
+    blocks = x.reshape(-1, 8, 8)
+    coefs = sfft.dctn(blocks, type=2, axes=(1, 2), norm="ortho", workers=workers)
+    return coefs, blocks
+
+
+def usable_blocks(blocks: np.ndarray, low: float, high: float) -> np.ndarray:
+    """Blocks that carry quantiser information: not flat, not touching ``low``/``high``.
+
+    Flat blocks have all AC coefficients zero, which fits every step; blocks with
+    a pixel at a clipping level had their decoded values clipped, which moves their
+    coefficients off the lattice (Fan and de Queiroz 2003, section III).
+    """
+    flat = np.ptp(blocks.reshape(len(blocks), -1), axis=1) == 0
+    clipped = np.any((blocks <= low) | (blocks >= high), axis=(1, 2))
+    return ~flat & ~clipped
+
+
+def _origin_score(coefs: np.ndarray) -> float:
+    """Share of high-frequency coefficients away from zero (JPEG zeroes most of them)."""
+    hf = coefs.reshape(len(coefs), 64)[:, _HIGH]
+    return float(np.mean(np.abs(hf) > 0.75))
+
+
+_U, _V = np.meshgrid(np.arange(8), np.arange(8), indexing="ij")
+_HIGH = ((_U + _V) >= 4).reshape(64)
+
+
+def find_block_origin(images: np.ndarray, low: float, high: float, *, workers: int = 1,
+                      max_blocks: int = 4096) -> tuple[tuple[int, int], np.ndarray]:
+    """Locate the 8 x 8 grid: the origin whose blocks leave the most zeroed coefficients.
+
+    On the grid the quantiser left them, most high-frequency DCT coefficients of a
+    decoded JPEG are zero up to rounding noise; blocks straddling two JPEG blocks see
+    the discontinuity at the block boundary (the blocking artefact) as
+    high-frequency energy.
+
+    Returns
+    -------
+    origin : (int, int)
+    scores : ndarray
+        8 x 8 score per candidate origin (share of high-frequency coefficients with
+        magnitude above 0.75; lower is more JPEG-like).
+
+    References
+    ----------
+    Fan and de Queiroz (2003): the blocking signature is strongest on the grid.
+    """
+    scores = np.ones((8, 8))
+    for r in range(8):
+        for c in range(8):
+            coefs, blocks = block_dct(images, (r, c), workers=workers)
+            ok = usable_blocks(blocks, low, high)
+            coefs = coefs[ok][:max_blocks]
+            if len(coefs):
+                scores[r, c] = _origin_score(coefs)
+    r, c = np.unravel_index(int(np.argmin(scores)), scores.shape)
+    return (int(r), int(c)), scores
+
+
+def _candidate_scores(s: np.ndarray, q: np.ndarray, *, dc: bool
+                      ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Informative count, share on the lattice, binomial z and mean |residual| per step."""
+    tol = np.minimum(_TOL, q / 4)
+    p0 = np.clip(2 * tol / q, 1e-6, 1 - 1e-6)
+    nq = np.zeros(q.size, dtype=int)
+    frac = np.zeros(q.size)
+    mres = np.zeros(q.size)
+    chunk = max(1, 2_000_000 // max(s.size, 1))
+    for i in range(0, q.size, chunk):
+        qq = q[i:i + chunk, None]
+        x = s[None, :]
+        if dc:
+            # the DC level shift is unknown after an affine rescale: fit the phase
+            ph = np.angle(np.mean(np.exp(2j * np.pi * x / qq), axis=1, keepdims=True))
+            x = x - ph * qq / (2 * np.pi)
+            inform = np.ones(x.shape, dtype=bool)
+        else:
+            # coefficients inside a candidate's zero bin say nothing about it (small
+            # coherent rounding patterns of near-flat blocks live there)
+            inform = np.abs(x) >= np.maximum(1.5, qq / 4)
+        r = x - qq * np.round(x / qq)
+        hit = (np.abs(r) <= tol[i:i + chunk, None]) & inform
+        nq[i:i + chunk] = inform.sum(axis=1)
+        frac[i:i + chunk] = hit.sum(axis=1) / np.maximum(nq[i:i + chunk], 1)
+        mres[i:i + chunk] = (np.abs(r) * inform).sum(axis=1) / np.maximum(nq[i:i + chunk], 1)
+    z = (frac - p0) / np.sqrt(p0 * (1 - p0) / np.maximum(nq, 1))
+    return nq, frac, z, mres
+
+
+def _multiple_of_true_step(s: np.ndarray, q: float, m: int, *, dc: bool) -> bool:
+    """Whether step ``q`` beats its divisor ``q / m`` (binomial test, level 0.01).
+
+    Coefficients on the ``q / m`` lattice but off the ``q`` lattice prove the finer
+    step. Under the finer step at least ``(m - 1) / m`` of the non-zero multiples
+    would fall off the coarser lattice (the coefficient distribution peaks at
+    +-1 step); seeing almost none of them is evidence for ``q``.
+    """
+    qf = q / m
+    x = s
+    if dc:
+        # both lattices through the origin of the coarser one (unknown level shift)
+        ph = np.angle(np.mean(np.exp(2j * np.pi * x / q)))
+        x = x - ph * q / (2 * np.pi)
+    else:
+        x = x[np.abs(x) >= max(1.5, qf / 4)]
+    tol = min(_TOL, qf / 4)
+    k = np.round(x / qf)
+    on = np.abs(x - qf * k) <= tol
+    if not dc:
+        on &= k != 0
+    off = int(np.sum(on & (k % m != 0)))
+    n = int(np.sum(on))
+    if n == 0:
+        return True
+    return bool(binom.cdf(off, n, (m - 1) / m) < 0.01)
+
+
+def _step_for(c: np.ndarray, *, dc: bool, max_step: int) -> tuple[float, int, float, float]:
+    """Largest step whose multiples carry the coefficients ``c`` (one frequency).
+
+    Returns ``(step, support, fit, z)``; step NaN when too few informative
+    coefficients, 1 when many coefficients show no step above 1.
+    """
+    s = c if dc else c[np.abs(c) >= 1.5]  # the zero cluster fits every step
+    n = int(s.size)
+    if n < _MIN_SUPPORT:
+        return float("nan"), n, float("nan"), 0.0
+    top = max_step if dc else int(min(max_step, 2 * np.max(np.abs(s)) + 2))
+    q = np.arange(2, max(top, 2) + 1, dtype=np.float64)
+    nq, frac, z, mres = _candidate_scores(s, q, dc=dc)
+    good = (nq >= _MIN_SUPPORT) & (frac >= _MIN_FIT) & (z >= _MIN_Z)
+    if not np.any(good):
+        # a step of 1 only where many coefficients are too large to be rounding
+        # patterns (whose magnitude is at most 0.5 * 8 = 4) and still fit no step
+        strong = int(np.sum(np.abs(s) > 4.0)) if not dc else n
+        step = 1.0 if strong >= _MIN_SUPPORT_FINE else float("nan")
+        return step, n, float("nan"), 0.0
+    j = int(np.nonzero(good)[0][-1])
+    # the tolerance lets a few steps next to the true one fit the same clusters:
+    # take the best-fitting one among the good steps just below the largest
+    near = np.nonzero(good & (q >= 0.9 * q[j] - 1))[0]
+    j = int(near[np.argmin(mres[near] - 1e-9 * q[near])])
+    changed = True
+    while changed:
+        changed = False
+        for m in (2, 3, 5, 7):
+            qf = q[j] / m
+            if qf >= 2 and qf == int(qf) and good[int(qf) - 2] and not _multiple_of_true_step(
+                    s, float(q[j]), m, dc=dc):
+                j = int(qf) - 2
+                changed = True
+                break
+    return float(q[j]), int(nq[j]), float(frac[j]), float(z[j])
+
+
+def estimate_steps(coefs: np.ndarray, *, max_step: int = 255
+                   ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Quantisation step of each of the 64 DCT frequencies from its histogram's period.
+
+    For each frequency, the coefficients of the decoded blocks lie near integer
+    multiples of the step (blurred by about +-1 from rounding the decoded pixels).
+    Every candidate step ``q = 2 .. max_step`` is scored by the share of informative
+    (non-zero) coefficients within one unit of a multiple of ``q``, against the
+    share expected by chance (``2 * tol / q``); the largest ``q`` with a share of at
+    least 0.8 and a binomial z score of at least 6 is the estimate (divisors of the
+    true step also fit; multiples of it do not, since odd multiples fall between).
+    The DC term is measured with its phase fitted, so an unknown level shift does not
+    matter.
+
+    Parameters
+    ----------
+    coefs : ndarray
+        ``(n_blocks, 8, 8)`` DCT coefficients on the detected grid.
+    max_step : int
+        Largest step tried (255 for baseline 8-bit tables).
+
+    Returns
+    -------
+    steps, support, fit, z : ndarray
+        8 x 8 each, natural order (see :class:`GridEstimate`).
+
+    References
+    ----------
+    Fan and de Queiroz (2003), section III: quantiser estimation from the
+    periodicity of the DCT coefficient histogram.
+    """
+    c = np.asarray(coefs, dtype=np.float64).reshape(len(coefs), 64)
+    steps = np.full(64, np.nan)
+    support = np.zeros(64, dtype=int)
+    fit = np.full(64, np.nan)
+    z = np.zeros(64)
+    for f in range(64):
+        steps[f], support[f], fit[f], z[f] = _step_for(c[:, f], dc=f == 0, max_step=max_step)
+    return (steps.reshape(8, 8), support.reshape(8, 8), fit.reshape(8, 8), z.reshape(8, 8))
+
+
+def analyse_grid(levels: np.ndarray, *, low: float, high: float, workers: int = 1,
+                 max_blocks: int = 4096, max_step: int = 255) -> GridEstimate:
+    """Block grid, blocking signature and quantiser steps of integer grey levels.
+
+    Parameters
+    ----------
+    levels : ndarray
+        ``(frames, rows, cols)`` lattice indices (decoded JPEG grey levels).
+    low, high : float
+        Clipping levels (blocks touching them are left out).
+    workers : int
+        ``scipy.fft`` workers.
+    max_blocks : int
+        At most this many usable blocks (evenly spaced) enter the estimation.
+    max_step : int
+        Largest quantisation step tried.
+
+    Returns
+    -------
+    GridEstimate
+
+    References
+    ----------
+    Fan and de Queiroz (2003).
+    """
+    x = np.asarray(levels, dtype=np.float64)
+    if x.ndim == 2:
+        x = x[None]
+    sig_r, sig_c = blocking_signature(x)
+    origin, scores = find_block_origin(x, low, high, workers=workers, max_blocks=max_blocks)
+    coefs, blocks = block_dct(x, origin, workers=workers)
+    ok = usable_blocks(blocks, low, high)
+    coefs = coefs[ok]
+    if len(coefs) > max_blocks:
+        coefs = coefs[np.linspace(0, len(coefs) - 1, max_blocks).round().astype(int)]
+    steps, support, fit, z = estimate_steps(coefs, max_step=max_step)
+    return GridEstimate(origin, sig_r, sig_c, steps, support, fit, z, int(len(coefs)), scores)
