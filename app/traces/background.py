@@ -1,0 +1,458 @@
+"""The signal-free background (air) of each image, found once per Volume.
+
+Several analysers read the background: the noise-law fit (coil combination),
+the constant-background test (masking), the sign test (magnitude only). It is
+found here once, on a bounded, evenly spaced subset of frames, and shared
+through ``ctx.cached("background", ...)``.
+
+Method, per frame: the magnitude image (root-sum-of-squares over channels) is
+smoothed with a box filter; a threshold is chosen from the histogram of the
+smoothed image (Otsu's between-class variance); the low region is opened
+(morphology), only its connected parts that touch the image border are kept
+(air surrounds the object; dark tissue inside it does not touch the border),
+and the result is eroded away from the object's edge. Blocks of the background
+whose mean power stands far above the rest (ghosting bands, ringing, stray
+signal) are dropped. A background that is not flat (its smoothed values vary
+like tissue, not like noise) is refused and the four image corners are tried
+instead.
+
+References
+----------
+.. [1] N. Otsu, "A threshold selection method from gray-level histograms",
+   IEEE Transactions on Systems, Man, and Cybernetics 9(1):62-66, 1979.
+.. [2] H. Gudbjartsson and S. Patz, "The Rician distribution of noisy MRI data",
+   Magnetic Resonance in Medicine 34(6):910-914, 1995 (signal-free background
+   as the region where the noise law is measured).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from scipy import ndimage
+
+from app.io.volume import Volume
+
+MAX_FRAMES = 16
+MAX_SAMPLES_PER_FRAME = 32768
+MIN_SAMPLES = 500
+_FLATNESS_LIMIT = 0.6
+_GHOST_Z = 3.5
+_BLOCK = 8
+
+
+@dataclass
+class Background:
+    """Background samples of the analysed frames.
+
+    Attributes
+    ----------
+    frames : ndarray of int
+        Flat frame indices the background was looked for in.
+    masks : ndarray of bool
+        ``(len(frames), rows, cols)``: the background of each analysed frame.
+    magnitude : ndarray of float64
+        Background magnitudes (root-sum-of-squares over channels when multi-coil),
+        at most :data:`MAX_SAMPLES_PER_FRAME` per frame.
+    values : ndarray or None
+        The physical values at the same positions: complex or real, shape ``(n,)``,
+        or ``(coils, n)`` for multi-coil data.
+    stored : ndarray or None
+        The stored (unscaled) values at the same positions, single-channel data only.
+    n_background : int
+        Background samples found (before the per-frame sample cap).
+    n_pixels : int
+        Pixels in the analysed frames.
+    method : {"threshold", "corners", "none"}
+    reason : str or None
+        Why the background is unusable (too few samples, k-space data), else None.
+    object_level : float
+        Median magnitude of the pixels above the threshold (the object).
+    signal_peak : float
+        99.5th percentile of the magnitude in the analysed frames.
+    nan_fraction : float
+        Fraction of non-finite pixels (outside a resampled field of view).
+    excluded_blocks : int
+        Background blocks dropped as ghosting or stray signal.
+    """
+
+    frames: np.ndarray
+    masks: np.ndarray
+    magnitude: np.ndarray
+    values: np.ndarray | None
+    stored: np.ndarray | None
+    n_background: int
+    n_pixels: int
+    method: str
+    reason: str | None
+    object_level: float
+    signal_peak: float
+    nan_fraction: float
+    excluded_blocks: int = 0
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def usable(self) -> bool:
+        """Whether enough background samples were found to measure noise."""
+        return self.reason is None
+
+    @property
+    def fraction(self) -> float:
+        """Fraction of the analysed pixels that are background."""
+        return self.n_background / self.n_pixels if self.n_pixels else 0.0
+
+
+def otsu_threshold(values: np.ndarray, bins: int = 256) -> float:
+    """Otsu's threshold: the cut that maximises the between-class variance.
+
+    References
+    ----------
+    N. Otsu, IEEE Trans. SMC 9(1):62-66, 1979.
+    """
+    v = np.asarray(values, dtype=np.float64).ravel()
+    v = v[np.isfinite(v)]
+    if v.size == 0:
+        return 0.0
+    lo, hi = float(v.min()), float(v.max())
+    if hi <= lo:
+        return hi
+    counts, edges = np.histogram(v, bins=bins, range=(lo, hi))
+    centres = 0.5 * (edges[:-1] + edges[1:])
+    w0 = np.cumsum(counts).astype(np.float64)
+    w1 = w0[-1] - w0
+    s0 = np.cumsum(counts * centres)
+    mu0 = s0 / np.maximum(w0, 1)
+    mu1 = (s0[-1] - s0) / np.maximum(w1, 1)
+    between = w0 * w1 * (mu0 - mu1) ** 2
+    k = int(np.argmax(between[:-1]))
+    return float(edges[k + 1])
+
+
+def _box_size(shape: tuple[int, int]) -> int:
+    k = max(5, min(shape) // 24)
+    return k if k % 2 else k + 1
+
+
+def _flatness(m: np.ndarray, sm: np.ndarray, mask: np.ndarray) -> float:
+    """Spread of the box-smoothed background relative to the raw one.
+
+    White noise gives about ``1/k`` for a ``k x k`` box (more for spatially
+    correlated noise); tissue structure gives values near 1. A constant
+    background gives 0.
+    """
+    raw = m[mask]
+    if raw.size < 16:
+        return 1.0
+    s_raw = float(np.std(raw))
+    if s_raw == 0:
+        return 0.0
+    return float(np.std(sm[mask]) / s_raw)
+
+
+def _drop_bright_blocks(m2: np.ndarray, mask: np.ndarray) -> tuple[np.ndarray, int]:
+    """Drop background blocks whose mean power stands far above the others (ghosts)."""
+    rows, cols = mask.shape
+    by, bx = -(-rows // _BLOCK), -(-cols // _BLOCK)
+    pad = ((0, by * _BLOCK - rows), (0, bx * _BLOCK - cols))
+    mk = np.pad(mask, pad).reshape(by, _BLOCK, bx, _BLOCK)
+    pw = np.pad(np.where(mask, m2, 0.0), pad).reshape(by, _BLOCK, bx, _BLOCK)
+    cnt = mk.sum(axis=(1, 3))
+    tot = pw.sum(axis=(1, 3))
+    ok = cnt >= _BLOCK * _BLOCK // 4
+    if ok.sum() < 8:
+        return mask, 0
+    mean = tot[ok] / cnt[ok]
+    if np.all(mean <= 0):
+        return mask, 0
+    logm = np.log(np.maximum(mean, np.max(mean) * 1e-12))
+    med = float(np.median(logm))
+    mad = float(np.median(np.abs(logm - med))) * 1.4826
+    mad = max(mad, 0.05)
+    bad_vals = (logm - med) / mad > _GHOST_Z
+    bad_vals &= (logm - med) > np.log(1.5)
+    if not bad_vals.any():
+        return mask, 0
+    bad = np.zeros_like(ok)
+    bad[ok] = bad_vals
+    bad_px = np.repeat(np.repeat(bad, _BLOCK, axis=0), _BLOCK, axis=1)[:rows, :cols]
+    return mask & ~bad_px, int(bad_vals.sum())
+
+
+def _threshold(sm: np.ndarray) -> float:
+    """A cut below the object: Otsu's threshold, lowered to a few times the air level.
+
+    Otsu's cut separates the darkest class, which under strong coil shading can
+    hold dark parts of the object; the air forms the lowest mode of the smoothed
+    histogram, and smoothed noise stays well within 2.5 times that level (the
+    relative spread of a box mean of noise is about ``0.5 / k``). A constant
+    background (masking, no noise) is cut just above that constant.
+    """
+    v = sm.ravel()
+    if v.size == 0:
+        return 0.0
+    lo, hi = float(v.min()), float(v.max())
+    if hi <= lo:
+        return hi
+    t = otsu_threshold(v)
+    below = v[v < t]
+    if below.size < 64:
+        return t
+    counts, edges = np.histogram(below, bins=64)
+    j = int(np.argmax(counts))
+    mode = 0.5 * (edges[j] + edges[j + 1])
+    return float(min(t, 2.5 * mode)) if mode > 0 else t
+
+
+def _far_half(mask: np.ndarray) -> np.ndarray:
+    """Keep the half of the background farthest from the object.
+
+    Ringing and blurring of the object's edge reach into the air and decay
+    slowly with distance; the image border is not an edge here.
+    """
+    if mask.sum() < 256:
+        return mask
+    d = ndimage.distance_transform_edt(np.pad(mask, 1, constant_values=True))[1:-1, 1:-1]
+    cut = float(np.median(d[mask]))
+    return mask & (d >= cut)
+
+
+def _corner_mask(shape: tuple[int, int]) -> np.ndarray:
+    rows, cols = shape
+    h, w = max(4, rows // 8), max(4, cols // 8)
+    mask = np.zeros(shape, dtype=bool)
+    mask[:h, :w] = mask[:h, -w:] = mask[-h:, :w] = mask[-h:, -w:] = True
+    return mask
+
+
+def frame_background(m: np.ndarray) -> tuple[np.ndarray, str, int, float]:
+    """Find the background of one magnitude frame.
+
+    Parameters
+    ----------
+    m : ndarray
+        2D magnitude image (non-finite pixels are never background).
+
+    Returns
+    -------
+    mask : ndarray of bool
+    method : {"threshold", "corners", "none"}
+    excluded_blocks : int
+    threshold : float
+        The histogram threshold on the smoothed image.
+
+    References
+    ----------
+    Otsu 1979 (threshold); Gudbjartsson and Patz 1995 (background as the
+    signal-free region).
+    """
+    finite = np.isfinite(m)
+    m = np.where(finite, m, 0.0).astype(np.float64, copy=False)
+    k = _box_size(m.shape)
+    sm = ndimage.uniform_filter(m, size=k, mode="nearest")
+    t = _threshold(sm[finite])
+    low = (sm <= t) & finite
+    low = ndimage.binary_opening(low, structure=np.ones((3, 3), bool))
+    lab, n = ndimage.label(low)
+    mask = np.zeros(m.shape, dtype=bool)
+    if n:
+        border = np.unique(np.concatenate([lab[0], lab[-1], lab[:, 0], lab[:, -1]]))
+        border = border[border > 0]
+        mask = np.isin(lab, border)
+    erode = max(2, k // 2)
+    mask = ndimage.binary_erosion(mask, iterations=erode, border_value=1) & finite
+    mask = _far_half(mask)
+    m2 = m * m
+    excluded = 0
+    if mask.sum() >= 64 and _flatness(m, sm, mask) < _FLATNESS_LIMIT:
+        mask, excluded = _drop_bright_blocks(m2, mask)
+        return mask, "threshold", excluded, t
+    corners = _corner_mask(m.shape) & finite & (sm < t)
+    if corners.sum() >= 64 and _flatness(m, sm, corners) < _FLATNESS_LIMIT:
+        return corners, "corners", 0, t
+    return np.zeros(m.shape, dtype=bool), "none", 0, t
+
+
+def analysed_frames(n_frames: int, base: np.ndarray | None = None,
+                    max_frames: int = MAX_FRAMES) -> np.ndarray:
+    """At most ``max_frames`` evenly spaced frame indices (from ``base`` if given)."""
+    idx = np.arange(n_frames) if base is None else np.asarray(base, dtype=int)
+    if idx.size <= max_frames:
+        return idx
+    pick = np.unique(np.linspace(0, idx.size - 1, max_frames).round().astype(int))
+    return idx[pick]
+
+
+def _magnitude(block: np.ndarray, multi: bool) -> np.ndarray:
+    if multi:
+        return np.sqrt((np.abs(block.astype(np.complex128 if np.iscomplexobj(block)
+                                            else np.float64)) ** 2).sum(axis=1))
+    return np.abs(block).astype(np.float64)
+
+
+def find_background(volume: Volume, *, frames: Any = None,
+                    max_frames: int = MAX_FRAMES) -> Background:
+    """Find the background of a Volume on a bounded, evenly spaced subset of frames.
+
+    Parameters
+    ----------
+    volume : Volume
+    frames : sequence of int, optional
+        Frames to choose from (the context's stated subset); default all.
+    max_frames : int
+        Upper bound on frames examined.
+
+    Returns
+    -------
+    Background
+
+    References
+    ----------
+    Otsu 1979; Gudbjartsson and Patz, MRM 1995.
+    """
+    idx = analysed_frames(volume.n_slices, frames, max_frames)
+    rows, cols = volume.image_shape
+    notes = []
+    if idx.size < volume.n_slices:
+        notes.append(f"background found on {idx.size} of {volume.n_slices} frames, "
+                     "evenly spaced")
+    if volume.domain == "kspace":
+        return Background(idx, np.zeros((0, rows, cols), bool), np.zeros(0), None, None, 0,
+                          0, "none", "the data are k-space samples, not images: there is "
+                          "no image background", 0.0, 0.0, 0.0, 0, notes)
+    multi = volume.coil_axis is not None
+    rng = np.random.default_rng(12345)
+    masks, mags, vals, stored_parts = [], [], [], []
+    obj_levels, peaks = [], []
+    n_bg = n_px = n_nan = excluded = 0
+    methods = set()
+    single_real = not multi
+    stored_iter = volume.iter_slices(8, scaled=False, indices=idx) if single_real else None
+    for _, block in volume.iter_slices(8, indices=idx):
+        mag = _magnitude(block, multi)
+        sblock = next(stored_iter)[1] if stored_iter is not None else None
+        for j in range(mag.shape[0]):
+            m = mag[j]
+            mask, method, exc, t = frame_background(m)
+            methods.add(method)
+            excluded += exc
+            masks.append(mask)
+            fin = np.isfinite(m)
+            n_px += m.size
+            n_nan += int((~fin).sum())
+            if fin.any():
+                peaks.append(float(np.percentile(m[fin], 99.5)))
+                obj = m[fin & ~mask]
+                above = obj[obj >= t]
+                obj_levels.append(float(np.median(above)) if above.size else
+                                  float(np.median(obj)) if obj.size else 0.0)
+            pos = np.flatnonzero(mask)
+            n_bg += pos.size
+            if pos.size > MAX_SAMPLES_PER_FRAME:
+                pos = np.sort(rng.choice(pos, MAX_SAMPLES_PER_FRAME, replace=False))
+            mags.append(m.ravel()[pos])
+            if multi:
+                vals.append(block[j].reshape(block.shape[1], -1)[:, pos])
+            else:
+                vals.append(block[j].ravel()[pos])
+                stored_parts.append(sblock[j].ravel()[pos])
+    magnitude = np.concatenate(mags) if mags else np.zeros(0)
+    values = (np.concatenate(vals, axis=-1) if vals else None)
+    stored = np.concatenate(stored_parts) if stored_parts else None
+    reason = None
+    if n_bg < MIN_SAMPLES:
+        reason = (f"only {n_bg} background samples found (at least {MIN_SAMPLES} needed): "
+                  "the images hold no signal-free air region")
+    method = "threshold" if "threshold" in methods else (
+        "corners" if "corners" in methods else "none")
+    return Background(
+        frames=idx,
+        masks=np.asarray(masks, dtype=bool),
+        magnitude=magnitude,
+        values=values,
+        stored=stored,
+        n_background=int(n_bg),
+        n_pixels=int(n_px),
+        method=method,
+        reason=reason,
+        object_level=float(np.median(obj_levels)) if obj_levels else 0.0,
+        signal_peak=float(np.median(peaks)) if peaks else 0.0,
+        nan_fraction=n_nan / n_px if n_px else 0.0,
+        excluded_blocks=int(excluded),
+        notes=notes,
+    )
+
+
+def background_of(volume: Volume, ctx: Any) -> Background:
+    """The shared background of ``volume``, computed once per analysis context.
+
+    Adds the stated frame subsampling to ``ctx.notes``.
+    """
+
+    def factory() -> Background:
+        bg = find_background(volume, frames=ctx.frame_indices())
+        for note in bg.notes:
+            if note not in ctx.notes:
+                ctx.notes.append(note)
+        return bg
+
+    return ctx.cached("background", factory)
+
+
+@dataclass
+class ConstantShare:
+    """The most common exact background value.
+
+    Attributes
+    ----------
+    value : float or None
+        The value (stored units where stored values exist).
+    share : float
+        Share of background samples holding exactly that value.
+    neighbour_share : float
+        Share holding the next lattice values either side (integer data only;
+        0 for continuous data).
+    masked : bool
+        Whether the background is one constant rather than noise (see
+        :func:`constant_share`).
+    """
+
+    value: float | None
+    share: float
+    neighbour_share: float
+    masked: bool
+
+
+MASKED_SHARE = 0.3
+
+
+def constant_share(bg: Background) -> ConstantShare:
+    """The most common exact background value and whether it means a constant background.
+
+    Continuous noise never repeats one value in a large share of samples;
+    masking, thresholding and noise-free synthesis do. Integer-stored noise with
+    a sigma of a step or two does repeat values, but then the next lattice
+    values either side are nearly as common, whereas a masked background stands
+    alone (its neighbours are empty). The background counts as masked when at
+    least :data:`MASKED_SHARE` of it holds one value and, for integer data, its
+    two lattice neighbours together hold less than half as much.
+    Common practice, no source.
+    """
+    use_stored = bg.stored is not None and not np.iscomplexobj(bg.stored)
+    v = np.asarray(bg.stored if use_stored else bg.magnitude).ravel()
+    v = v[np.isfinite(v)] if v.dtype.kind == "f" else v
+    if v.size == 0:
+        return ConstantShare(None, 0.0, 0.0, False)
+    vals, counts = np.unique(v, return_counts=True)
+    j = int(np.argmax(counts))
+    share = float(counts[j] / v.size)
+    neighbour = 0.0
+    if v.dtype.kind in "iu" and vals.size > 1:
+        diffs = np.diff(vals.astype(np.int64))
+        step = int(np.gcd.reduce(diffs[:4096])) or 1
+        c = int(vals[j])
+        near = np.isin(vals.astype(np.int64), [c - step, c + step])
+        neighbour = float(counts[near].sum() / v.size)
+    masked = share >= MASKED_SHARE and (v.dtype.kind not in "iu" or neighbour < 0.5 * share)
+    return ConstantShare(float(vals[j]), share, neighbour, masked)
