@@ -18,8 +18,11 @@ NEMA PS3.5, Section 8.2 and Annex A.4 (encapsulated transfer syntaxes).
 
 from __future__ import annotations
 
+import contextlib
+import logging
 import warnings as _warnings
 from collections import defaultdict
+from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -110,8 +113,7 @@ def _read_dataset(path: Path) -> Any:
     from pydicom.errors import InvalidDicomError
 
     try:
-        with _warnings.catch_warnings():
-            _warnings.simplefilter("ignore")
+        with _quiet_pydicom():
             ds = pydicom.dcmread(str(path), defer_size="1 MB")
     except InvalidDicomError as exc:
         raise InputError(
@@ -282,10 +284,23 @@ def _undecodable(item: _Item, exc: Exception) -> UndecodablePixelsError:
     return UndecodablePixelsError(msg, str(item.path), hdr)
 
 
-def _pixels(item: _Item) -> np.ndarray:
+@contextlib.contextmanager
+def _quiet_pydicom() -> Iterator[None]:
+    """Keep pydicom's decoder log (with tracebacks) off stderr; errors are re-raised."""
+    log = logging.getLogger("pydicom")
+    level = log.level
+    log.setLevel(logging.CRITICAL)
     try:
         with _warnings.catch_warnings():
             _warnings.simplefilter("ignore")
+            yield
+    finally:
+        log.setLevel(level)
+
+
+def _pixels(item: _Item) -> np.ndarray:
+    try:
+        with _quiet_pydicom():
             arr = item.ds.pixel_array
     except (MemoryError, KeyboardInterrupt):
         raise
@@ -498,8 +513,15 @@ def read_dicom(paths: list[Path], opts: ReadOptions) -> list[Volume]:
     groups: dict[tuple, list[_Item]] = defaultdict(list)
     singles: list[list[_Item]] = []
     total = 0
+    errors: list[InputError] = []
     for p in paths:
-        ds = _read_dataset(p)
+        try:
+            ds = _read_dataset(p)
+        except InputError as exc:
+            if len(paths) == 1:
+                raise
+            errors.append(exc)
+            continue
         total += _declared_bytes(ds)
         check_array_bytes(total, opts.limits, str(p), "This DICOM input")
         item = _Item(p, ds)
@@ -507,8 +529,18 @@ def read_dicom(paths: list[Path], opts: ReadOptions) -> list[Volume]:
             singles.append([item])
         else:
             groups[_group_key(ds)].append(item)
-    out = [_volume_of(items, opts) for items in groups.values()]
-    out += [_volume_of(items, opts) for items in singles]
+    out: list[Volume] = []
+    for items in [*groups.values(), *singles]:
+        try:
+            out.append(_volume_of(items, opts))
+        except InputError as exc:
+            if len(groups) + len(singles) == 1 and not errors:
+                raise
+            errors.append(exc)
+    for exc in errors:
+        opts.warnings.append(f"skipped: {exc.message}")
+    if not out:
+        raise errors[0]
     names: dict[str, int] = {}
     for v in out:
         names[v.name] = names.get(v.name, 0) + 1

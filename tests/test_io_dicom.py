@@ -1,0 +1,228 @@
+"""DICOM reader against pydicom's bundled test files and series written by pydicom.
+
+Sources: pydicom's bundled test files (``pydicom.data.get_testdata_file``:
+MR_small.dcm, MR_small_RLE.dcm, MR_small_jpeg_ls_lossless.dcm, JPGExtended.dcm,
+JPEG-lossy.dcm, MR_truncated.dcm, SC_rgb_jpeg_dcmtk.dcm) and the pydicom-data
+package (emri_small.dcm, MR2_J2KI.dcm); pydicom's own decoders and Pillow's
+JPEG parser are the references for pixel values and quantisation tables.
+"""
+
+from __future__ import annotations
+
+import io
+from pathlib import Path
+
+import numpy as np
+import pydicom
+import pytest
+from PIL import Image
+from pydicom.data import get_testdata_file
+from pydicom.encaps import generate_frames
+
+from app.errors import InputError
+from app.io import open_input
+from app.io.dicom import UndecodablePixelsError, read_header_only
+from app.io.jpeg_markers import parse_jpeg_markers
+
+
+def _f(name: str) -> str:
+    path = get_testdata_file(name)
+    assert path is not None, f"{name} is not installed (pydicom / pydicom-data)"
+    return path
+
+
+def _write_series(folder: Path, n: int, *, spacing: float = 2.5, series_uid: str | None = None,
+                  positions: bool = True, slope: float | None = None,
+                  intercept: float | None = None, desc: str = "synthetic") -> list[np.ndarray]:
+    """Write ``n`` slices derived from MR_small.dcm; slice k holds base + 100 * k.
+
+    File names and InstanceNumbers are scrambled so only the positions give the
+    true order (truth: ascending position along the slice normal).
+    """
+    base = pydicom.dcmread(_f("MR_small.dcm"))
+    iop = np.array([float(v) for v in base.ImageOrientationPatient])
+    normal = np.cross(iop[:3], iop[3:])
+    origin = np.array([float(v) for v in base.ImagePositionPatient])
+    uid = series_uid or pydicom.uid.generate_uid()
+    truth = []
+    order = np.random.default_rng(0).permutation(n)
+    for k in range(n):
+        ds = pydicom.dcmread(_f("MR_small.dcm"))
+        arr = ds.pixel_array.astype(np.int16) + np.int16(100 * k)
+        ds.PixelData = arr.tobytes()
+        ds.SeriesInstanceUID = uid
+        ds.SOPInstanceUID = pydicom.uid.generate_uid()
+        ds.SeriesDescription = desc
+        ds.InstanceNumber = int(n - k) if positions else int(k + 1)
+        if positions:
+            ds.ImagePositionPatient = [float(v) for v in origin + k * spacing * normal]
+        else:
+            del ds.ImagePositionPatient
+        if slope is not None:
+            ds.RescaleSlope = slope
+            ds.RescaleIntercept = intercept
+        ds.save_as(folder / f"f{order[k]:03d}.dcm")
+        truth.append(arr)
+    return truth
+
+
+def test_single_file_matches_pydicom():
+    """MR_small.dcm: stored values equal pydicom's pixel_array; spacing from PixelSpacing."""
+    ds = pydicom.dcmread(_f("MR_small.dcm"))
+    with open_input(_f("MR_small.dcm")) as loaded:
+        (vol,) = loaded.volumes
+        assert loaded.format == "dicom" and loaded.n_files == 1
+        assert vol.dtype == np.int16 and vol.axes == ("rows", "cols")
+        np.testing.assert_array_equal(np.asarray(vol.data), ds.pixel_array)
+        assert vol.spacing == (0.3125, 0.3125)
+        assert vol.header.fields["bits_stored"] == 16
+        assert vol.header.fields["image_type"] == ["DERIVED", "SECONDARY", "OTHER"]
+        assert vol.header.raw["Modality"] == "MR"
+
+
+def test_series_ordered_by_position_on_normal(tmp_path):
+    """Truth: slice k sits k * 2.5 mm along the normal and holds base + 100 k."""
+    truth = _write_series(tmp_path, 6)
+    with open_input(tmp_path) as loaded:
+        (vol,) = loaded.volumes
+        assert loaded.format == "dicom" and loaded.n_files == 6
+        assert vol.shape == (6, 64, 64) and vol.axes == ("slices", "rows", "cols")
+        np.testing.assert_array_equal(np.asarray(vol.data), np.stack(truth))
+        assert vol.spacing[0] == pytest.approx(2.5, abs=1e-3)
+        assert vol.affine is not None
+
+
+def test_series_without_positions_uses_instance_number(tmp_path):
+    """Truth: without ImagePositionPatient, InstanceNumber k + 1 holds base + 100 k."""
+    truth = _write_series(tmp_path, 4, positions=False)
+    with open_input(tmp_path) as loaded:
+        np.testing.assert_array_equal(np.asarray(loaded.volumes[0].data), np.stack(truth))
+
+
+def test_two_series_in_one_folder_are_two_groups(tmp_path):
+    """Two SeriesInstanceUIDs in one folder give two Volumes (truth: 3 and 5 slices)."""
+    a, b = tmp_path / "a", tmp_path / "b"
+    a.mkdir()
+    b.mkdir()
+    _write_series(a, 3, desc="first")
+    _write_series(b, 5, desc="second")
+    for p in b.iterdir():
+        p.rename(a / ("b_" + p.name))
+    with open_input(a) as loaded:
+        shapes = sorted(v.shape[0] for v in loaded.volumes)
+        assert shapes == [3, 5]
+        assert {v.name for v in loaded.volumes} == {"series 1 first", "series 1 second"}
+
+
+def test_rescale_goes_to_scale_and_offset(tmp_path):
+    """RescaleSlope 2, RescaleIntercept -100: stored ints stay, physical = 2 s - 100."""
+    truth = _write_series(tmp_path, 3, slope=2.0, intercept=-100.0)
+    with open_input(tmp_path) as loaded:
+        vol = loaded.volumes[0]
+        assert vol.dtype == np.int16
+        assert (vol.scale, vol.offset) == (2.0, -100.0)
+        np.testing.assert_allclose(vol.to_array(), np.stack(truth) * 2.0 - 100.0)
+
+
+def test_multiframe_file():
+    """emri_small.dcm (pydicom-data): 10 frames of 64 x 64, equal to pydicom's decoding."""
+    ds = pydicom.dcmread(_f("emri_small.dcm"))
+    with open_input(_f("emri_small.dcm")) as loaded:
+        vol = loaded.volumes[0]
+        assert vol.shape == (10, 64, 64)
+        np.testing.assert_array_equal(np.asarray(vol.data), ds.pixel_array)
+        assert vol.header.fields["lossy_compression"] is False
+
+
+@pytest.mark.parametrize("name", ["MR_small_RLE.dcm", "MR_small_jpeg_ls_lossless.dcm"])
+def test_lossless_compressed_equal_uncompressed(name):
+    """RLE and JPEG-LS lossless copies of MR_small.dcm decode to its exact values."""
+    ref = pydicom.dcmread(_f("MR_small.dcm")).pixel_array
+    with open_input(_f(name)) as loaded:
+        np.testing.assert_array_equal(np.asarray(loaded.volumes[0].data), ref)
+
+
+def test_jpeg2000_lossy_decoded_with_rescale():
+    """MR2_J2KI.dcm (pydicom-data): 1024 x 1024 JPEG 2000, RescaleSlope 3.774114."""
+    with open_input(_f("MR2_J2KI.dcm")) as loaded:
+        vol = loaded.volumes[0]
+        assert vol.shape == (1024, 1024)
+        assert vol.scale == pytest.approx(3.774114)
+        assert vol.header.fields["transfer_syntax"] == "1.2.840.10008.1.2.4.91"
+        assert vol.header.fields["lossy_compression"] is True
+
+
+def test_jpeg_extended_decoded_and_tables_kept():
+    """JPGExtended.dcm: 12-bit extended JPEG decodes to 1024 x 256 and keeps its DQT table."""
+    with open_input(_f("JPGExtended.dcm")) as loaded:
+        vol = loaded.volumes[0]
+        assert vol.shape == (1024, 256)
+        tables = vol.header.fields["jpeg_quant_tables"]
+        assert len(tables) == 1 and tables[0][:8] == [19, 13, 12, 19, 28, 48, 61, 73]
+        assert vol.header.fields["jpeg_precision"] == 12
+
+
+def test_jpeg_tables_parsed_like_pillow():
+    """SC_rgb_jpeg_dcmtk.dcm's encapsulated 8-bit JPEG stream: our DQT parser gives the
+    same natural-order tables as Pillow's ``Image.quantization`` (libjpeg)."""
+    ds = pydicom.dcmread(_f("SC_rgb_jpeg_dcmtk.dcm"))
+    frame = next(generate_frames(ds.PixelData, number_of_frames=1))
+    ours = parse_jpeg_markers(frame)
+    with Image.open(io.BytesIO(frame)) as im:
+        pil = im.quantization
+    assert sorted(ours.tables) == sorted(pil)
+    for k, table in ours.tables.items():
+        assert table.reshape(64).tolist() == list(pil[k])
+    assert ours.process == "baseline" and ours.precision == 8
+
+
+def test_undecodable_jpeg_lossy_keeps_header_evidence():
+    """JPEG-lossy.dcm: pylibjpeg cannot decode it (ENVIRONMENT-NOTES); the error names the
+    transfer syntax and the stored table's nearest IJG quality (42: the table is
+    Annex K.1 scaled by 119 %, libjpeg's scale for quality 42), and the header-only
+    reader returns the same evidence."""
+    with pytest.raises(UndecodablePixelsError) as info:
+        with open_input(_f("JPEG-lossy.dcm")):
+            pass
+    err = info.value
+    assert err.code == "undecodable_pixels"
+    assert "1.2.840.10008.1.2.4.51" in err.message
+    assert "declared lossy JPEG" in err.message and "quality 42" in err.message
+    hdr = read_header_only(_f("JPEG-lossy.dcm"))
+    assert hdr.fields["lossy_compression"] is True
+    assert hdr.fields["jpeg_quant_tables"] == err.header.fields["jpeg_quant_tables"]
+    assert hdr.fields["lossy_ratio"] == 76.0
+
+
+def test_truncated_file_is_input_error(tmp_path):
+    """MR_truncated.dcm (bundled) and a copy of MR_small.dcm cut in half: InputError."""
+    with pytest.raises(InputError) as info:
+        with open_input(_f("MR_truncated.dcm")):
+            pass
+    assert info.value.code == "truncated_dicom"
+    cut = tmp_path / "cut.dcm"
+    cut.write_bytes(Path(_f("MR_small.dcm")).read_bytes()[:5000])
+    with pytest.raises(InputError) as info:
+        with open_input(cut):
+            pass
+    assert info.value.code == "truncated_dicom" and "cut.dcm" in info.value.message
+
+
+def test_declared_size_checked_before_reading(tmp_path):
+    """A limit below MR_small's declared 64 x 64 x 2 bytes refuses it before decoding."""
+    from app.config import Limits
+
+    with pytest.raises(InputError) as info:
+        with open_input(_f("MR_small.dcm"), limits=Limits(max_array_bytes=4096)):
+            pass
+    assert info.value.code == "too_large"
+
+
+def test_undecodable_file_in_folder_becomes_warning(tmp_path):
+    """A folder with a readable series and JPEG-lossy.dcm: the series is analysed and the
+    other file's header evidence reaches the warnings."""
+    _write_series(tmp_path, 2)
+    (tmp_path / "lossy.dcm").write_bytes(Path(_f("JPEG-lossy.dcm")).read_bytes())
+    with open_input(tmp_path) as loaded:
+        assert [v.shape for v in loaded.volumes] == [(2, 64, 64)]
+        assert any("quality 42" in w for w in loaded.warnings)
