@@ -20,7 +20,7 @@ from typing import Any
 import numpy as np
 
 from app.errors import InputError
-from app.io.options import ReadOptions, check_array_bytes
+from app.io.options import ReadOptions, array_axes, check_array_bytes
 from app.io.volume import Header, Volume
 
 _DOMAIN_KEYS = ("kspace", "k_space", "image", "images", "img")
@@ -75,9 +75,9 @@ def _check_shape(shape: tuple[int, ...], path: Path, key: str = "") -> None:
 def _wrap(arr: Any, path: Path, fmt: str, domain: str, coil_axis: int | None,
           name: str) -> Volume:
     try:
-        return Volume.from_array(arr, domain=domain, coil_axis=coil_axis, format=fmt,
-                                 source_files=[str(path)], name=name,
-                                 header=Header(fields={"array_key": name}))
+        return Volume(data=arr, domain=domain, axes=array_axes(arr.ndim, coil_axis), format=fmt,
+                      source_files=[str(path)], name=name,
+                      header=Header(fields={"array_key": name}))
     except ValueError as exc:
         raise InputError("bad_axes", f"{path.name}: {exc}", str(path)) from exc
 

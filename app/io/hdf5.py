@@ -20,7 +20,7 @@ from typing import Any
 import numpy as np
 
 from app.errors import InputError
-from app.io.options import ReadOptions
+from app.io.options import ReadOptions, array_axes
 from app.io.volume import Header, Volume
 
 
@@ -102,8 +102,8 @@ def read_hdf5(path: Path, opts: ReadOptions) -> list[Volume]:
     raw = {str(k): str(v)[:200] for k, v in list(f.attrs.items())[:50]}
     raw.update({f"{key}.{k}": str(v)[:200] for k, v in list(ds.attrs.items())[:50]})
     try:
-        return [Volume.from_array(ds, domain=domain, coil_axis=cax, format="hdf5",
-                                  source_files=[str(path)], name=f"{path.stem}:{key}",
-                                  header=Header(fields=fields, raw=raw))]
+        return [Volume(data=ds, domain=domain, axes=array_axes(len(ds.shape), cax),
+                       format="hdf5", source_files=[str(path)], name=f"{path.stem}:{key}",
+                       header=Header(fields=fields, raw=raw))]
     except ValueError as exc:
         raise InputError("bad_axes", f"{path.name}:{key}: {exc}", str(path)) from exc

@@ -48,3 +48,31 @@ def check_array_bytes(n_bytes: int, limits: Limits, path: str, what: str) -> Non
             "(raise RAWPROOF_MAX_ARRAY_BYTES if this is expected).",
             path,
         )
+
+
+def array_axes(ndim: int, coil_axis: int | None) -> tuple[str, ...]:
+    """Axis names of a plain array: ``coils`` where said, the other leading axes
+    ``slices`` (nearest the image), then ``time``, then ``frames``.
+
+    Raises
+    ------
+    ValueError
+        When the coil axis is out of range or one of the two image axes.
+    """
+    if ndim < 2:
+        raise ValueError("an image needs at least two dimensions")
+    cax = None
+    if coil_axis is not None:
+        if not -ndim <= coil_axis < ndim:
+            raise ValueError(f"coil axis {coil_axis} is out of range for {ndim} dimensions")
+        cax = coil_axis % ndim
+        if cax >= ndim - 2:
+            raise ValueError("the coil axis cannot be one of the last two (image) axes")
+    lead = [k for k in range(ndim - 2) if k != cax]
+    names = (["frames"] * max(0, len(lead) - 2) + ["time", "slices"])[-len(lead):] if lead else []
+    axes = ["rows", "cols"]
+    out: list[str] = []
+    it = iter(names)
+    for k in range(ndim - 2):
+        out.append("coils" if k == cax else next(it))
+    return tuple(out + axes)
