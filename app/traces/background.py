@@ -400,6 +400,35 @@ def background_of(volume: Volume, ctx: Any) -> Background:
     return ctx.cached("background", factory)
 
 
+LATTICE_TOL = 0.01
+
+
+def lattice_step(values: np.ndarray, *, tol: float = LATTICE_TOL) -> float | None:
+    """The step ``d`` of a lattice ``v0 + k d`` that holds all ``values``, or None.
+
+    Integers: the greatest common divisor of the gaps between distinct values.
+    Floats: the smallest gap between distinct values, accepted when every value
+    lies within ``tol * d`` of the lattice (float images quantised to a few
+    levels and then scaled). Common practice, no source.
+    """
+    v = np.asarray(values).ravel()
+    if v.dtype.kind == "f":
+        v = v[np.isfinite(v)]
+    u = np.unique(v)
+    if u.size < 2:
+        return None
+    if u.dtype.kind in "iub":
+        return float(np.gcd.reduce(np.diff(u.astype(np.int64)))) or None
+    if u.size > 1_000_000:
+        return None
+    u = u.astype(np.float64)
+    d = float(np.diff(u).min())
+    if d <= 0 or (u[-1] - u[0]) / d > 1e7:
+        return None
+    r = (u - u[0]) / d
+    return d if float(np.max(np.abs(r - np.round(r)))) <= tol else None
+
+
 @dataclass
 class ConstantShare:
     """The most common exact background value.
@@ -411,8 +440,8 @@ class ConstantShare:
     share : float
         Share of background samples holding exactly that value.
     neighbour_share : float
-        Share holding the next lattice values either side (integer data only;
-        0 for continuous data).
+        Share holding the next lattice values either side (data on a lattice
+        only; 0 for continuous data).
     masked : bool
         Whether the background is one constant rather than noise (see
         :func:`constant_share`).
@@ -448,11 +477,11 @@ def constant_share(bg: Background) -> ConstantShare:
     j = int(np.argmax(counts))
     share = float(counts[j] / v.size)
     neighbour = 0.0
-    if v.dtype.kind in "iu" and vals.size > 1:
-        diffs = np.diff(vals.astype(np.int64))
-        step = int(np.gcd.reduce(diffs[:4096])) or 1
-        c = int(vals[j])
-        near = np.isin(vals.astype(np.int64), [c - step, c + step])
+    step = lattice_step(vals) if vals.size > 1 else None
+    if step is not None:
+        c = float(vals[j])
+        gap = np.abs(vals.astype(np.float64) - c)
+        near = np.abs(gap - step) <= LATTICE_TOL * step
         neighbour = float(counts[near].sum() / v.size)
-    masked = share >= MASKED_SHARE and (v.dtype.kind not in "iu" or neighbour < 0.5 * share)
+    masked = share >= MASKED_SHARE and (step is None or neighbour < 0.5 * share)
     return ConstantShare(float(vals[j]), share, neighbour, masked)

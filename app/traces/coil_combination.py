@@ -36,7 +36,7 @@ import numpy as np
 
 from app.io.volume import Volume
 from app.traces import noise_laws as nl
-from app.traces.background import Background, background_of, constant_share
+from app.traces.background import Background, background_of, constant_share, lattice_step
 from app.traces.base import Trace, inconclusive, register
 from app.traces.magnitude_only import value_kind_of
 
@@ -69,17 +69,14 @@ def _subsample(x: np.ndarray, n: int, seed: int = 7) -> np.ndarray:
 def stored_step(bg: Background, scale: float) -> float:
     """Lattice step of the background values in physical units (0 for continuous data).
 
-    Integer stored values lie on a lattice of ``|scale|`` times the greatest
-    common divisor of their differences.
+    Stored values on a lattice (integers, or floats on few levels) are spaced
+    by ``|scale|`` times the lattice step. Common practice, no source.
     """
     s = bg.stored
-    if s is None or np.iscomplexobj(s) or s.dtype.kind not in "iu" or s.size < 2:
+    if s is None or np.iscomplexobj(s) or s.size < 2:
         return 0.0
-    u = np.unique(s.astype(np.int64))
-    if u.size < 2:
-        return abs(scale)
-    g = int(np.gcd.reduce(np.diff(u)[:4096]))
-    return abs(scale) * max(g, 1)
+    step = lattice_step(s)
+    return abs(scale) * step if step else 0.0
 
 
 def _histogram(x: np.ndarray, hi: float, lo: float = 0.0, bins: int = 48) -> dict:

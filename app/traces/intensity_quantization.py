@@ -1,0 +1,297 @@
+"""Intensity quantisation: too few grey levels, a comb-shaped histogram, or clipping.
+
+MR scanners store 12 to 16 bits; a set squeezed to 8 bits (a PNG export, a
+windowed conversion) holds at most 256 grey levels. Integer rescaling leaves a
+comb: 8-bit values multiplied by 16 into uint16 use only every 16th value; a
+non-integer rescale leaves periodic empty levels. Clipping piles samples onto
+the extreme values.
+
+Level counting uses the stored values (``scaled=False``). Float data are first
+checked for a lattice (all values on ``v0 + k d``); float32 images quantised to
+256 levels and then scaled are caught that way.
+
+Measures:
+
+- ``distinct_levels``: distinct values among the samples examined;
+  ``effective_bits = log2(distinct_levels)``; ``stated_bits`` is DICOM
+  BitsStored, else the bit depth of an integer dtype.
+- ``comb_score``: among the densely populated levels of the lattice, the share
+  that are empty beyond what Poisson counting would leave empty. Natural data
+  give about 0; every 16th value used gives about 0.94.
+- clipped fractions: the share of samples on the lowest and highest values
+  when those values stand far above their neighbours (a pile-up). A low pile-up
+  explained by a constant (masked) background is reported but not counted as
+  clipping.
+
+Status: ``present`` when at most 256 levels are used in a set large enough to
+show more, when the histogram is a comb, or when more than
+:data:`CLIP_FRACTION` of the samples are clipped; else ``absent``.
+
+References
+----------
+.. [1] B. Widrow and I. Kollar, *Quantization Noise*, Cambridge University Press,
+   2008 (uniform quantisation, level lattices).
+.. [2] M. Stamm and K. J. R. Liu, "Forensic detection of image manipulation using
+   statistical intrinsic fingerprints", IEEE Transactions on Information
+   Forensics and Security 5(3):492-506, 2010 (periodic empty histogram bins left
+   by contrast mapping and rescaling).
+.. [3] NEMA PS3.3, DICOM Information Object Definitions, C.7.6.3 Image Pixel
+   Module (BitsStored).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from app.io.volume import Volume
+from app.traces.background import analysed_frames, background_of, constant_share, lattice_step
+from app.traces.base import Trace, inconclusive, register
+
+TRACE_ID = "intensity_quantization"
+MAX_FRAMES = 32
+MAX_SAMPLES = 4_000_000
+SQUEEZED_LEVELS = 256
+MIN_SAMPLES_FOR_LEVELS = 16 * SQUEEZED_LEVELS
+COMB_SCORE = 0.08
+COMB_MIN_DENSE = 64
+CLIP_FRACTION = 0.002
+CLIP_SPIKE = 5.0
+_DENSE_COUNT = 4.0
+_WINDOW = 33
+
+
+@dataclass
+class LevelStats:
+    """Grey levels of the samples examined.
+
+    Attributes
+    ----------
+    levels : ndarray
+        The distinct values, sorted.
+    counts : ndarray of int
+        Samples per distinct value.
+    step : float or None
+        Lattice step (1 for integers; the float lattice step; None when float
+        values lie on no lattice).
+    n_samples : int
+    """
+
+    levels: np.ndarray
+    counts: np.ndarray
+    step: float | None
+    n_samples: int
+
+    @property
+    def distinct(self) -> int:
+        return int(self.levels.size)
+
+
+def level_stats(values: np.ndarray) -> LevelStats:
+    """Count the distinct values of a sample of stored values.
+
+    Parameters
+    ----------
+    values : ndarray
+        Stored (unscaled) values; complex values count by real and imaginary part
+        (by the real part alone when the imaginary part is zero).
+
+    Returns
+    -------
+    LevelStats
+
+    References
+    ----------
+    Widrow and Kollar, *Quantization Noise*, 2008 (uniform quantisation lattice).
+    """
+    v = np.asarray(values).ravel()
+    if np.iscomplexobj(v):
+        v = np.concatenate([v.real, v.imag]) if np.any(v.imag) else v.real
+    if v.dtype.kind == "f":
+        v = v[np.isfinite(v)]
+    if v.size == 0:
+        return LevelStats(np.zeros(0), np.zeros(0, int), None, 0)
+    if v.dtype.kind in "iub":
+        v = v.astype(np.int64)
+        lo, hi = int(v.min()), int(v.max())
+        if hi - lo < 1 << 24:
+            c = np.bincount(v - lo)
+            nz = np.flatnonzero(c)
+            return LevelStats(nz + lo, c[nz], 1.0, int(v.size))
+        lv, ct = np.unique(v, return_counts=True)
+        return LevelStats(lv, ct, 1.0, int(v.size))
+    lv, ct = np.unique(v, return_counts=True)
+    return LevelStats(lv, ct, lattice_step(lv), int(v.size))
+
+
+def comb_score(stats: LevelStats) -> tuple[float, int]:
+    """Share of densely populated lattice levels that are empty beyond Poisson chance.
+
+    Returns
+    -------
+    score : float
+        ``(empty - expected_empty) / dense`` over the dense levels (those whose
+        moving-average count is at least 4); 0 when there is no lattice.
+    n_dense : int
+        Number of dense levels.
+
+    References
+    ----------
+    Stamm and Liu, IEEE TIFS 5(3), 2010 (empty bins left by rescaling).
+    """
+    if stats.step is None or stats.distinct < 2:
+        return 0.0, 0
+    idx = np.round((stats.levels - stats.levels[0]) / stats.step).astype(np.int64)
+    if idx[-1] > 1 << 24:
+        return 0.0, 0
+    full = np.zeros(int(idx[-1]) + 1, dtype=np.float64)
+    full[idx] = stats.counts
+    w = min(_WINDOW, full.size)
+    smooth = np.convolve(full, np.ones(w) / w, mode="same")
+    dense = smooth >= _DENSE_COUNT
+    n_dense = int(dense.sum())
+    if n_dense == 0:
+        return 0.0, 0
+    empty = float(np.sum(full[dense] == 0))
+    expected = float(np.sum(np.exp(-smooth[dense])))
+    return max(0.0, (empty - expected) / n_dense), n_dense
+
+
+def _pile(counts: np.ndarray, at: int, neighbours: np.ndarray, n: int) -> tuple[float, bool]:
+    frac = float(counts[at] / n)
+    ref = float(np.mean(neighbours)) if neighbours.size else 0.0
+    return frac, bool(counts[at] >= CLIP_SPIKE * max(ref, 1.0))
+
+
+def clipping(stats: LevelStats) -> dict[str, Any]:
+    """Shares of samples on the lowest and highest values, and whether they pile up.
+
+    A value is a pile-up when it holds at least 5 times the mean count of the 8
+    nearest used levels. Common practice, no source.
+    """
+    if stats.distinct < 10:
+        return {"low": 0.0, "high": 0.0, "low_pile": False, "high_pile": False}
+    c = stats.counts
+    low, low_pile = _pile(c, 0, c[1:9], stats.n_samples)
+    high, high_pile = _pile(c, -1, c[-9:-1], stats.n_samples)
+    return {"low": low, "high": high, "low_pile": low_pile, "high_pile": high_pile}
+
+
+def stated_bits(volume: Volume) -> int | None:
+    """Bits the header states (DICOM BitsStored, image bit depth), else the integer dtype's."""
+    for key in ("bits_stored", "bit_depth"):
+        v = volume.header.fields.get(key)
+        if v:
+            return int(v)
+    if volume.dtype.kind in "iu":
+        return int(volume.dtype.itemsize * 8)
+    return None
+
+
+def _sample_values(volume: Volume, frames: np.ndarray) -> np.ndarray:
+    rows, cols = volume.image_shape
+    per = rows * cols * max(1, volume.n_coils)
+    keep = max(1, min(frames.size, MAX_SAMPLES // max(per, 1)))
+    frames = analysed_frames(frames.size, frames, keep)
+    parts = [np.asarray(b).ravel() for _, b in volume.iter_slices(8, scaled=False,
+                                                                  indices=frames)]
+    return np.concatenate(parts) if parts else np.zeros(0)
+
+
+def _histogram(stats: LevelStats) -> dict[str, Any]:
+    if stats.distinct == 0:
+        return {"edges": [], "counts": []}
+    lo, hi = float(stats.levels[0]), float(stats.levels[-1])
+    step = stats.step
+    if step and (hi - lo) / step + 1 <= 1024:
+        nb = int(round((hi - lo) / step)) + 1
+        edges = lo - step / 2 + step * np.arange(nb + 1)
+    else:
+        nb = 1024 if hi > lo else 1
+        edges = np.linspace(lo, hi if hi > lo else lo + 1, nb + 1)
+    counts, _ = np.histogram(stats.levels, bins=edges, weights=stats.counts)
+    return {"edges": [float(f"{e:.6g}") for e in edges],
+            "counts": [int(x) for x in counts]}
+
+
+@register(TRACE_ID, version="1", order=70,
+          default_estimates={"distinct_levels": None, "effective_bits": None,
+                             "clipped_fraction": None})
+def analyse(volume: Volume, ctx: Any) -> Trace:
+    """Count grey levels, look for a comb-shaped histogram and for clipping.
+
+    References
+    ----------
+    Widrow and Kollar 2008; Stamm and Liu, IEEE TIFS 2010; DICOM PS3.3 C.7.6.3.
+    """
+    frames = analysed_frames(volume.n_slices, ctx.frame_indices(), MAX_FRAMES)
+    stats = level_stats(_sample_values(volume, frames))
+    if stats.n_samples == 0:
+        return inconclusive(TRACE_ID, "No finite values to count grey levels in.")
+    bits = stated_bits(volume)
+    eff = float(np.log2(stats.distinct)) if stats.distinct > 0 else 0.0
+    score, n_dense = comb_score(stats)
+    clip = clipping(stats)
+    masked_low = False
+    if clip["low_pile"]:
+        try:
+            bg = background_of(volume, ctx)
+            const = constant_share(bg) if bg.usable else None
+            masked_low = bool(const is not None and const.masked and bg.stored is not None
+                              and const.value == float(stats.levels[0]))
+        except Exception:  # noqa: BLE001 - the background is optional evidence here
+            masked_low = False
+    high = clip["high"] if clip["high_pile"] else 0.0
+    low = clip["low"] if clip["low_pile"] and not masked_low else 0.0
+    clipped = high + low
+    lattice_note = ""
+    if volume.dtype.kind == "f" and stats.step is not None and stats.distinct > 1:
+        lattice_note = f" on a lattice of step {stats.step:.4g}"
+    squeezed = (stats.distinct <= SQUEEZED_LEVELS and stats.n_samples >= MIN_SAMPLES_FOR_LEVELS
+                and stats.distinct > 1)
+    comb = score >= COMB_SCORE and n_dense >= COMB_MIN_DENSE
+    evidence = {
+        "histogram": _histogram(stats),
+        "clipped_low_fraction": float(f"{clip['low']:.4g}"),
+        "clipped_high_fraction": float(f"{clip['high']:.4g}"),
+        "clip_values": [float(stats.levels[0]), float(stats.levels[-1])],
+        "low_pile_up": clip["low_pile"], "high_pile_up": clip["high_pile"],
+        "low_explained_by_masking": masked_low,
+        "distinct_levels": stats.distinct,
+        "stated_bits": bits,
+        "comb_score": float(f"{score:.4g}"),
+        "dense_levels": n_dense,
+        "lattice_step": None if stats.step is None else float(f"{stats.step:.6g}"),
+        "n_samples": stats.n_samples,
+        "frames_examined": int(frames.size),
+    }
+    estimates = {"distinct_levels": stats.distinct, "effective_bits": round(eff, 2),
+                 "clipped_fraction": float(f"{clipped:.4g}")}
+    findings = []
+    if squeezed:
+        of = f" of the {bits} bits stated" if bits else ""
+        findings.append(f"only {stats.distinct} grey levels{lattice_note} "
+                        f"({eff:.1f} effective bits{of})")
+    if comb:
+        findings.append(f"a comb-shaped histogram ({100 * score:.0f}% of the densely used "
+                        "levels empty, as integer rescaling leaves)")
+    if clipped >= CLIP_FRACTION:
+        parts = []
+        if high:
+            parts.append(f"{100 * high:.2f}% at the top value {stats.levels[-1]:.6g}")
+        if low:
+            parts.append(f"{100 * low:.2f}% at the bottom value {stats.levels[0]:.6g}")
+        findings.append("clipping (" + ", ".join(parts) + ")")
+    if findings:
+        conf = 0.9 if squeezed or comb else 0.75
+        summary = "The grey levels show " + "; ".join(findings) + "."
+        return Trace(TRACE_ID, "present", conf, summary, estimates, evidence)
+    of = f" ({bits} bits stated)" if bits else ""
+    summary = (f"{stats.distinct} distinct grey levels{lattice_note}, {eff:.1f} effective "
+               f"bits{of}; no comb, no clipping beyond {100 * CLIP_FRACTION:.1f}%.")
+    if stats.n_samples < MIN_SAMPLES_FOR_LEVELS and stats.distinct <= SQUEEZED_LEVELS:
+        return inconclusive(TRACE_ID, f"Too few samples ({stats.n_samples}) to tell the grey "
+                            "levels used from those available.", **evidence)
+    return Trace(TRACE_ID, "absent", 0.8, summary, estimates, evidence)
