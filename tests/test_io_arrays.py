@@ -119,3 +119,15 @@ def test_hdf5_dataset_key_and_largest(tmp_path):
         with open_input(path, dataset="missing"):
             pass
     assert info.value.code == "no_such_dataset" and "g/big" in info.value.message
+
+
+def test_npy_map_is_copy_on_write(tmp_path):
+    """Blocks handed to analysers may be modified in place; the file on disk never is."""
+    path = tmp_path / "w.npy"
+    np.save(path, np.ones((2, 8, 8), dtype=np.float32))
+    with open_input(path) as loaded:
+        vol = loaded.volumes[0]
+        for _idx, block in vol.iter_slices(2):
+            block *= 0
+        assert vol.data.flags.writeable
+    np.testing.assert_array_equal(np.load(path), np.ones((2, 8, 8), dtype=np.float32))

@@ -110,7 +110,8 @@ def read_npy(path: Path, opts: ReadOptions) -> list[Volume]:
         raise InputError("truncated", f"{path.name}: the header declares shape {list(shape)} "
                          f"({nbytes} bytes) but the file holds only {have} bytes of data.",
                          str(path))
-    arr = np.load(path, mmap_mode="r", allow_pickle=False)
+    # copy-on-write: analysers may modify the blocks they read; the file never changes
+    arr = np.load(path, mmap_mode="c", allow_pickle=False)
     meta = _sidecar(path)
     domain = opts.domain or meta.get("domain") or "image"
     cax = opts.coil_axis if opts.coil_axis is not None else meta.get("coil_axis")
