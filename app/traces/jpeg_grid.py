@@ -34,6 +34,11 @@ from scipy.stats import binom
 #: 1/12 per pixel, the same per coefficient for an orthonormal DCT: std 0.29), so one
 #: unit is over three standard deviations.
 _TOL = 1.0
+#: Largest DCT coefficient that rounding the 64 pixels of a block can make on its own
+#: (0.5 times the largest l1 norm of an orthonormal 8 x 8 basis function, 8): such
+#: coherent rounding patterns of nearly flat blocks are structured, not uniform, so
+#: coefficients up to this size carry no information about a step.
+_ROUNDING_MAX = 4.0
 #: Smallest share of the informative coefficients that must fit a step.
 _MIN_FIT = 0.8
 #: One-sided z score (binomial, against the share expected by chance) a step needs.
@@ -58,7 +63,7 @@ class Lattice:
     span : int
         ``k_max - k_min``: how many lattice steps the data cover.
     max_residual : float
-        Largest ``|v - (a k + b)|``; at most 0.5 for integer-rounded rescaling.
+        Largest ``|v - (a k + b)|``; about 0.5 for integer-rounded rescaling (0.75 allowed).
     reason : str
         Why no lattice was found (empty when found).
     """
@@ -166,7 +171,7 @@ def find_lattice(values: np.ndarray, *, max_levels: int = 65536) -> Lattice:
         a, b = float(a), float(b)
     k = np.round((u - b) / a)
     res = float(np.max(np.abs(u - (a * k + b))))
-    limit = 0.5 + 1e-6 if integer and a > 1.5 else 1e-4 * max(1.0, a)
+    limit = 0.75 if integer and a > 1.5 else 1e-4 * max(1.0, a)
     if integer and abs(a - 1.0) < 1e-9:
         res = 0.0
     if res > limit:
@@ -336,9 +341,9 @@ def _candidate_scores(s: np.ndarray, q: np.ndarray, *, dc: bool
             x = x - ph * qq / (2 * np.pi)
             inform = np.ones(x.shape, dtype=bool)
         else:
-            # coefficients inside a candidate's zero bin say nothing about it (small
-            # coherent rounding patterns of near-flat blocks live there)
-            inform = np.abs(x) >= np.maximum(1.5, qq / 4)
+            # coefficients inside a candidate's zero bin say nothing about it, nor
+            # do coherent rounding patterns of nearly flat blocks
+            inform = np.abs(x) > np.maximum(_ROUNDING_MAX, qq / 4)
         r = x - qq * np.round(x / qq)
         hit = (np.abs(r) <= tol[i:i + chunk, None]) & inform
         nq[i:i + chunk] = inform.sum(axis=1)
@@ -363,7 +368,7 @@ def _multiple_of_true_step(s: np.ndarray, q: float, m: int, *, dc: bool) -> bool
         ph = np.angle(np.mean(np.exp(2j * np.pi * x / q)))
         x = x - ph * q / (2 * np.pi)
     else:
-        x = x[np.abs(x) >= max(1.5, qf / 4)]
+        x = x[np.abs(x) > max(_ROUNDING_MAX, qf / 4)]
     tol = min(_TOL, qf / 4)
     k = np.round(x / qf)
     on = np.abs(x - qf * k) <= tol
@@ -393,7 +398,7 @@ def _step_for(c: np.ndarray, *, dc: bool, max_step: int) -> tuple[float, int, fl
     if not np.any(good):
         # a step of 1 only where many coefficients are too large to be rounding
         # patterns (whose magnitude is at most 0.5 * 8 = 4) and still fit no step
-        strong = int(np.sum(np.abs(s) > 4.0)) if not dc else n
+        strong = int(np.sum(np.abs(s) > _ROUNDING_MAX)) if not dc else n
         step = 1.0 if strong >= _MIN_SUPPORT_FINE else float("nan")
         return step, n, float("nan"), 0.0
     j = int(np.nonzero(good)[0][-1])
@@ -487,7 +492,12 @@ def analyse_grid(levels: np.ndarray, *, low: float, high: float, workers: int = 
     origin, scores = find_block_origin(x, low, high, workers=workers, max_blocks=max_blocks)
     coefs, blocks = block_dct(x, origin, workers=workers)
     ok = usable_blocks(blocks, low, high)
-    coefs = coefs[ok]
+    coefs, blocks = coefs[ok], blocks[ok]
+    # identical blocks (repeated patterns of piecewise-constant images) would count
+    # one coefficient value many times: keep each distinct block once
+    flat = blocks.reshape(len(blocks), 64)
+    _, first = np.unique(flat - flat.min(axis=1, keepdims=True), axis=0, return_index=True)
+    coefs = coefs[np.sort(first)]
     if len(coefs) > max_blocks:
         coefs = coefs[np.linspace(0, len(coefs) - 1, max_blocks).round().astype(int)]
     steps, support, fit, z = estimate_steps(coefs, max_step=max_step)

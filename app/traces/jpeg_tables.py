@@ -95,7 +95,8 @@ def natural_from_zigzag(values: list[int] | np.ndarray) -> np.ndarray:
 
 
 def match_quality(
-    table: np.ndarray, *, base: np.ndarray = ANNEX_K_LUMINANCE, weights: np.ndarray | None = None
+    table: np.ndarray, *, base: np.ndarray = ANNEX_K_LUMINANCE, weights: np.ndarray | None = None,
+    baseline: bool = True,
 ) -> tuple[int, float, bool]:
     """The IJG quality whose scaled table is closest to ``table``.
 
@@ -107,6 +108,9 @@ def match_quality(
         Annex K table the candidate was scaled from.
     weights : ndarray, optional
         Per-entry weights (for example confidence of an estimate).
+    baseline : bool
+        Compare with tables clamped to 255 (8-bit baseline); ``False`` for the
+        16-bit tables of 12-bit extended JPEG.
 
     Returns
     -------
@@ -129,7 +133,7 @@ def match_quality(
     w = np.ones((8, 8)) if weights is None else np.asarray(weights, dtype=float).reshape(8, 8)
     best = (1, np.inf, False)
     for q in range(1, 101):
-        ref = scaled_table(q, base=base).astype(float)
+        ref = scaled_table(q, base=base, baseline=baseline).astype(float)
         rel = (t[ok] - ref[ok]) / ref[ok]
         err = float(np.sqrt(np.sum(w[ok] * rel**2) / np.sum(w[ok])))
         if err < best[1] - 1e-12:
