@@ -1,0 +1,406 @@
+"""Shared spectral helpers: one FFT pass per Volume, shared by the spectral analysers.
+
+The pass streams the volume slice batch by slice batch, takes a 2D FFT of each
+frame (``scipy.fft`` with ``workers=``), sums power over receive coils, and
+accumulates per-axis energy profiles (averaged over frames and over the other
+axis). Only the profiles, one representative power map and, for 3D volumes, a
+through-plane profile from a subset of columns are kept, so memory stays bounded.
+
+The spectral analysers (zero-filling, k-space filtering, partial Fourier) read
+the result through :func:`spectrum_of`, which caches it on the analysis context.
+
+References
+----------
+.. [1] Bracewell, R. N. *The Fourier Transform and Its Applications*, 3rd ed.,
+   McGraw-Hill, 2000 (power spectra, sampling and interpolation by zero-padding).
+.. [2] Bernstein, M. A., King, K. F. and Zhou, X. J. *Handbook of MRI Pulse
+   Sequences*, Elsevier, 2004, ch. 13 (k-space zero-filling and apodization).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import scipy.fft as sfft
+
+from app.io.volume import Volume
+
+_TINY = 1e-30
+#: at most this many columns go into the through-plane (slice-axis) profile
+SLICE_PROFILE_COLUMNS = 16
+#: the through-plane profile needs at least this many slices
+MIN_SLICES_FOR_PROFILE = 16
+
+
+@dataclass
+class Spectrum:
+    """What one FFT pass over a Volume measured.
+
+    Attributes
+    ----------
+    shape : tuple of int
+        ``(rows, cols)`` of each frame.
+    n_frames : int
+        Frames that went into the profiles.
+    profiles : dict
+        Axis name (``"rows"``, ``"cols"``, optionally ``"slices"``) -> mean power per
+        spatial frequency, centred order (DC at index ``n // 2``), float64.
+    log_profiles : dict
+        The same axes -> mean of the power in dB (a geometric mean). Unlike the mean
+        power, it is not dominated by the few strongest object frequencies of the other
+        axis, so noise-floor steps stand out.
+    mean_power : ndarray
+        ``(rows, cols)`` power averaged over frames (centred).
+    mean_log : ndarray
+        ``(rows, cols)`` power in dB averaged over frames (centred); the detectors
+        read it column by column (or row by row), so that axis-aligned steps (the
+        edges of zero-filled k-space) add up while the rings of the object do not.
+    map_power : ndarray
+        Power spectrum (centred, summed over coils) of the representative frame.
+    map_index : int
+        Flat frame index of the representative frame.
+    domain : str
+        ``"image"`` or ``"kspace"`` (the Volume's domain).
+    complex_input : bool
+        Whether the frames were complex (phase kept) rather than real.
+    kspace_shifted : bool or None
+        For k-space input, whether the data had to be ``fftshift``-ed (DC at the corner).
+    notes : list of str
+        Sentences about what was measured (stated subsampling, skipped axes).
+    """
+
+    shape: tuple[int, int]
+    n_frames: int
+    profiles: dict[str, np.ndarray]
+    log_profiles: dict[str, np.ndarray]
+    mean_power: np.ndarray
+    mean_log: np.ndarray
+    map_power: np.ndarray
+    map_index: int
+    domain: str = "image"
+    complex_input: bool = False
+    kspace_shifted: bool | None = None
+    notes: list[str] = field(default_factory=list)
+
+
+def to_db(power: Any) -> np.ndarray:
+    """Power to decibels, ``10 log10(p)``, with a floor so that zeros stay finite."""
+    p = np.asarray(power, dtype=np.float64)
+    return 10.0 * np.log10(np.maximum(p, _TINY))
+
+
+def frame_power(
+    block: np.ndarray,
+    *,
+    domain: str = "image",
+    multi_coil: bool = False,
+    shift: bool = True,
+    workers: int = 2,
+) -> np.ndarray:
+    """Centred k-space power of a batch of frames, summed over coils.
+
+    Parameters
+    ----------
+    block : ndarray
+        ``(b, rows, cols)`` or ``(b, coils, rows, cols)``.
+    domain : {"image", "kspace"}
+        For ``"image"`` the frames are transformed with ``scipy.fft.fft2``; for
+        ``"kspace"`` they already are k-space.
+    multi_coil : bool
+        Whether axis 1 indexes coils (power is summed over it).
+    shift : bool
+        ``fftshift`` the result so that DC sits at ``n // 2`` (for k-space input,
+        ``False`` when the data is already centred).
+    workers : int
+        Threads for ``scipy.fft``.
+
+    Returns
+    -------
+    ndarray
+        ``(b, rows, cols)`` float32 power.
+
+    References
+    ----------
+    .. [1] Bracewell, R. N. *The Fourier Transform and Its Applications*, 2000.
+    """
+    if domain == "image":
+        if np.iscomplexobj(block):
+            spec = sfft.fft2(block.astype(np.complex64, copy=False), workers=workers)
+        else:
+            spec = sfft.fft2(block.astype(np.float32, copy=False), workers=workers)
+    else:
+        spec = block
+    power = (spec.real.astype(np.float32) ** 2) + (spec.imag.astype(np.float32) ** 2)
+    if multi_coil:
+        power = power.sum(axis=1)
+    if shift:
+        power = sfft.fftshift(power, axes=(-2, -1))
+    return power
+
+
+def _kspace_needs_shift(power: np.ndarray) -> bool:
+    """Whether k-space power has its peak near the corner (DC at index 0) not the centre."""
+    rows, cols = power.shape[-2:]
+    mean = power.reshape(-1, rows, cols).mean(axis=0)
+    r, c = np.unravel_index(int(np.argmax(mean)), mean.shape)
+    dr = min(abs(r - rows // 2), rows - abs(r - rows // 2))
+    dc = min(abs(c - cols // 2), cols - abs(c - cols // 2))
+    dr0 = min(r, rows - r)
+    dc0 = min(c, cols - c)
+    return bool(dr0 + dc0 < dr + dc)
+
+
+def _slice_axis_plan(volume: Volume, frame_indices: np.ndarray) -> tuple[bool, str | None]:
+    """Whether a through-plane profile is measurable, and why not if it is not."""
+    if volume.domain != "image":
+        return False, "through-plane profile not measured for k-space input"
+    frame_axes = [a for a in volume.axes[:-2] if a != "coils"]
+    if frame_axes != ["slices"]:
+        return False, None
+    n = volume.slice_axis_size or 0
+    if n < MIN_SLICES_FOR_PROFILE:
+        return False, None
+    if len(frame_indices) != n:
+        return False, "through-plane profile not measured: frames were subsampled"
+    return True, None
+
+
+def compute_spectrum(
+    volume: Volume,
+    *,
+    frame_indices: Any = None,
+    batch: int = 16,
+    workers: int = 2,
+) -> Spectrum:
+    """Stream a Volume once and accumulate its k-space energy profiles.
+
+    Parameters
+    ----------
+    volume : Volume
+    frame_indices : sequence of int, optional
+        Flat frames to use (default all).
+    batch : int
+        Frames per batch.
+    workers : int
+        ``scipy.fft`` threads.
+
+    Returns
+    -------
+    Spectrum
+
+    References
+    ----------
+    .. [1] Bracewell, R. N. *The Fourier Transform and Its Applications*, 2000.
+    """
+    rows, cols = volume.image_shape
+    idx_all = np.arange(volume.n_slices) if frame_indices is None else np.asarray(frame_indices)
+    multi = volume.coil_axis is not None
+    complex_input = volume.value_type == "complex"
+    rep = int(idx_all[len(idx_all) // 2])
+    sum_p = np.zeros((rows, cols), dtype=np.float64)
+    sum_log = np.zeros((rows, cols), dtype=np.float64)
+    map_power = np.zeros((rows, cols), dtype=np.float32)
+    n_frames = 0
+    shift: bool | None = None
+    notes: list[str] = []
+    do_slices, why_not = _slice_axis_plan(volume, idx_all)
+    if why_not:
+        notes.append(why_not)
+    col_sel = np.unique(np.linspace(0, cols - 1, min(cols, SLICE_PROFILE_COLUMNS)).astype(int))
+    col_buf = None
+    if do_slices:
+        n_s = len(idx_all)
+        lead = (n_s, volume.n_coils) if multi else (n_s,)
+        dt = np.complex64 if complex_input else np.float32
+        col_buf = np.zeros(lead + (rows, len(col_sel)), dtype=dt)
+    pos = 0
+    for idx, block in volume.iter_slices(batch, indices=idx_all):
+        block = np.nan_to_num(block, copy=False)
+        if volume.domain == "kspace":
+            if shift is None:
+                raw = frame_power(block, domain="kspace", multi_coil=multi, shift=False)
+                shift = _kspace_needs_shift(raw)
+            power = frame_power(block, domain="kspace", multi_coil=multi, shift=bool(shift))
+        else:
+            power = frame_power(block, domain="image", multi_coil=multi, workers=workers)
+        sum_p += power.sum(axis=0, dtype=np.float64)
+        floor = np.float32(1e-12) * power.mean(axis=(1, 2), keepdims=True) + np.float32(1e-30)
+        sum_log += np.log10(power + floor).sum(axis=0, dtype=np.float64)
+        hit = np.nonzero(idx == rep)[0]
+        if len(hit):
+            map_power = power[int(hit[0])].astype(np.float32)
+        if col_buf is not None:
+            col_buf[pos:pos + len(idx)] = block[..., col_sel]
+        pos += len(idx)
+        n_frames += len(idx)
+    if n_frames == 0:
+        raise ValueError("the volume has no frames to analyse")
+    mean_power = sum_p / n_frames
+    mean_log = sum_log * (10.0 / n_frames)
+    profiles = {"rows": mean_power.mean(axis=1), "cols": mean_power.mean(axis=0)}
+    log_profiles = {"rows": mean_log.mean(axis=1), "cols": mean_log.mean(axis=0)}
+    if col_buf is not None:
+        spec = sfft.fft(col_buf, axis=0, workers=workers)
+        p = spec.real.astype(np.float64) ** 2 + spec.imag.astype(np.float64) ** 2
+        if multi:
+            p = p.sum(axis=1)
+        profiles["slices"] = sfft.fftshift(p.mean(axis=(1, 2)))
+        floor = 1e-12 * p.mean() + 1e-30
+        log_profiles["slices"] = sfft.fftshift((10.0 * np.log10(p + floor)).mean(axis=(1, 2)))
+    return Spectrum(
+        shape=(rows, cols),
+        n_frames=n_frames,
+        profiles=profiles,
+        log_profiles=log_profiles,
+        mean_power=mean_power,
+        mean_log=mean_log,
+        map_power=map_power,
+        map_index=rep,
+        domain=volume.domain,
+        complex_input=complex_input and volume.domain == "image",
+        kspace_shifted=shift,
+        notes=notes,
+    )
+
+
+def spectrum_of(volume: Volume, ctx: Any) -> Spectrum:
+    """The Volume's :class:`Spectrum`, computed once per analysis context.
+
+    Parameters
+    ----------
+    volume : Volume
+    ctx : AnalysisContext
+        Supplies ``workers``, ``batch``, ``frame_indices()`` and ``cached()``.
+
+    Returns
+    -------
+    Spectrum
+    """
+    return ctx.cached(
+        "spectrum",
+        lambda: compute_spectrum(
+            volume, frame_indices=ctx.frame_indices(), batch=ctx.batch, workers=ctx.workers
+        ),
+    )
+
+
+# ----- evidence helpers -------------------------------------------------------------------
+def downsample_mean(values: Any, max_len: int = 1024) -> np.ndarray:
+    """Average consecutive samples so that at most ``max_len`` remain."""
+    v = np.asarray(values, dtype=np.float64)
+    if len(v) <= max_len:
+        return v
+    step = int(np.ceil(len(v) / max_len))
+    n = (len(v) // step) * step
+    head = v[:n].reshape(-1, step).mean(axis=1)
+    return np.concatenate([head, [v[n:].mean()]]) if n < len(v) else head
+
+
+def round_sig(values: Any, digits: int = 4) -> Any:
+    """Round floats (scalars or arrays) to ``digits`` significant digits for evidence."""
+    a = np.asarray(values, dtype=np.float64)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        mag = np.where(a == 0, 0, np.floor(np.log10(np.abs(np.where(a == 0, 1, a)))))
+    factor = 10.0 ** (digits - 1 - mag)
+    out = np.round(a * factor) / factor
+    out = np.where(np.isfinite(a), out, np.nan)
+    if out.ndim == 0:
+        f = float(out)
+        return None if not np.isfinite(f) else f
+    return [None if not np.isfinite(x) else float(x) for x in out.ravel()] if out.ndim == 1 \
+        else [[None if not np.isfinite(x) else float(x) for x in row] for row in out]
+
+
+def profile_db_evidence(spec: Spectrum) -> dict[str, list]:
+    """The ``profiles_db`` evidence: per-axis profiles in dB, at most 1024 long."""
+    return {
+        ax: round_sig(to_db(downsample_mean(p)))
+        for ax, p in spec.profiles.items()
+        if ax in ("rows", "cols", "slices")
+    }
+
+
+def block_average(image: Any, max_side: int = 128) -> tuple[np.ndarray, list[int]]:
+    """Block-average a 2D map to at most ``max_side`` per side; return it and the steps."""
+    a = np.asarray(image, dtype=np.float64)
+    steps = [int(np.ceil(s / max_side)) for s in a.shape]
+    r = (a.shape[0] // steps[0]) * steps[0]
+    c = (a.shape[1] // steps[1]) * steps[1]
+    out = a[:r, :c].reshape(r // steps[0], steps[0], c // steps[1], steps[1]).mean(axis=(1, 3))
+    return out, steps
+
+
+def map_evidence(spec: Spectrum) -> dict[str, Any]:
+    """``spectrum_map_db``, ``spectrum_map_step`` and ``spectrum_slice`` evidence."""
+    m, steps = block_average(spec.map_power, 128)
+    return {
+        "spectrum_map_db": round_sig(to_db(m)),
+        "spectrum_map_step": steps,
+        "spectrum_slice": int(spec.map_index),
+    }
+
+
+# ----- profile analysis ---------------------------------------------------------------------
+def fold_sides(profile: Any) -> tuple[np.ndarray, np.ndarray]:
+    """Split a centred profile into its outward sides from DC.
+
+    Returns ``(positive, negative)``: ``positive[d]`` is the sample ``d`` above DC
+    (index ``n // 2 + d``), ``negative[d]`` the one ``d`` below (index ``n // 2 - d``).
+    """
+    p = np.asarray(profile)
+    c = len(p) // 2
+    return p[c:], p[c::-1]
+
+
+def step_scores(side_db: np.ndarray, window: int, gap: int = 1) -> np.ndarray:
+    """Size of a downward step after each sample of an outward profile side, in dB.
+
+    A straight line is fitted to the ``window`` samples ending at ``d`` and another to
+    the ``window`` samples starting at ``d + 1 + gap``; the score is the gap between
+    the two lines extrapolated to the middle of the skipped samples. A smooth decay
+    (power law, window roll-off) scores near 0; the edge of zero-filled k-space scores
+    the level drop. Skipping one sample (``gap=1``) lets an edge that falls over two
+    samples (the half-level sample of an even-sized acquisition seen through a
+    magnitude image) count in full.
+
+    Parameters
+    ----------
+    side_db : ndarray
+        ``(n,)`` or ``(n, m)``: outward samples along axis 0 (``m`` independent columns).
+    window : int
+        Samples per fitted line.
+    gap : int
+        Samples skipped between the two windows.
+
+    Returns
+    -------
+    ndarray
+        The same shape as ``side_db``; positions without two full windows are NaN.
+
+    References
+    ----------
+    .. [1] Canny, J. "A computational approach to edge detection", IEEE Trans. PAMI
+       8(6), 1986 (a step detected against a local model, here linear in dB).
+    """
+    a = np.asarray(side_db, dtype=np.float64)
+    one_d = a.ndim == 1
+    if one_d:
+        a = a[:, None]
+    n = a.shape[0]
+    out = np.full(a.shape, np.nan)
+    w = int(window)
+    g = int(gap)
+    if n >= 2 * w + g + 1:
+        win = np.lib.stride_tricks.sliding_window_view(a, w, axis=0)  # (n - w + 1, m, w)
+        xc = np.arange(w) - (w - 1) / 2.0
+        slope = win @ xc / float((xc**2).sum())
+        mean = win.mean(axis=-1)
+        half = (w - 1) / 2.0 + 0.5 + g / 2.0
+        end_val = mean + slope * half  # extrapolated to the middle of the gap after it
+        start_val = mean - slope * half  # extrapolated to the middle of the gap before it
+        # the window starting at k covers [k, k + w - 1]; the inside one ends at d
+        d = np.arange(w - 1, n - w - g)
+        out[d] = end_val[d - w + 1] - start_val[d + 1 + g]
+    return out[:, 0] if one_d else out
