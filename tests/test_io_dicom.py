@@ -226,3 +226,27 @@ def test_undecodable_file_in_folder_becomes_warning(tmp_path):
     with open_input(tmp_path) as loaded:
         assert [v.shape for v in loaded.volumes] == [(2, 64, 64)]
         assert any("quality 42" in w for w in loaded.warnings)
+
+
+@pytest.mark.parametrize("signed", [False, True])
+def test_stack_applies_bits_stored_like_pydicom(tmp_path, signed):
+    """Uncompressed series copied from the bytes: bits above BitsStored = 12 are masked
+    (unsigned) or sign-extended (signed) exactly as pydicom's pixel_array does."""
+    rng = np.random.default_rng(5)
+    refs = []
+    for k in range(3):
+        ds = pydicom.dcmread(_f("MR_small.dcm"))
+        raw = rng.integers(0, 1 << 16, size=(64, 64), dtype=np.uint16)
+        ds.PixelRepresentation = int(signed)
+        ds.BitsStored, ds.HighBit = 12, 11
+        ds.PixelData = raw.tobytes()
+        ds.InstanceNumber = k + 1
+        ds.SOPInstanceUID = pydicom.uid.generate_uid()
+        ds.ImagePositionPatient = [0.0, 0.0, float(k)]
+        ds.ImageOrientationPatient = [1, 0, 0, 0, 1, 0]
+        ds.save_as(tmp_path / f"s{k}.dcm")
+        refs.append(pydicom.dcmread(tmp_path / f"s{k}.dcm").pixel_array)
+    with open_input(tmp_path) as loaded:
+        data = np.asarray(loaded.volumes[0].data)
+    assert data.dtype == refs[0].dtype
+    np.testing.assert_array_equal(data, np.stack(refs))

@@ -69,10 +69,44 @@ class UndecodablePixelsError(InputError):
         self.header = header
 
 
+#: Uncompressed transfer syntaxes whose pixels can be copied straight from the bytes.
+_NATIVE_TS = {"1.2.840.10008.1.2": "<", "1.2.840.10008.1.2.1": "<", "1.2.840.10008.1.2.2": ">"}
+
+
+@dataclass
+class _Meta:
+    """The attributes grouping, ordering and stacking need, read once per file."""
+
+    series_uid: str
+    rows: int
+    cols: int
+    spp: int
+    frames: int
+    bits_allocated: int
+    bits_stored: int
+    signed: bool
+    ts: str
+    normal: tuple[float, ...] | None
+    ipp: np.ndarray | None
+    instance: int | None
+    slope: float
+    intercept: float
+
+    @property
+    def group_key(self) -> tuple:
+        orient = tuple(round(v, 3) for v in self.normal) if self.normal is not None else None
+        return (self.series_uid, self.rows, self.cols, self.spp, orient)
+
+    @property
+    def declared_bytes(self) -> int:
+        return self.rows * self.cols * self.frames * self.spp * max(1, self.bits_allocated // 8)
+
+
 @dataclass
 class _Item:
     path: Path
     ds: Any
+    meta: _Meta | None = None
 
 
 def is_dicom_file(path: Path) -> bool:
@@ -328,32 +362,82 @@ def _normal(ds: Any) -> np.ndarray | None:
     return None if norm == 0 else n / norm
 
 
+def _meta(ds: Any) -> _Meta:
+    n = _normal(ds)
+    ipp = ds.get("ImagePositionPatient")
+    inst = ds.get("InstanceNumber")
+    bits_allocated = int(ds.get("BitsAllocated", 16) or 16)
+    return _Meta(
+        series_uid=str(ds.get("SeriesInstanceUID", "")),
+        rows=int(ds.get("Rows", 0) or 0),
+        cols=int(ds.get("Columns", 0) or 0),
+        spp=int(ds.get("SamplesPerPixel", 1) or 1),
+        frames=int(ds.get("NumberOfFrames", 1) or 1),
+        bits_allocated=bits_allocated,
+        bits_stored=int(ds.get("BitsStored", bits_allocated) or bits_allocated),
+        signed=int(ds.get("PixelRepresentation", 0) or 0) == 1,
+        ts=_transfer_syntax(ds),
+        normal=tuple(float(v) for v in n) if n is not None else None,
+        ipp=None if ipp is None or len(ipp) != 3 else np.asarray([float(v) for v in ipp]),
+        instance=_int_or_none(inst),
+        slope=_float_or_none(ds.get("RescaleSlope")) or 1.0,
+        intercept=_float_or_none(ds.get("RescaleIntercept")) or 0.0,
+    )
+
+
 def _order(items: list[_Item]) -> tuple[list[_Item], float | None]:
     """Sort slices; return them and the slice spacing along the normal (mm)."""
-    normal = _normal(items[0].ds)
-    pos = []
-    for it in items:
-        ipp = it.ds.get("ImagePositionPatient")
-        pos.append(None if ipp is None or len(ipp) != 3 else np.asarray([float(v) for v in ipp]))
-    if normal is not None and all(p is not None for p in pos):
-        proj = np.asarray([float(np.dot(p, normal)) for p in pos])
+    normal = items[0].meta.normal
+    if normal is not None and all(it.meta.ipp is not None for it in items):
+        nv = np.asarray(normal)
+        proj = np.asarray([float(np.dot(it.meta.ipp, nv)) for it in items])
         if len(np.unique(np.round(proj, 4))) == len(proj):
             order = np.argsort(proj, kind="stable")
             sp = np.diff(proj[order])
             spacing = float(np.median(np.abs(sp))) if len(sp) else None
             return [items[i] for i in order], spacing
-    inst = [it.ds.get("InstanceNumber") for it in items]
-    if all(v is not None for v in inst):
-        order = np.argsort([int(v) for v in inst], kind="stable")
+    if all(it.meta.instance is not None for it in items):
+        order = np.argsort([it.meta.instance for it in items], kind="stable")
         items = [items[i] for i in order]
     return items, None
 
 
-def _group_key(ds: Any) -> tuple:
-    n = _normal(ds)
-    orient = tuple(np.round(n, 3)) if n is not None else None
-    return (str(ds.get("SeriesInstanceUID", "")), int(ds.get("Rows", 0) or 0),
-            int(ds.get("Columns", 0) or 0), int(ds.get("SamplesPerPixel", 1) or 1), orient)
+def _native_dtype(m: _Meta) -> np.dtype | None:
+    """The stored dtype when pixels can be copied from the bytes, else None."""
+    if m.ts not in _NATIVE_TS or m.spp != 1 or m.frames != 1 or m.bits_allocated not in (8, 16,
+                                                                                        32):
+        return None
+    kind = "i" if m.signed else "u"
+    return np.dtype(f"{_NATIVE_TS[m.ts]}{kind}{m.bits_allocated // 8}")
+
+
+def _native_into(item: _Item, out: np.ndarray, dtype: np.dtype) -> None:
+    """Copy one uncompressed frame's bytes into ``out`` (a slot of the stack)."""
+    m = item.meta
+    n = m.rows * m.cols * dtype.itemsize
+    try:
+        raw = item.ds.PixelData
+    except Exception as exc:  # noqa: BLE001 - a deferred read of a damaged file
+        raise InputError("truncated_dicom", f"{item.path.name}: the pixel data could not be "
+                         f"read (damaged or truncated file): {exc}", str(item.path)) from exc
+    if raw is None or len(raw) < n:
+        have = 0 if raw is None else len(raw)
+        raise InputError("truncated_dicom", f"{item.path.name}: the pixel data hold {have} "
+                         f"bytes where {m.rows} x {m.cols} pixels need {n} (damaged or "
+                         "truncated file).", str(item.path))
+    out[...] = np.frombuffer(raw, dtype=dtype, count=m.rows * m.cols).reshape(m.rows, m.cols)
+
+
+def _fix_unused_bits(data: np.ndarray, m: _Meta) -> None:
+    """Mask (unsigned) or sign-extend (signed) bits above BitsStored, as pydicom does."""
+    spare = m.bits_allocated - m.bits_stored
+    if spare <= 0 or m.bits_stored <= 0:
+        return
+    if m.signed:
+        data <<= spare
+        data >>= spare
+    else:
+        data &= np.asarray((1 << m.bits_stored) - 1, dtype=data.dtype)
 
 
 def _name(ds: Any, path: Path) -> str:
@@ -374,15 +458,6 @@ def _luminance(arr: np.ndarray, photometric: str) -> np.ndarray:
     return y
 
 
-def _declared_bytes(ds: Any) -> int:
-    rows = int(ds.get("Rows", 0) or 0)
-    cols = int(ds.get("Columns", 0) or 0)
-    frames = int(ds.get("NumberOfFrames", 1) or 1)
-    spp = int(ds.get("SamplesPerPixel", 1) or 1)
-    bits = int(ds.get("BitsAllocated", 16) or 16)
-    return rows * cols * frames * spp * max(1, bits // 8)
-
-
 def _stored_range(data: np.ndarray) -> list[float]:
     if data.size == 0:
         return []
@@ -396,46 +471,53 @@ def _volume_of(items: list[_Item], opts: ReadOptions) -> Volume:
         items, spacing_mm = _order(items)
     first = items[0]
     ds0 = first.ds
+    m0 = first.meta
     hdr = header_fields(ds0)
-    photometric = str(first.ds.get("PhotometricInterpretation", "MONOCHROME2"))
-    spp = int(first.ds.get("SamplesPerPixel", 1) or 1)
-    frames = int(first.ds.get("NumberOfFrames", 1) or 1)
-    slopes = {(_float_or_none(it.ds.get("RescaleSlope")) or 1.0,
-               _float_or_none(it.ds.get("RescaleIntercept")) or 0.0) for it in items}
+    photometric = str(ds0.get("PhotometricInterpretation", "MONOCHROME2"))
+    frames = m0.frames
+    slopes = {(it.meta.slope, it.meta.intercept) for it in items}
+    one_scale = len(slopes) == 1
+    native = _native_dtype(m0)
     if len(items) == 1:
         arr = _pixels(first)
-        if spp > 1:
+        if m0.spp > 1:
             arr = _luminance(arr, photometric)
             opts.warnings.append(f"{first.path.name}: colour ({photometric}) pixels were "
                                  "converted to luminance.")
         data = arr
     else:
-        rows, cols = hdr.fields["rows"], hdr.fields["columns"]
+        rows, cols = m0.rows, m0.cols
         data = None
+        fast = native is not None and one_scale
+        if fast:
+            data = np.empty((len(items), rows, cols), dtype=native.newbyteorder("="))
         for k, it in enumerate(items):
-            arr = _pixels(it)
-            if spp > 1:
-                arr = _luminance(arr, photometric)
-            if arr.shape != (rows, cols):
+            if (it.meta.rows, it.meta.cols) != (rows, cols):
                 raise InputError("inconsistent_series",
-                                 f"{it.path.name} has {arr.shape} pixels where the series "
-                                 f"has {(rows, cols)}.", str(it.path))
-            if data is None:
-                dtype = arr.dtype if len(slopes) == 1 else np.float32
-                data = np.empty((len(items), rows, cols), dtype=dtype)
-            if len(slopes) == 1:
-                data[k] = arr
+                                 f"{it.path.name} has {(it.meta.rows, it.meta.cols)} pixels "
+                                 f"where the series has {(rows, cols)}.", str(it.path))
+            if fast and _native_dtype(it.meta) == native:
+                _native_into(it, data[k], native)
             else:
-                s = _float_or_none(it.ds.get("RescaleSlope")) or 1.0
-                o = _float_or_none(it.ds.get("RescaleIntercept")) or 0.0
-                data[k] = arr.astype(np.float32) * s + o
+                arr = _pixels(it)
+                if m0.spp > 1:
+                    arr = _luminance(arr, photometric)
+                if data is None:
+                    data = np.empty((len(items), rows, cols),
+                                    dtype=arr.dtype if one_scale else np.float32)
+                if one_scale:
+                    data[k] = arr
+                else:
+                    data[k] = arr.astype(np.float32) * it.meta.slope + it.meta.intercept
             if k:
-                it.ds = None  # free each decoded dataset once its pixels are copied
-        if spp > 1:
+                it.ds = None  # free each dataset once its pixels are copied
+        if fast:
+            _fix_unused_bits(data, m0)
+        if m0.spp > 1:
             opts.warnings.append(f"{_name(ds0, first.path)}: colour ({photometric}) "
                                  "pixels were converted to luminance.")
     assert data is not None
-    if len(slopes) == 1:
+    if one_scale:
         scale, offset = next(iter(slopes))
     else:
         scale, offset = 1.0, 0.0
@@ -522,13 +604,14 @@ def read_dicom(paths: list[Path], opts: ReadOptions) -> list[Volume]:
                 raise
             errors.append(exc)
             continue
-        total += _declared_bytes(ds)
+        meta = _meta(ds)
+        total += meta.declared_bytes
         check_array_bytes(total, opts.limits, str(p), "This DICOM input")
-        item = _Item(p, ds)
-        if int(ds.get("NumberOfFrames", 1) or 1) > 1:
+        item = _Item(p, ds, meta)
+        if meta.frames > 1:
             singles.append([item])
         else:
-            groups[_group_key(ds)].append(item)
+            groups[meta.group_key].append(item)
     out: list[Volume] = []
     for items in [*groups.values(), *singles]:
         try:
