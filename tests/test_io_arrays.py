@@ -131,3 +131,17 @@ def test_npy_map_is_copy_on_write(tmp_path):
             block *= 0
         assert vol.data.flags.writeable
     np.testing.assert_array_equal(np.load(path), np.ones((2, 8, 8), dtype=np.float32))
+
+
+def test_hdf5_coil_axis_first_is_moved_lazily(tmp_path, coils):
+    """Truth: a (4 coils, 3 slices, 32, 32) dataset with coil_axis 0; frame s must be
+    written[:, s] (coils x rows x cols), read lazily from the file."""
+    arr = np.ascontiguousarray(np.moveaxis(coils, 1, 0))
+    path = tmp_path / "c.h5"
+    with h5py.File(path, "w") as f:
+        f["kspace"] = arr
+    with open_input(path, coil_axis=0) as loaded:
+        vol = loaded.volumes[0]
+        assert vol.axes == ("slices", "coils", "rows", "cols") and vol.shape == (3, 4, 32, 32)
+        np.testing.assert_array_equal(vol.frame(1), arr[:, 1])
+        np.testing.assert_array_equal(vol.to_array(), np.moveaxis(arr, 0, 1))

@@ -24,6 +24,41 @@ from app.io.options import ReadOptions, array_axes
 from app.io.volume import Header, Volume
 
 
+class CoilsBeforeImage:
+    """A lazily read view of an h5py Dataset with its coil axis moved just before
+    rows and cols (where :class:`app.io.volume.Volume` expects it); each
+    indexing reads only the selected part from the file."""
+
+    def __init__(self, dataset: Any, coil_axis: int) -> None:
+        nd = len(dataset.shape)
+        self._ds = dataset
+        self._perm = [k for k in range(nd - 2) if k != coil_axis] + [coil_axis, nd - 2, nd - 1]
+        self.shape = tuple(int(dataset.shape[k]) for k in self._perm)
+        self.dtype = dataset.dtype
+        self.ndim = nd
+
+    def __getitem__(self, key: Any) -> np.ndarray:
+        key = key if isinstance(key, tuple) else (key,)
+        if any(k is Ellipsis for k in key):
+            raise IndexError("Ellipsis is not supported")
+        key = key + (slice(None),) * (self.ndim - len(key))
+        orig: list[Any] = [slice(None)] * self.ndim
+        for view_axis, k in enumerate(key):
+            orig[self._perm[view_axis]] = k
+
+        def dropped(k: Any) -> bool:
+            return isinstance(k, int | np.integer)
+
+        out = np.asarray(self._ds[tuple(orig)])
+        kept_orig = [a for a in range(self.ndim) if not dropped(orig[a])]
+        kept_view = [self._perm[v] for v in range(self.ndim) if not dropped(key[v])]
+        return np.transpose(out, [kept_orig.index(a) for a in kept_view])
+
+    def __array__(self, dtype: Any = None, copy: Any = None) -> np.ndarray:
+        a = self[()]
+        return a if dtype is None else a.astype(dtype)
+
+
 def _datasets(f: Any) -> dict[str, Any]:
     import h5py
 
@@ -101,8 +136,14 @@ def read_hdf5(path: Path, opts: ReadOptions) -> list[Volume]:
     fields: dict[str, Any] = {"dataset": key, "bit_depth": ds.dtype.itemsize * 8}
     raw = {str(k): str(v)[:200] for k, v in list(f.attrs.items())[:50]}
     raw.update({f"{key}.{k}": str(v)[:200] for k, v in list(ds.attrs.items())[:50]})
+    data: Any = ds
+    nd = len(ds.shape)
+    if cax is not None and -nd <= cax < nd - 2 and cax % nd != nd - 3:
+        data = CoilsBeforeImage(ds, cax % nd)
+        fields["coil_axis_in_file"] = cax % nd
+        cax = nd - 3
     try:
-        return [Volume(data=ds, domain=domain, axes=array_axes(len(ds.shape), cax),
+        return [Volume(data=data, domain=domain, axes=array_axes(nd, cax),
                        format="hdf5", source_files=[str(path)], name=f"{path.stem}:{key}",
                        header=Header(fields=fields, raw=raw))]
     except ValueError as exc:
