@@ -250,3 +250,26 @@ def test_stack_applies_bits_stored_like_pydicom(tmp_path, signed):
         data = np.asarray(loaded.volumes[0].data)
     assert data.dtype == refs[0].dtype
     np.testing.assert_array_equal(data, np.stack(refs))
+
+
+@pytest.mark.parametrize("coded,reference", [
+    ("MR2_J2KI.dcm", "MR2_UNCI.dcm"),
+    ("MR2_J2KR.dcm", "MR2_UNCR.dcm"),
+    ("emri_small_jpeg_2k_lossless.dcm", "emri_small.dcm"),
+    ("emri_small_RLE.dcm", "emri_small.dcm"),
+    ("emri_small_big_endian.dcm", "emri_small.dcm"),
+])
+def test_compressed_equal_their_uncompressed_references(coded, reference):
+    """pydicom-data ships each coded file beside its decoded reference (UNCI/UNCR, the
+    uncompressed emri_small): the decoded stored values are identical."""
+    with open_input(_f(coded)) as a, open_input(_f(reference)) as b:
+        np.testing.assert_array_equal(a.volumes[0].to_array(scaled=False),
+                                      b.volumes[0].to_array(scaled=False))
+
+
+def test_data_set_cut_short_is_truncated():
+    """emri_small_jpeg_2k_lossless_too_short.dcm (pydicom-data) ends inside its data set."""
+    with pytest.raises(InputError) as info:
+        with open_input(_f("emri_small_jpeg_2k_lossless_too_short.dcm")):
+            pass
+    assert info.value.code == "truncated_dicom"

@@ -147,7 +147,8 @@ def _read_dataset(path: Path) -> Any:
     from pydicom.errors import InvalidDicomError
 
     try:
-        with _quiet_pydicom():
+        with _quiet_pydicom(), _warnings.catch_warnings(record=True) as caught:
+            _warnings.simplefilter("always")
             ds = pydicom.dcmread(str(path), defer_size="1 MB")
     except InvalidDicomError as exc:
         raise InputError(
@@ -160,10 +161,20 @@ def _read_dataset(path: Path) -> Any:
             str(path),
         ) from exc
     if "PixelData" not in ds and "FloatPixelData" not in ds and "DoubleFloatPixelData" not in ds:
+        cut = [str(w.message) for w in caught if "end of file" in str(w.message).lower()]
+        if cut or len(ds) == 0:
+            raise InputError(
+                "truncated_dicom",
+                f"{path.name} ends before its data set does (truncated file)"
+                + (f": {cut[0][:120]}" if cut else "."),
+                str(path),
+            )
+        sop = ds.get("SOPClassUID") or getattr(ds, "file_meta", {}).get(
+            "MediaStorageSOPClassUID", "unknown")
         raise InputError(
             "no_pixel_data",
             f"{path.name} is a DICOM file without image pixels "
-            f"(SOP class {ds.get('SOPClassUID', 'unknown')}); give image files.",
+            f"(SOP class {getattr(sop, 'name', sop)}); give image files.",
             str(path),
         )
     return ds
