@@ -273,3 +273,48 @@ def test_data_set_cut_short_is_truncated():
         with open_input(_f("emri_small_jpeg_2k_lossless_too_short.dcm")):
             pass
     assert info.value.code == "truncated_dicom"
+
+
+def _enhanced(tmp_path: Path) -> tuple[Path, np.ndarray]:
+    """A 3-frame file built from emri_small.dcm (Enhanced MR) with functional groups:
+    shared PixelSpacing 0.5 mm, MR FOV/Geometry 128 frequency x 96 phase steps (COL),
+    and per-frame positions at z = 2, 0, 1 (truth: sorted order is frames 1, 2, 0)."""
+    from pydicom.dataset import Dataset
+    from pydicom.sequence import Sequence
+
+    ds = pydicom.dcmread(_f("emri_small.dcm"))
+    frames = ds.pixel_array[:3].copy()
+    ds.NumberOfFrames = 3
+    ds.PixelData = frames.tobytes()
+    pm, geo, ori = Dataset(), Dataset(), Dataset()
+    pm.PixelSpacing = [0.5, 0.5]
+    geo.InPlanePhaseEncodingDirection = "COL"
+    geo.MRAcquisitionFrequencyEncodingSteps = 128
+    geo.MRAcquisitionPhaseEncodingStepsInPlane = 96
+    ori.ImageOrientationPatient = [1, 0, 0, 0, 1, 0]
+    shared = Dataset()
+    shared.PixelMeasuresSequence = Sequence([pm])
+    shared.MRFOVGeometrySequence = Sequence([geo])
+    shared.PlaneOrientationSequence = Sequence([ori])
+    ds.SharedFunctionalGroupsSequence = Sequence([shared])
+    per = []
+    for z in (2.0, 0.0, 1.0):
+        pos, item = Dataset(), Dataset()
+        pos.ImagePositionPatient = [0.0, 0.0, z]
+        item.PlanePositionSequence = Sequence([pos])
+        per.append(item)
+    ds.PerFrameFunctionalGroupsSequence = Sequence(per)
+    path = tmp_path / "enhanced.dcm"
+    ds.save_as(path)
+    return path, frames
+
+
+def test_enhanced_multiframe_functional_groups(tmp_path):
+    """Functional-group spacing, acquisition matrix and per-frame positions are used."""
+    path, frames = _enhanced(tmp_path)
+    with open_input(path) as loaded:
+        vol = loaded.volumes[0]
+        np.testing.assert_array_equal(np.asarray(vol.data), frames[[1, 2, 0]])
+        assert vol.header.fields["pixel_spacing"] == [0.5, 0.5]
+        assert vol.header.fields["acquisition_matrix"] == [128, 0, 0, 96]
+        assert vol.spacing[-2:] == (0.5, 0.5)

@@ -274,6 +274,7 @@ def header_fields(ds: Any) -> Header:
     ps = ds.get("PixelSpacing")
     if ps is not None and len(ps) == 2:
         f["pixel_spacing"] = [float(ps[0]), float(ps[1])]
+    _functional_groups(ds, f)
     if ts in JPEG_DCT_TRANSFER_SYNTAXES and "PixelData" in ds:
         tables, extra = _jpeg_tables(ds)
         if tables:
@@ -289,6 +290,71 @@ def header_fields(ds: Any) -> Header:
         except Exception:  # noqa: BLE001
             continue
     return Header(fields=f, raw=raw)
+
+
+def _shared_item(ds: Any, sequence: str) -> Any:
+    """First item of ``sequence`` in the shared (else the first per-frame) functional group."""
+    for groups in ("SharedFunctionalGroupsSequence", "PerFrameFunctionalGroupsSequence"):
+        seq = ds.get(groups)
+        if seq and len(seq) and sequence in seq[0] and len(seq[0][sequence].value):
+            return seq[0][sequence].value[0]
+    return None
+
+
+def _functional_groups(ds: Any, f: dict[str, Any]) -> None:
+    """Fill pixel spacing and acquisition matrix from enhanced multi-frame macros.
+
+    PS3.3 C.7.6.16 (Multi-frame Functional Groups): Pixel Measures macro
+    (PixelSpacing) and MR FOV/Geometry macro (MRAcquisitionFrequencyEncodingSteps,
+    MRAcquisitionPhaseEncodingStepsInPlane, InPlanePhaseEncodingDirection,
+    PercentSampling, PercentPhaseFieldOfView).
+    """
+    if "pixel_spacing" not in f:
+        pm = _shared_item(ds, "PixelMeasuresSequence")
+        ps = pm.get("PixelSpacing") if pm is not None else None
+        if ps is not None and len(ps) == 2:
+            f["pixel_spacing"] = [float(ps[0]), float(ps[1])]
+    geo = _shared_item(ds, "MRFOVGeometrySequence")
+    if geo is None:
+        return
+    direction = str(geo.get("InPlanePhaseEncodingDirection", "") or "").strip().upper()
+    if direction and "phase_encoding_direction" not in f:
+        f["phase_encoding_direction"] = direction
+    for key, name in (("PercentPhaseFieldOfView", "percent_phase_fov"),
+                      ("PercentSampling", "percent_sampling")):
+        v = _float_or_none(geo.get(key))
+        if v is not None and name not in f:
+            f[name] = v
+    freq = _int_or_none(geo.get("MRAcquisitionFrequencyEncodingSteps"))
+    phase = _int_or_none(geo.get("MRAcquisitionPhaseEncodingStepsInPlane"))
+    if "acquisition_matrix" not in f and freq and phase and direction in ("ROW", "COL"):
+        f["acquisition_matrix"] = [freq, 0, 0, phase] if direction == "COL" else [0, freq,
+                                                                                  phase, 0]
+
+
+def _frame_order(ds: Any, n_frames: int) -> np.ndarray | None:
+    """Frame order by PlanePositionSequence projected on the slice normal, if all frames
+    have one and the positions differ (PS3.3 C.7.6.16.2.3), else None."""
+    per = ds.get("PerFrameFunctionalGroupsSequence")
+    if not per or len(per) != n_frames:
+        return None
+    ori = _shared_item(ds, "PlaneOrientationSequence")
+    iop = ori.get("ImageOrientationPatient") if ori is not None else None
+    if iop is None or len(iop) != 6:
+        return None
+    n = np.cross([float(v) for v in iop[:3]], [float(v) for v in iop[3:]])
+    proj = []
+    for item in per:
+        pos = item.get("PlanePositionSequence")
+        ipp = pos[0].get("ImagePositionPatient") if pos else None
+        if ipp is None or len(ipp) != 3:
+            return None
+        proj.append(float(np.dot([float(v) for v in ipp], n)))
+    proj_a = np.asarray(proj)
+    if len(np.unique(np.round(proj_a, 4))) != len(proj_a):
+        return None
+    order = np.argsort(proj_a, kind="stable")
+    return None if np.all(order == np.arange(n_frames)) else order
 
 
 def read_header_only(path: str | Path) -> Header:
@@ -491,6 +557,11 @@ def _volume_of(items: list[_Item], opts: ReadOptions) -> Volume:
     native = _native_dtype(m0)
     if len(items) == 1:
         arr = _pixels(first)
+        if frames > 1 and arr.ndim >= 3 and arr.shape[0] == frames:
+            order = _frame_order(ds0, frames)
+            if order is not None:
+                arr = arr[order]
+                hdr.fields["frames_reordered"] = True
         if m0.spp > 1:
             arr = _luminance(arr, photometric)
             opts.warnings.append(f"{first.path.name}: colour ({photometric}) pixels were "
