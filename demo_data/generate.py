@@ -126,15 +126,18 @@ def _quantised(out: Path, rng: np.random.Generator) -> dict[str, Any]:
     mag = synth.rss(imgs, axis=1).astype(np.float64)
     lo, hi = np.percentile(mag, 3.0), np.percentile(mag, 99.0)
     levels = np.round(np.clip((mag - lo) / (hi - lo), 0, 1) * 255)
-    clipped = float(np.mean((mag <= lo) | (mag >= hi)))
+    clipped_low, clipped_high = float(np.mean(mag <= lo)), float(np.mean(mag >= hi))
     stack = (levels * 257).astype(np.uint16)  # 8-bit levels spread over the 16-bit range
     files = writers.write_raster_stack(out / "png16", stack, fmt="png", stem="export")
     return {
         "path": "png16", "files": files, "format": "png",
         "truth": {
             "present": {"intensity_quantization": {
-                "distinct_levels": int(len(np.unique(levels))), "effective_bits": 8,
-                "clipped_fraction": round(clipped, 4)},
+                "distinct_levels": int(len(np.unique(levels))),
+                "effective_bits": round(float(np.log2(len(np.unique(levels)))), 3),
+                "clipped_fraction": round(clipped_low + clipped_high, 4),
+                "clipped_low_fraction": round(clipped_low, 4),
+                "clipped_high_fraction": round(clipped_high, 4)},
                 "magnitude_only": {"domain": "magnitude"}},
             "absent": ["lossy_compression", "resampling"],
             "processing": ["4-coil root-sum-of-squares magnitude",
@@ -157,7 +160,9 @@ def _masked(out: Path, rng: np.random.Generator) -> dict[str, Any]:
         "path": "brain_masked.nii.gz", "files": files, "format": "nifti",
         "truth": {
             "present": {"background_masking": {
-                "zero_background_fraction": round(float(1 - mask.mean()), 4)},
+                # every background sample outside the mask was set to 0
+                "zero_background_fraction": 1.0,
+                "fraction_of_image_zeroed": round(float(1 - mask.mean()), 4)},
                 "magnitude_only": {"domain": "magnitude"}},
             "absent": ["lossy_compression", "resampling", "zero_filling"],
             "processing": ["4-coil root-sum-of-squares magnitude",

@@ -457,6 +457,55 @@ def build_periodicity(report: dict[str, Any]) -> Figure | None:
     return fig
 
 
+def build_effective_curve(curves: dict[str, Any], *, marker: float | None = None) -> Figure:
+    """Effective against nominal acceleration: this dataset's support next to a raw grid.
+
+    Parameters
+    ----------
+    curves : dict
+        ``nominal`` (list of R), ``dataset`` and ``raw`` (effective R at each
+        nominal R on the measured support and on a full raw grid), ``family``
+        and ``dims`` (labels).
+    marker : float, optional
+        A nominal R to mark on the dataset's curve (the calculator's choice).
+
+    References
+    ----------
+    Shimron E. et al. (2022), "Implicit data crimes", PNAS 119(13):e2117203119
+    (the effective acceleration of retrospective masks on zero-filled data).
+    """
+    nominal = np.asarray(curves.get("nominal") or [], dtype=float)
+    fig = _new_figure(6.4, 3.8)
+    ax = fig.add_subplot()
+    if nominal.size:
+        ax.plot(nominal, nominal, color="#999999", linestyle=":", linewidth=1.0,
+                label="effective = nominal")
+        raw = np.asarray(curves.get("raw") or [], dtype=float)
+        if raw.size == nominal.size:
+            ax.plot(nominal, raw, color=BLUE, linestyle="--", marker="s", markersize=4,
+                    label="raw acquisition (full grid)")
+        ds = np.asarray(curves.get("dataset") or [], dtype=float)
+        if ds.size == nominal.size:
+            ax.plot(nominal, ds, color=ORANGE, linestyle="-", marker="o", markersize=4,
+                    linewidth=2.0, label="this dataset's acquired support")
+            if marker is not None and nominal.min() <= marker <= nominal.max():
+                y = float(np.interp(marker, nominal, ds))
+                ax.plot([marker], [y], linestyle="none", marker="D", markersize=9,
+                        markerfacecolor="white", markeredgecolor=INK, markeredgewidth=1.6,
+                        label=f"R = {marker:g}: R_eff = {y:.2f}")
+        ax.set_xlim(left=1)
+        ax.set_ylim(bottom=0)
+    fam = str(curves.get("family") or "").replace("_", " ")
+    dims = str(curves.get("dims") or "")
+    ax.set_title("Effective against nominal acceleration"
+                 + (f" ({fam} masks along {dims})" if fam else ""), fontsize=10)
+    ax.set_xlabel("nominal acceleration R (full grid samples / sampled)", fontsize=9)
+    ax.set_ylabel("effective acceleration R_eff (on acquired support)", fontsize=9)
+    _style(ax)
+    ax.legend(fontsize=8, loc="upper left", framealpha=0.9)
+    return fig
+
+
 def _hist_ok(hist: Any) -> bool:
     if not isinstance(hist, dict):
         return False
