@@ -70,7 +70,8 @@ def _object_mask(mag: np.ndarray) -> np.ndarray:
     out = np.empty(mag.shape, dtype=bool)
     for i, m in enumerate(mag):
         sm = ndimage.gaussian_filter(m.astype(np.float64), 2.0)
-        obj = ndimage.binary_fill_holes(sm > 0.12 * sm.max())
+        cut = max(0.12 * float(sm.max()), 2.0 * float(np.percentile(sm, 5)))
+        obj = ndimage.binary_fill_holes(sm > cut)
         out[i] = ndimage.binary_dilation(obj, iterations=2)
     return out
 
@@ -298,7 +299,123 @@ def k_float_lattice(rng: np.random.Generator) -> Case:
                 extra={"no_l_check": True})
 
 
+def k_low_snr(rng: np.random.Generator) -> Case:
+    p = _params(rng)
+    p["sigma"] = float(rng.uniform(0.04, 0.07))
+    L = int(rng.choice([2, 4, 8]))
+    mag = synth.rss(_acq(p, L), axis=1)
+    return Case(f"rss low SNR L={L}", Volume.from_array(mag),
+                _truth(magnitude_only="present", coil_combination="present"), channels=L)
+
+
+def _truncated(p: dict, n_coils: int, sigma_scale: np.ndarray | None = None) -> np.ndarray:
+    """Coil images of a phantom at twice the matrix, k-space cropped: Gibbs ringing."""
+    ny, nx = p["shape"]
+    hi = synth.acquire((2 * ny, 2 * nx), n_coils=n_coils, n_slices=2, sigma=0.0,
+                       seed=p["seed"])
+    k = synth.to_kspace(hi)[..., ny // 2:ny // 2 + ny, nx // 2:nx // 2 + nx] / 2.0
+    img = synth.to_image(k)
+    noise = synth.complex_noise((2 * n_coils, ny, nx), p["sigma"],
+                                np.random.default_rng(p["seed"] + 1)).reshape(img.shape)
+    if sigma_scale is not None:
+        noise = noise * sigma_scale[None, :, None, None]
+    return (img + noise).astype(np.complex64)
+
+
+def k_gibbs(rng: np.random.Generator) -> Case:
+    p = _params(rng)
+    L = int(rng.choice([1, 4, 8]))
+    mag = synth.rss(_truncated(p, L), axis=1)
+    truth = "present" if L > 1 else "absent"
+    return Case(f"truncated k-space (Gibbs) L={L}", Volume.from_array(mag),
+                _truth(magnitude_only="present", coil_combination=truth), channels=L)
+
+
+def k_unequal_noise(rng: np.random.Generator) -> Case:
+    p = _params(rng)
+    L = 8
+    scale = rng.uniform(0.5, 1.5, L)
+    mag = synth.rss(_truncated(p, L, scale), axis=1)
+    return Case("rss L=8 unequal channel noise", Volume.from_array(mag),
+                _truth(magnitude_only="present", coil_combination="present"), channels=L,
+                extra={"correlated": True})
+
+
+def k_many_slices(rng: np.random.Generator) -> Case:
+    p = _params(rng)
+    p["shape"] = (64, 64)
+    L = int(rng.choice([1, 8]))
+    mag = synth.rss(_acq(p, L, n_slices=40), axis=1)
+    return Case(f"40 slices 64x64 L={L}", Volume.from_array(mag),
+                _truth(magnitude_only="present",
+                       coil_combination="present" if L > 1 else "absent"), channels=L)
+
+
+def k_zero_filled_single(rng: np.random.Generator) -> Case:
+    p = _params(rng)
+    acq = (p["shape"][0] // 2, p["shape"][1] // 2)
+    mag, _ = synth.zero_filled_magnitude(acq, (2.0, 2.0), n_coils=1, n_slices=2,
+                                         sigma=p["sigma"], seed=p["seed"])
+    return Case("magnitude 1 channel zero-filled x2", Volume.from_array(mag),
+                _truth(magnitude_only="present"), channels=1.0, extra={"no_l_check": True})
+
+
+def k_ghost_single(rng: np.random.Generator) -> Case:
+    p = _params(rng)
+    imgs = _acq(p, 1)
+    imgs = imgs + float(rng.uniform(0.03, 0.08)) * np.roll(imgs, imgs.shape[-1] // 2, axis=-1)
+    return Case("magnitude 1 channel ghosting", Volume.from_array(np.abs(imgs[:, 0])),
+                _truth(magnitude_only="present"), channels=1.0, extra={"no_l_check": True})
+
+
+def k_uint16_rayleigh_small(rng: np.random.Generator) -> Case:
+    p = _params(rng)
+    p["sigma"] = float(rng.uniform(0.002, 0.003))
+    mag = np.abs(_acq(p, 1)[:, 0])
+    u = _to_uint(mag, 2.0 / p["sigma"] * float(mag.max()))
+    return Case("magnitude uint16, sigma ~2 steps", Volume.from_array(u),
+                _truth(magnitude_only="present"), channels=1.0)
+
+
+def k_clip_small(rng: np.random.Generator) -> Case:
+    p = _params(rng)
+    mag = synth.rss(_acq(p, 4), axis=1)
+    q = float(rng.uniform(0.99, 0.995))
+    top = float(np.quantile(mag, q))
+    u = np.round(np.clip(mag / top * 4095, 0, 4095)).astype(np.uint16)
+    v = Volume.from_array(u, header=Header(fields={"bits_stored": 12}))
+    return Case("clipped 0.5-1% at 4095", v,
+                _truth(magnitude_only="present", coil_combination="present",
+                       intensity_quantization="present"), channels=4)
+
+
+def k_windowed_uint8(rng: np.random.Generator) -> Case:
+    p = _params(rng)
+    p["sigma"] = float(rng.uniform(0.015, 0.03))
+    mag = synth.rss(_acq(p, 8), axis=1)
+    top = float(np.quantile(mag, 0.97))
+    u = np.round(np.clip(mag / top * 255, 0, 255)).astype(np.uint8)
+    return Case("windowed 8-bit export (clipped)", Volume.from_array(u),
+                _truth(magnitude_only="present", coil_combination="present",
+                       intensity_quantization="present"), channels=8,
+                extra={"no_l_check": True})
+
+
+def k_masked_noisy_edge(rng: np.random.Generator) -> Case:
+    p = _params(rng)
+    mag = synth.rss(_acq(p, 4), axis=1)
+    obj = _object_mask(mag)
+    obj = np.stack([ndimage.binary_dilation(o, iterations=int(rng.integers(3, 9))) for o in obj])
+    u = _to_uint(np.where(obj, mag, 0), 4095)
+    return Case("masked with a noisy rim", Volume.from_array(u),
+                _truth(magnitude_only="present", coil_combination="inconclusive",
+                       background_masking="present"))
+
+
 KINDS: list[Callable[[np.random.Generator], Case]] = [
+    k_low_snr, k_gibbs, k_unequal_noise, k_many_slices, k_zero_filled_single,
+    k_ghost_single, k_uint16_rayleigh_small, k_clip_small, k_windowed_uint8,
+    k_masked_noisy_edge,
     k_complex_single, k_complex_multicoil, k_complex_kspace, k_magnitude_single,
     k_rss, k_rss, k_rss_uint16, k_rss_small_sigma, k_single_uint16, k_zero_filled,
     k_correlated, k_ghosting, k_real_signed, k_complex_zero_imag, k_masked,

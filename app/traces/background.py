@@ -39,6 +39,7 @@ MAX_FRAMES = 16
 MAX_SAMPLES_PER_FRAME = 32768
 MIN_SAMPLES = 500
 _FLATNESS_LIMIT = 0.6
+_CONTRAST_LIMIT = 0.4
 _GHOST_Z = 3.5
 _BLOCK = 8
 
@@ -149,6 +150,20 @@ def _flatness(m: np.ndarray, sm: np.ndarray, mask: np.ndarray) -> float:
     if s_raw == 0:
         return 0.0
     return float(np.std(sm[mask]) / s_raw)
+
+
+def _acceptable(m: np.ndarray, sm: np.ndarray, mask: np.ndarray, obj_level: float) -> bool:
+    """Whether a candidate background is large, flat like noise and darker than the object.
+
+    Air is far darker than the object: its median must stay below
+    :data:`_CONTRAST_LIMIT` of the object's median (dark tissue of a cropped
+    image with no air does not).
+    """
+    if mask.sum() < 64:
+        return False
+    if _flatness(m, sm, mask) >= _FLATNESS_LIMIT:
+        return False
+    return float(np.median(m[mask])) <= _CONTRAST_LIMIT * obj_level
 
 
 def _drop_bright_blocks(m2: np.ndarray, mask: np.ndarray) -> tuple[np.ndarray, int]:
@@ -265,11 +280,13 @@ def frame_background(m: np.ndarray) -> tuple[np.ndarray, str, int, float]:
     mask = _far_half(mask)
     m2 = m * m
     excluded = 0
-    if mask.sum() >= 64 and _flatness(m, sm, mask) < _FLATNESS_LIMIT:
+    obj = finite & (sm > t)
+    obj_level = float(np.median(m[obj])) if obj.any() else float("inf")
+    if _acceptable(m, sm, mask, obj_level):
         mask, excluded = _drop_bright_blocks(m2, mask)
         return mask, "threshold", excluded, t
-    corners = _corner_mask(m.shape) & finite & (sm < t)
-    if corners.sum() >= 64 and _flatness(m, sm, corners) < _FLATNESS_LIMIT:
+    corners = _corner_mask(m.shape) & finite & (sm <= t)
+    if _acceptable(m, sm, corners, obj_level):
         return corners, "corners", 0, t
     return np.zeros(m.shape, dtype=bool), "none", 0, t
 

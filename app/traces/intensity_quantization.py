@@ -15,8 +15,9 @@ Measures:
 - ``distinct_levels``: distinct values among the samples examined;
   ``effective_bits = log2(distinct_levels)``; ``stated_bits`` is DICOM
   BitsStored, else the bit depth of an integer dtype.
-- ``comb_score``: among the densely populated levels of the lattice, the share
-  that are empty beyond what Poisson counting would leave empty. Natural data
+- ``comb_score``: the share of lattice levels inside the used range that were
+  left empty by a rescale (an integer factor ``g`` leaves ``1 - 1/g``; a
+  non-integer factor leaves periodic gaps beyond Poisson chance). Natural data
   give about 0; every 16th value used gives about 0.94.
 - clipped fractions: the share of samples on the lowest and highest values
   when those values stand far above their neighbours (a pile-up). A low pile-up
@@ -59,8 +60,8 @@ COMB_SCORE = 0.08
 COMB_MIN_DENSE = 64
 CLIP_FRACTION = 0.002
 CLIP_SPIKE = 5.0
-_DENSE_COUNT = 4.0
-_WINDOW = 33
+_DENSE_COUNT = 6.0
+_WINDOW = 9
 
 
 @dataclass
@@ -126,37 +127,47 @@ def level_stats(values: np.ndarray) -> LevelStats:
     return LevelStats(lv, ct, lattice_step(lv), int(v.size))
 
 
-def comb_score(stats: LevelStats) -> tuple[float, int]:
-    """Share of densely populated lattice levels that are empty beyond Poisson chance.
+def comb_score(stats: LevelStats) -> tuple[float, int, int]:
+    """Share of the lattice levels inside the used range that a rescale left empty.
+
+    Two parts: values that all lie on a coarser lattice (integer rescaling by
+    ``g``: only every ``g``-th value used) give ``1 - 1/g``; on that lattice,
+    densely populated stretches (moving-average count of at least 6 over 9
+    levels) are checked for empty levels beyond Poisson chance (a non-integer
+    rescale leaves periodic gaps). The score is ``1 - (1 - excess) / g``.
 
     Returns
     -------
     score : float
-        ``(empty - expected_empty) / dense`` over the dense levels (those whose
-        moving-average count is at least 4); 0 when there is no lattice.
+        0 for natural data, about 0.94 when only every 16th value is used.
     n_dense : int
-        Number of dense levels.
+        Densely populated levels on the coarse lattice.
+    factor : int
+        The integer rescale factor ``g`` (1 when none).
 
     References
     ----------
     Stamm and Liu, IEEE TIFS 5(3), 2010 (empty bins left by rescaling).
     """
     if stats.step is None or stats.distinct < 2:
-        return 0.0, 0
+        return 0.0, 0, 1
     idx = np.round((stats.levels - stats.levels[0]) / stats.step).astype(np.int64)
+    g = int(np.gcd.reduce(np.diff(idx))) or 1
+    idx //= g
     if idx[-1] > 1 << 24:
-        return 0.0, 0
+        return 0.0, 0, g
     full = np.zeros(int(idx[-1]) + 1, dtype=np.float64)
     full[idx] = stats.counts
     w = min(_WINDOW, full.size)
     smooth = np.convolve(full, np.ones(w) / w, mode="same")
     dense = smooth >= _DENSE_COUNT
     n_dense = int(dense.sum())
-    if n_dense == 0:
-        return 0.0, 0
-    empty = float(np.sum(full[dense] == 0))
-    expected = float(np.sum(np.exp(-smooth[dense])))
-    return max(0.0, (empty - expected) / n_dense), n_dense
+    excess = 0.0
+    if n_dense:
+        empty = float(np.sum(full[dense] == 0))
+        expected = float(np.sum(np.exp(-smooth[dense])))
+        excess = max(0.0, empty - expected - 3.0 * np.sqrt(expected)) / n_dense
+    return 1.0 - (1.0 - excess) / g, n_dense, g
 
 
 def _pile(counts: np.ndarray, at: int, neighbours: np.ndarray, n: int) -> tuple[float, bool]:
@@ -232,7 +243,7 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
         return inconclusive(TRACE_ID, "No finite values to count grey levels in.")
     bits = stated_bits(volume)
     eff = float(np.log2(stats.distinct)) if stats.distinct > 0 else 0.0
-    score, n_dense = comb_score(stats)
+    score, n_dense, factor = comb_score(stats)
     clip = clipping(stats)
     masked_low = False
     if clip["low_pile"]:
@@ -251,7 +262,8 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
         lattice_note = f" on a lattice of step {stats.step:.4g}"
     squeezed = (stats.distinct <= SQUEEZED_LEVELS and stats.n_samples >= MIN_SAMPLES_FOR_LEVELS
                 and stats.distinct > 1)
-    comb = score >= COMB_SCORE and n_dense >= COMB_MIN_DENSE
+    comb = score >= COMB_SCORE and (n_dense >= COMB_MIN_DENSE or
+                                    (factor > 1 and stats.distinct >= COMB_MIN_DENSE))
     evidence = {
         "histogram": _histogram(stats),
         "clipped_low_fraction": float(f"{clip['low']:.4g}"),
@@ -263,6 +275,7 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
         "stated_bits": bits,
         "comb_score": float(f"{score:.4g}"),
         "dense_levels": n_dense,
+        "integer_factor": factor,
         "lattice_step": None if stats.step is None else float(f"{stats.step:.6g}"),
         "n_samples": stats.n_samples,
         "frames_examined": int(frames.size),
@@ -275,8 +288,12 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
         findings.append(f"only {stats.distinct} grey levels{lattice_note} "
                         f"({eff:.1f} effective bits{of})")
     if comb:
-        findings.append(f"a comb-shaped histogram ({100 * score:.0f}% of the densely used "
-                        "levels empty, as integer rescaling leaves)")
+        how = (f"only every {factor}th value used" if factor > 1 and score < 1 - 0.9 / factor
+               else f"{100 * score:.0f}% of the levels in the used range empty")
+        if factor > 1 and score >= 1 - 0.9 / factor:
+            how = f"only every {factor}th value used, and gaps between those"
+        findings.append(f"a comb-shaped histogram ({how}), as rescaling of integer values "
+                        "leaves")
     if clipped >= CLIP_FRACTION:
         parts = []
         if high:
