@@ -1,0 +1,144 @@
+"""The lab's registry: one row per dataset with its latest report, decision and job.
+
+Filtering and sorting happen in Python over the lab's datasets (a lab keeps
+hundreds, not millions); the database does the joins.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from datetime import datetime
+
+from sqlalchemy import func, select
+from sqlalchemy.orm import Session, aliased
+
+from app.store.models import Dataset, DatasetFile, Decision, Job, Report, StoredFile, User
+
+SORTS = ("updated", "created", "name", "size", "decision", "uploader")
+
+
+@dataclass
+class RegistryRow:
+    id: int
+    name: str
+    source: str
+    licence: str
+    description: str
+    uploader: str
+    uploader_label: str
+    created_at: datetime
+    updated_at: datetime
+    size: int
+    n_files: int
+    formats: list[str] = field(default_factory=list)
+    verdict: str | None = None
+    report_format: str | None = None
+    traces: dict[str, str] = field(default_factory=dict)
+    decision: str | None = None
+    decided_by: str | None = None
+    decided_at: datetime | None = None
+    job_state: str | None = None
+
+    @property
+    def found(self) -> list[tuple[str, str]]:
+        """Traces that are present or unclear, present first."""
+        order = {"present": 0, "inconclusive": 1}
+        items = [(t, s) for t, s in self.traces.items() if s in order]
+        return sorted(items, key=lambda ts: (order[ts[1]], ts[0]))
+
+
+def registry_rows(session: Session) -> list[RegistryRow]:
+    """Every dataset with uploader, file summary, latest report, current decision, latest job."""
+    latest_report = (select(Report.dataset_id, func.max(Report.id).label("rid"))
+                     .group_by(Report.dataset_id).subquery())
+    latest_job = (select(Job.dataset_id, func.max(Job.id).label("jid"))
+                  .group_by(Job.dataset_id).subquery())
+    reviewer = aliased(User)
+    stmt = (
+        select(Dataset, User, Report, Decision, reviewer, Job)
+        .join(User, User.id == Dataset.uploader_id)
+        .outerjoin(latest_report, latest_report.c.dataset_id == Dataset.id)
+        .outerjoin(Report, Report.id == latest_report.c.rid)
+        .outerjoin(Decision, Decision.id == Dataset.current_decision_id)
+        .outerjoin(reviewer, reviewer.id == Decision.reviewer_id)
+        .outerjoin(latest_job, latest_job.c.dataset_id == Dataset.id)
+        .outerjoin(Job, Job.id == latest_job.c.jid)
+    )
+    formats: dict[int, set[str]] = {}
+    counts: dict[int, int] = {}
+    for ds_id, fmt in session.execute(
+        select(DatasetFile.dataset_id, StoredFile.format).join(
+            StoredFile, StoredFile.id == DatasetFile.file_id)
+    ):
+        counts[ds_id] = counts.get(ds_id, 0) + 1
+        if fmt:
+            formats.setdefault(ds_id, set()).add(fmt)
+    rows = []
+    for ds, up, rep, dec, rev, job in session.execute(stmt):
+        rows.append(RegistryRow(
+            id=ds.id, name=ds.name, source=ds.source, licence=ds.licence,
+            description=ds.description, uploader=up.name, uploader_label=up.label,
+            created_at=ds.created_at, updated_at=ds.updated_at, size=ds.total_size,
+            n_files=counts.get(ds.id, 0), formats=sorted(formats.get(ds.id, ())),
+            verdict=rep.verdict if rep else None,
+            traces=dict(rep.trace_status) if rep else {},
+            decision=dec.outcome if dec else None,
+            decided_by=rev.label if rev else None,
+            decided_at=dec.created_at if dec else None,
+            job_state=job.state if job else None,
+        ))
+    return rows
+
+
+def filter_rows(
+    rows: list[RegistryRow],
+    *,
+    q: str = "",
+    decision: str = "",
+    trace: str = "",
+    uploader: str = "",
+    sort: str = "updated",
+    descending: bool = True,
+) -> list[RegistryRow]:
+    """Search, filter and sort registry rows.
+
+    Parameters
+    ----------
+    q : str
+        Words that must all appear in the name, source, licence, description or uploader.
+    decision : str
+        An outcome key, ``"none"`` for undecided datasets, or empty for all.
+    trace : str
+        A trace id: keep datasets where that trace was found (present).
+    uploader : str
+        A user name.
+    sort : str
+        One of :data:`SORTS`.
+    """
+    words = q.lower().split()
+    out = []
+    for r in rows:
+        if words:
+            hay = " ".join((r.name, r.source, r.licence, r.description, r.uploader,
+                            r.uploader_label)).lower()
+            if not all(w in hay for w in words):
+                continue
+        if decision == "none" and r.decision is not None:
+            continue
+        if decision and decision != "none" and r.decision != decision:
+            continue
+        if trace and r.traces.get(trace) != "present":
+            continue
+        if uploader and r.uploader != uploader:
+            continue
+        out.append(r)
+    keys = {
+        "updated": lambda r: r.updated_at,
+        "created": lambda r: r.created_at,
+        "name": lambda r: r.name.lower(),
+        "size": lambda r: r.size,
+        "decision": lambda r: (r.decision or "", r.decided_at or datetime.min),
+        "uploader": lambda r: r.uploader,
+    }
+    out.sort(key=keys.get(sort, keys["updated"]), reverse=descending)
+    return out

@@ -1,0 +1,157 @@
+"""Shared FastAPI dependencies: settings, database session, signed-in user, CSRF.
+
+Routers declare ``dependencies=[Depends(current_user)]`` (or use it as a
+parameter) so that every page needs a signed-in member; state-changing routes
+add :func:`csrf_protect`.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from typing import Annotated
+
+from fastapi import Depends, Request
+from sqlalchemy.orm import Session
+
+from app.config import Settings
+from app.store import service
+from app.store.db import Database
+from app.store.models import User
+from app.web.security import (
+    CSRF_FIELD,
+    CSRF_HEADER,
+    SESSION_COOKIE,
+    CsrfError,
+    check_csrf,
+    csrf_token,
+)
+
+__all__ = [
+    "AdminUser",
+    "CurrentUser",
+    "DbSession",
+    "SettingsDep",
+    "StreamingUser",
+    "CsrfError",
+    "NotSignedInError",
+    "csrf_protect",
+    "csrf_token",
+    "current_user",
+    "get_db",
+    "get_settings",
+    "require_admin",
+]
+
+
+class NotSignedInError(Exception):
+    """No valid session cookie or API token (pages redirect to sign-in, the API answers 401)."""
+
+
+class ForbiddenError(Exception):
+    """Signed in, but not allowed (for example, not an admin)."""
+
+
+def get_settings(request: Request) -> Settings:
+    return request.app.state.settings
+
+
+def get_database(request: Request) -> Database:
+    return request.app.state.database
+
+
+def get_db(request: Request) -> Iterator[Session]:
+    """A session per request; non-GET requests take the write lock from their first statement.
+
+    Handlers that change data commit explicitly; anything left is rolled back.
+    """
+    db: Database = request.app.state.database
+    session = db.session(write=request.method not in ("GET", "HEAD", "OPTIONS"))
+    try:
+        yield session
+    finally:
+        session.rollback()
+        session.close()
+
+
+DbSession = Annotated[Session, Depends(get_db)]
+SettingsDep = Annotated[Settings, Depends(get_settings)]
+
+
+def _bearer(request: Request) -> str | None:
+    auth = request.headers.get("authorization", "")
+    scheme, _, token = auth.partition(" ")
+    return token.strip() if scheme.lower() == "bearer" and token.strip() else None
+
+
+def current_user(request: Request, db: DbSession) -> User:
+    """The signed-in member: by API token (``Authorization: Bearer ...``) or session cookie."""
+    cached = getattr(request.state, "user", None)
+    if cached is not None:
+        return cached
+    token = _bearer(request)
+    if token is not None:
+        user = service.user_for_api_token(db, token)
+        if user is None:
+            raise NotSignedInError("That API token is unknown or revoked.")
+        request.state.auth = "token"
+    else:
+        sess = service.web_session_for(db, request.cookies.get(SESSION_COOKIE))
+        if sess is None:
+            raise NotSignedInError("Sign in to continue.")
+        request.state.auth = "session"
+        request.state.web_session = sess
+        user = sess.user
+    request.state.user = user
+    return user
+
+
+CurrentUser = Annotated[User, Depends(current_user)]
+
+
+def streaming_user(request: Request) -> User:
+    """:func:`current_user` from a short read session of its own.
+
+    For long streaming requests (uploads): the request's own session would
+    hold the database's write lock for as long as the body takes to arrive.
+    The returned user is detached; use its id in new sessions.
+    """
+    session = request.app.state.database.session(write=False)
+    try:
+        return current_user(request, session)
+    finally:
+        session.close()
+
+
+StreamingUser = Annotated[User, Depends(streaming_user)]
+
+
+def require_admin(user: CurrentUser) -> User:
+    if not user.is_admin:
+        raise ForbiddenError("Only a lab admin can manage accounts.")
+    return user
+
+
+async def csrf_protect(request: Request, user: CurrentUser) -> None:
+    """Reject a cookie-authenticated state change without the session's CSRF token.
+
+    The token comes from the ``X-CSRF-Token`` header or the ``csrf_token``
+    form field. Bearer-token requests carry no cookie and need none.
+    """
+    if getattr(request.state, "auth", None) == "token":
+        return
+    supplied = request.headers.get(CSRF_HEADER)
+    ctype = request.headers.get("content-type", "")
+    if supplied is None and (ctype.startswith("application/x-www-form-urlencoded")
+                             or ctype.startswith("multipart/form-data")):
+        form = await request.form()
+        value = form.get(CSRF_FIELD)
+        supplied = value if isinstance(value, str) else None
+    sess = getattr(request.state, "web_session", None)
+    check_csrf(sess.csrf_token if sess else None, supplied)
+
+
+AdminUser = Annotated[User, Depends(require_admin)]
+
+
+def client_address(request: Request) -> str:
+    return request.client.host if request.client else "unknown"

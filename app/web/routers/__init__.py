@@ -1,0 +1,1 @@
+"""One router per resource: auth, registry, datasets, uploads, reviews, api, admin."""

@@ -1,0 +1,39 @@
+"""The home page: the lab's registry of datasets with search, filters and sorting."""
+
+from __future__ import annotations
+
+from fastapi import APIRouter, Depends, Request
+from sqlalchemy import select
+
+from app.store.models import OUTCOMES, User
+from app.store.registry import SORTS, filter_rows, registry_rows
+from app.web.deps import DbSession, current_user
+from app.web.labels import TRACE_LABELS
+from app.web.templating import render
+
+router = APIRouter(tags=["registry"], dependencies=[Depends(current_user)])
+
+
+@router.get("/")
+def home(
+    request: Request,
+    db: DbSession,
+    q: str = "",
+    decision: str = "",
+    trace: str = "",
+    uploader: str = "",
+    sort: str = "updated",
+    order: str = "desc",
+):
+    all_rows = registry_rows(db)
+    rows = filter_rows(all_rows, q=q, decision=decision if decision in (*OUTCOMES, "none") else "",
+                       trace=trace, uploader=uploader,
+                       sort=sort if sort in SORTS else "updated", descending=order != "asc")
+    trace_ids = sorted({t for r in all_rows for t in r.traces} | set(TRACE_LABELS))
+    uploaders = list(db.scalars(select(User).order_by(User.name)))
+    return render(request, "registry.html", {
+        "rows": rows, "n_total": len(all_rows), "q": q, "decision": decision, "trace": trace,
+        "uploader": uploader, "sort": sort, "order": order, "sorts": SORTS,
+        "trace_ids": trace_ids, "uploaders": uploaders,
+        "filtered": bool(q or decision or trace or uploader),
+    })

@@ -1,0 +1,72 @@
+"""Comments and decisions from the dataset page's forms."""
+
+from __future__ import annotations
+
+from typing import Annotated
+
+from fastapi import APIRouter, Depends, Form, Request
+from fastapi.responses import RedirectResponse
+
+from app.store import service
+from app.store.errors import DecisionConflictError, StoreError
+from app.web.deps import CurrentUser, DbSession, SettingsDep, csrf_protect, current_user
+from app.web.routers.datasets import dataset_context
+from app.web.templating import render
+
+router = APIRouter(tags=["reviews"],
+                   dependencies=[Depends(current_user), Depends(csrf_protect)])
+
+
+def _expected(raw: str) -> int | None:
+    raw = (raw or "").strip()
+    return int(raw) if raw.isdigit() else 0
+
+
+@router.post("/datasets/{dataset_id}/comments")
+def post_comment(
+    request: Request,
+    dataset_id: int,
+    db: DbSession,
+    user: CurrentUser,
+    settings: SettingsDep,
+    body: Annotated[str, Form()] = "",
+    trace_id: Annotated[str, Form()] = "",
+):
+    ds = service.get_dataset(db, dataset_id)
+    try:
+        comment = service.add_comment(db, dataset=ds, author=user, body=body,
+                                      trace_id=trace_id or None)
+    except StoreError as exc:
+        db.rollback()
+        ctx = dataset_context(db, settings, dataset_id, user)
+        ctx.update(comment_error=exc.message, comment_form={"body": body, "trace_id": trace_id})
+        return render(request, "dataset.html", ctx, status_code=exc.status_code)
+    db.commit()
+    return RedirectResponse(f"/datasets/{ds.id}#comment-{comment.id}", status_code=303)
+
+
+@router.post("/datasets/{dataset_id}/decisions")
+def post_decision(
+    request: Request,
+    dataset_id: int,
+    db: DbSession,
+    user: CurrentUser,
+    settings: SettingsDep,
+    outcome: Annotated[str, Form()] = "",
+    rationale: Annotated[str, Form()] = "",
+    expected_current_id: Annotated[str, Form()] = "",
+):
+    ds = service.get_dataset(db, dataset_id)
+    try:
+        service.record_decision(db, dataset=ds, reviewer=user, outcome=outcome,
+                                rationale=rationale,
+                                expected_current_id=_expected(expected_current_id))
+    except StoreError as exc:
+        db.rollback()
+        ctx = dataset_context(db, settings, dataset_id, user)
+        ctx.update(decision_error=exc.message,
+                   decision_conflict=isinstance(exc, DecisionConflictError),
+                   decision_form={"outcome": outcome, "rationale": rationale})
+        return render(request, "dataset.html", ctx, status_code=exc.status_code)
+    db.commit()
+    return RedirectResponse(f"/datasets/{ds.id}#decision", status_code=303)
