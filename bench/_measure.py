@@ -43,7 +43,12 @@ def main() -> None:
     import app.traces.report as report  # imports (and the analyser registry) outside the clock
 
     report.analysers()
+    import nibabel  # noqa: F401  - readers import lazily; keep that outside the clock
+    import pydicom  # noqa: F401
     import scipy.fft  # noqa: F401
+
+    import app.io.dicom  # noqa: F401
+    import app.io.nifti  # noqa: F401
 
     t0 = time.perf_counter()
     extra = {}
