@@ -318,3 +318,21 @@ def test_enhanced_multiframe_functional_groups(tmp_path):
         assert vol.header.fields["pixel_spacing"] == [0.5, 0.5]
         assert vol.header.fields["acquisition_matrix"] == [128, 0, 0, 96]
         assert vol.spacing[-2:] == (0.5, 0.5)
+
+
+def test_files_without_suffix_or_meta(tmp_path):
+    """A DICOM file named without suffix (IM0001) is recognised by its 'DICM' magic;
+    ExplVR_LitEndNoMeta.dcm (bundled, no meta header, an RT plan) is named as DICOM
+    without pixels; MR_small_bigendian.dcm reads in native byte order with the values
+    of MR_small.dcm."""
+    (tmp_path / "IM0001").write_bytes(Path(_f("MR_small.dcm")).read_bytes())
+    with open_input(tmp_path / "IM0001") as loaded:
+        assert loaded.format == "dicom"
+    with pytest.raises(InputError) as info:
+        with open_input(_f("ExplVR_LitEndNoMeta.dcm")):
+            pass
+    assert info.value.code == "no_pixel_data"
+    with open_input(_f("MR_small_bigendian.dcm")) as loaded:
+        data = np.asarray(loaded.volumes[0].data)
+        assert data.dtype.isnative
+        np.testing.assert_array_equal(data, pydicom.dcmread(_f("MR_small.dcm")).pixel_array)

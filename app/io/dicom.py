@@ -142,6 +142,21 @@ def _int_or_none(value: Any) -> int | None:
     return None if f is None else int(f)
 
 
+def _forced(path: Path) -> Any:
+    """A file named like DICOM but without the preamble and meta header (older
+    implementations wrote those): read it if it holds an image or names its SOP
+    class, else None."""
+    import pydicom
+
+    try:
+        with _quiet_pydicom():
+            ds = pydicom.dcmread(str(path), force=True)
+        ok = ("PixelData" in ds and int(ds.get("Rows", 0) or 0) > 0) or "SOPClassUID" in ds
+    except Exception:  # noqa: BLE001 - not DICOM after all
+        return None
+    return ds if ok else None
+
+
 def _read_dataset(path: Path) -> Any:
     import pydicom
     from pydicom.errors import InvalidDicomError
@@ -151,9 +166,12 @@ def _read_dataset(path: Path) -> Any:
             _warnings.simplefilter("always")
             ds = pydicom.dcmread(str(path), defer_size="1 MB")
     except InvalidDicomError as exc:
-        raise InputError(
-            "unreadable", f"{path.name} is not a DICOM file: {exc}", str(path)
-        ) from exc
+        ds = _forced(path) if path.suffix.lower() in (".dcm", ".dicom", ".ima") else None
+        if ds is None:
+            raise InputError(
+                "unreadable", f"{path.name} is not a DICOM file: {exc}", str(path)
+            ) from exc
+        caught = []
     except Exception as exc:  # noqa: BLE001 - pydicom raises many types on damaged files
         raise InputError(
             "truncated_dicom",
@@ -425,7 +443,10 @@ def _pixels(item: _Item) -> np.ndarray:
             f"(damaged or truncated file): {exc}",
             str(item.path),
         ) from exc
-    return np.asarray(arr)
+    arr = np.asarray(arr)
+    if not arr.dtype.isnative:
+        arr = arr.astype(arr.dtype.newbyteorder("="))
+    return arr
 
 
 def _normal(ds: Any) -> np.ndarray | None:
