@@ -29,6 +29,14 @@ class Header:
         ``sform_code``, ``qform_code`` (int), ``descrip`` (str), ``nifti_version`` (int),
         ``jpeg_quant_tables`` (list of 64-entry lists in natural row-major order),
         ``bit_depth`` (int, for PNG/TIFF/JPEG), ``rescale_slope``, ``rescale_intercept``.
+        Also written by the readers: ``pixel_spacing`` (``[row, col]`` mm),
+        ``stored_value_range`` (``[min, max]`` of the stored values, DICOM),
+        ``samples_per_pixel``, ``photometric_interpretation``, ``jpeg_process`` and
+        ``jpeg_precision`` (from the JPEG frame header), ``jpeg_quant_tables_vary``
+        (bool, image stacks), ``frames_reordered`` (bool), ``n_files`` (int),
+        ``image_mode`` (Pillow mode), ``tiff_compression``, ``datatype``,
+        ``intent_code``, ``aux_file`` (NIfTI), ``array_key`` (npz), ``dataset`` and
+        ``coil_axis_in_file`` (HDF5).
     raw : dict
         A JSON-serialisable summary of the raw header (tag keyword -> str value).
     """
