@@ -64,7 +64,7 @@
       }).then(function (res) {
         if (!res.ok) {
           out.textContent = "";
-          err.textContent = (res.body && (res.body.message || res.body.detail)) ||
+          err.textContent = (res.body && res.body.error && res.body.error.message) ||
             "The calculator could not answer.";
           err.hidden = false;
           return;
