@@ -282,9 +282,9 @@ def frame_background(m: np.ndarray) -> tuple[np.ndarray, str, int, float]:
     excluded = 0
     obj = finite & (sm > t)
     obj_level = float(np.median(m[obj])) if obj.any() else float("inf")
-    if _acceptable(m, sm, mask, obj_level):
-        mask, excluded = _drop_bright_blocks(m2, mask)
-        return mask, "threshold", excluded, t
+    kept, excluded = _drop_bright_blocks(m2, mask) if mask.sum() >= 64 else (mask, 0)
+    if _acceptable(m, sm, kept, obj_level):
+        return kept, "threshold", excluded, t
     corners = _corner_mask(m.shape) & finite & (sm <= t)
     if _acceptable(m, sm, corners, obj_level):
         return corners, "corners", 0, t
@@ -440,8 +440,10 @@ def lattice_step(values: np.ndarray, *, tol: float = LATTICE_TOL) -> float | Non
         return None
     u = u.astype(np.float64)
     d = float(np.diff(u).min())
-    if d <= 0 or (u[-1] - u[0]) / d > 1e7:
+    span = float(u[-1] - u[0])
+    if d <= 0 or span / d > 1e7:
         return None
+    d = span / round(span / d)
     r = (u - u[0]) / d
     return d if float(np.max(np.abs(r - np.round(r)))) <= tol else None
 
@@ -481,8 +483,11 @@ def constant_share(bg: Background) -> ConstantShare:
     a sigma of a step or two does repeat values, but then the next lattice
     values either side are nearly as common, whereas a masked background stands
     alone (its neighbours are empty). The background counts as masked when at
-    least :data:`MASKED_SHARE` of it holds one value and, for integer data, its
-    two lattice neighbours together hold less than half as much.
+    least :data:`MASKED_SHARE` of it holds one value and, for data on a
+    lattice (integers, or floats on few levels), either it holds at least 90%
+    or it is the lowest value and its two lattice neighbours together hold less
+    than half as much (quantised noise of a sigma near one step has its mode
+    above the lowest value, and busy neighbours).
     Common practice, no source.
     """
     use_stored = bg.stored is not None and not np.iscomplexobj(bg.stored)
@@ -500,5 +505,7 @@ def constant_share(bg: Background) -> ConstantShare:
         gap = np.abs(vals.astype(np.float64) - c)
         near = np.abs(gap - step) <= LATTICE_TOL * step
         neighbour = float(counts[near].sum() / v.size)
-    masked = share >= MASKED_SHARE and (step is None or neighbour < 0.5 * share)
+    at_bottom = bool(vals[j] == vals[0])
+    masked = share >= MASKED_SHARE and (
+        step is None or share >= 0.9 or (at_bottom and neighbour < 0.5 * share))
     return ConstantShare(float(vals[j]), share, neighbour, masked)

@@ -1,0 +1,168 @@
+"""The background (air) finder.
+
+Sources:
+- Otsu, "A threshold selection method from gray-level histograms", IEEE
+  Trans. SMC 9:62-66, 1979: the threshold maximising the between-class
+  variance, checked against a plain exhaustive reference implementation.
+- Synthetic acquisitions from demo_data/synth.py whose object support is
+  known (the noise-free phantom): the background must avoid the object.
+- pydicom's bundled MR_small.dcm (pydicom.data.get_testdata_file): a 64 x 64
+  DERIVED/SECONDARY brain crop whose lowest value is 127, tissue everywhere, so
+  no air region should be found.
+- nibabel's bundled anatomical.nii (nibabel/tests/data): a small processed
+  head volume without air around it (its 1st percentile is about 1200 of a
+  30000 range); no background should be found.
+"""
+
+from __future__ import annotations
+
+import os
+
+import numpy as np
+import pytest
+from scipy import ndimage
+
+from app.io.volume import Volume
+from app.traces import background as bgmod
+from app.traces.context import AnalysisContext
+from demo_data import synth
+
+
+def _otsu_reference(values: np.ndarray, bins: int = 256) -> float:
+    """Exhaustive between-class variance over every histogram cut (Otsu 1979)."""
+    counts, edges = np.histogram(values, bins=bins)
+    centres = 0.5 * (edges[:-1] + edges[1:])
+    best, cut = -1.0, edges[1]
+    for k in range(1, bins):
+        w0, w1 = counts[:k].sum(), counts[k:].sum()
+        if w0 == 0 or w1 == 0:
+            continue
+        mu0 = (counts[:k] * centres[:k]).sum() / w0
+        mu1 = (counts[k:] * centres[k:]).sum() / w1
+        between = w0 * w1 * (mu0 - mu1) ** 2
+        if between > best:
+            best, cut = between, edges[k]
+    return float(cut)
+
+
+def test_otsu_matches_exhaustive_reference() -> None:
+    """Two Gaussian classes (means 1 and 6): same cut as the exhaustive reference."""
+    rng = np.random.default_rng(0)
+    v = np.concatenate([rng.normal(1, 0.5, 6000), rng.normal(6, 1.0, 3000)])
+    t = bgmod.otsu_threshold(v)
+    assert t == pytest.approx(_otsu_reference(v), abs=1e-9)
+    assert 2.0 < t < 5.0
+
+
+@pytest.mark.parametrize("n_coils", [1, 8])
+def test_background_avoids_the_object(n_coils: int) -> None:
+    """The found air lies outside the known object support (noise-free phantom > 0).
+
+    Truth: the phantom's support, from the same seed with sigma = 0. At most
+    0.5% of the background may fall inside the support dilated by 2 pixels, and
+    at least 15% of the image must be found (the phantom leaves about 30-40% air).
+    """
+    clean = synth.rss(synth.acquire((128, 128), n_coils=n_coils, sigma=0.0, seed=3), axis=1)
+    noisy = synth.rss(synth.acquire((128, 128), n_coils=n_coils, sigma=0.01, seed=3), axis=1)
+    support = ndimage.binary_dilation(clean[0] > 1e-6, iterations=2)
+    bg = bgmod.find_background(Volume.from_array(noisy))
+    assert bg.usable and bg.method == "threshold"
+    mask = bg.masks[0]
+    assert (mask & support).sum() <= 0.005 * mask.sum()
+    assert bg.fraction >= 0.15
+
+
+def test_ghost_band_is_excluded() -> None:
+    """A bright ghost band in the air (6 x the noise power) is left out of the background.
+
+    Truth: an added band of rows 2-17, columns 2-33 (the top-left corner of the
+    air, far from the object, so that only the block test can drop it) with
+    amplitude 0.06 on a noise sigma of 0.01 per channel (8 channels).
+    """
+    img = synth.rss(synth.acquire((128, 128), n_coils=8, sigma=0.01, seed=5), axis=1)[0]
+    band = np.zeros(img.shape, bool)
+    band[2:18, 2:34] = True
+    rng = np.random.default_rng(1)
+    ghost = np.where(band, 0.06 * (1 + 0.1 * rng.standard_normal(img.shape)), 0)
+    img = np.sqrt(img**2 + ghost**2).astype(np.float32)
+    mask, method, excluded, _ = bgmod.frame_background(img)
+    assert method == "threshold"
+    assert excluded >= 1
+    assert (mask & band).sum() <= 0.1 * band.sum()
+
+
+def test_masked_background_is_found_as_one_constant() -> None:
+    """Zeros outside a dilated object mask: the background is found and is all zero."""
+    img = synth.rss(synth.acquire((128, 128), n_coils=4, sigma=0.01, seed=2), axis=1)
+    obj = ndimage.binary_dilation(ndimage.gaussian_filter(img[0], 2) > 0.15, iterations=2)
+    img[0][~obj] = 0
+    bg = bgmod.find_background(Volume.from_array(img))
+    assert bg.usable
+    const = bgmod.constant_share(bg)
+    assert const.value == 0.0 and const.share == 1.0 and const.masked
+
+
+def test_quantised_noise_is_not_a_constant() -> None:
+    """Rayleigh noise of sigma 0.8 steps, rounded: 0 is common, but so is 1, so not masked.
+
+    Truth: for the Rayleigh law (Gudbjartsson and Patz 1995) with sigma = 0.8,
+    P(round(x) = 0) = 1 - exp(-0.5^2 / 1.28) = 0.177, P(round(x) = 1) =
+    exp(-0.195) - exp(-1.758) = 0.650, P(round(x) = 2) = 0.172: the mode is 1,
+    and its lattice neighbours hold 0.349.
+    """
+    img = synth.rss(synth.acquire((128, 128), n_coils=1, sigma=0.01, seed=2), axis=1)
+    u = np.round(img / 0.01 * 0.8).astype(np.uint16)
+    bg = bgmod.find_background(Volume.from_array(u))
+    const = bgmod.constant_share(bg)
+    assert not const.masked
+    assert const.value == 1.0
+    assert const.share == pytest.approx(0.65, abs=0.03)
+    assert const.neighbour_share == pytest.approx(0.177 + 0.172, abs=0.03)
+
+
+def test_bounded_frames_and_stated_subset() -> None:
+    """40 frames: the background is looked for in 16 evenly spaced ones, and the note says so."""
+    img = synth.rss(synth.acquire((48, 48), n_coils=2, n_slices=40, sigma=0.01, seed=1), axis=1)
+    vol = Volume.from_array(img)
+    ctx = AnalysisContext(vol)
+    bg = bgmod.background_of(vol, ctx)
+    assert bg.frames.size == bgmod.MAX_FRAMES
+    assert bg.frames[0] == 0 and bg.frames[-1] == 39
+    assert any("16 of 40 frames" in n for n in ctx.notes)
+    assert bgmod.background_of(vol, ctx) is bg
+
+
+def test_kspace_has_no_background() -> None:
+    """k-space samples have no image background: the finder says so."""
+    k = synth.to_kspace(synth.acquire((64, 64), n_coils=2, sigma=0.01, seed=1))
+    bg = bgmod.find_background(Volume.from_array(k, domain="kspace", coil_axis=1))
+    assert not bg.usable and "k-space" in bg.reason
+
+
+def test_pydicom_mr_small_has_no_air() -> None:
+    """MR_small.dcm (pydicom test file): a brain crop, minimum 127, no air: too few samples."""
+    pydicom = pytest.importorskip("pydicom")
+    from pydicom.data import get_testdata_file
+
+    ds = pydicom.dcmread(get_testdata_file("MR_small.dcm"))
+    bg = bgmod.find_background(Volume.from_array(ds.pixel_array))
+    assert not bg.usable
+    assert "background samples" in bg.reason
+
+
+def test_nibabel_anatomical_has_no_air() -> None:
+    """anatomical.nii (nibabel test data): tissue fills the field of view; no background."""
+    nib = pytest.importorskip("nibabel")
+    img = nib.load(os.path.join(os.path.dirname(nib.__file__), "tests", "data", "anatomical.nii"))
+    a = np.ascontiguousarray(np.asanyarray(img.dataobj).transpose(2, 1, 0))
+    bg = bgmod.find_background(Volume.from_array(a))
+    assert not bg.usable
+
+
+def test_lattice_step() -> None:
+    """Integer gcd lattice and a float lattice k * 1000/255 (common practice, no source)."""
+    assert bgmod.lattice_step(np.array([0, 16, 48, 32, 160], np.uint16)) == 16.0
+    f = (np.arange(256) * np.float32(1000 / 255)).astype(np.float32)
+    assert bgmod.lattice_step(f) == pytest.approx(1000 / 255, rel=1e-5)
+    rng = np.random.default_rng(0)
+    assert bgmod.lattice_step(rng.random(5000).astype(np.float32)) is None

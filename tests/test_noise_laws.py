@@ -1,0 +1,130 @@
+"""The noise-law maths against published formulas and scipy.stats.
+
+Sources:
+- Gudbjartsson and Patz, "The Rician distribution of noisy MRI data", Magnetic
+  Resonance in Medicine 34:910-914, 1995: the background magnitude of one
+  channel is Rayleigh with mean sigma*sqrt(pi/2) and variance (2 - pi/2) sigma^2.
+- Constantinides, Atalar and McVeigh, "Signal-to-noise measurements in magnitude
+  images from NMR phased arrays", Magnetic Resonance in Medicine 38:852-857,
+  1997: the root-sum-of-squares of L channels in pure background is central chi
+  with 2L degrees of freedom, mean sigma*sqrt(2)*Gamma(L+1/2)/Gamma(L), second
+  moment 2 L sigma^2.
+- scipy.stats (rayleigh, chi, rice, norm) as the reference distributions.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import special, stats
+
+from app.traces import noise_laws as nl
+
+
+@pytest.mark.parametrize("sigma", [0.5, 1.0, 37.0])
+def test_rayleigh_moments_match_gudbjartsson_patz(sigma: float) -> None:
+    """L = 1: mean sigma*sqrt(pi/2), variance (2 - pi/2) sigma^2 (Gudbjartsson and Patz 1995)."""
+    assert nl.chi_mean(sigma, 1) == pytest.approx(sigma * np.sqrt(np.pi / 2), rel=1e-12)
+    assert nl.chi_variance(sigma, 1) == pytest.approx((2 - np.pi / 2) * sigma**2, rel=1e-12)
+    ref = stats.rayleigh(scale=sigma)
+    assert nl.chi_mean(sigma, 1) == pytest.approx(ref.mean(), rel=1e-12)
+    assert nl.chi_variance(sigma, 1) == pytest.approx(ref.var(), rel=1e-10)
+
+
+@pytest.mark.parametrize("L", [2, 4, 8, 12, 16, 32])
+def test_central_chi_moments_match_constantinides(L: int) -> None:
+    """Central chi, 2L degrees of freedom (Constantinides, Atalar and McVeigh 1997).
+
+    Mean sigma*sqrt(2)*Gamma(L+1/2)/Gamma(L); second moment 2 L sigma^2; both
+    also against scipy.stats.chi(df=2L, scale=sigma).
+    """
+    sigma = 3.0
+    mean = sigma * np.sqrt(2) * np.exp(special.gammaln(L + 0.5) - special.gammaln(L))
+    assert nl.chi_mean(sigma, L) == pytest.approx(mean, rel=1e-12)
+    assert nl.chi_variance(sigma, L) + nl.chi_mean(sigma, L) ** 2 == pytest.approx(
+        2 * L * sigma**2, rel=1e-12)
+    ref = stats.chi(df=2 * L, scale=sigma)
+    assert nl.chi_mean(sigma, L) == pytest.approx(ref.mean(), rel=1e-10)
+    assert nl.chi_variance(sigma, L) == pytest.approx(ref.var(), rel=1e-8)
+
+
+@pytest.mark.parametrize("L", [1.0, 2.0, 2.5, 4.0, 8.0, 16.0, 40.0])
+def test_channels_from_exact_moments(L: float) -> None:
+    """The moment ratio E[x]^2/E[x^2] of scipy's chi(2L) gives back L (Constantinides 1997)."""
+    ref = stats.chi(df=2 * L, scale=1.7)
+    m1, m2 = ref.mean(), ref.moment(2)
+    assert nl.channels_from_moments(m1, m2) == pytest.approx(L, rel=1e-4)
+
+
+def test_rayleigh_fit_recovers_scipy_samples() -> None:
+    """Samples of scipy.stats.rayleigh(scale=2.5): sigma within 2%, KS accepts the law.
+
+    Truth: sigma = 2.5, n = 20000; the maximum-likelihood estimate has a relative
+    standard error of about 1/sqrt(4n) = 0.35%, so 2% is over five of them.
+    """
+    x = stats.rayleigh(scale=2.5).rvs(20000, random_state=np.random.default_rng(1))
+    fit = nl.fit_rayleigh(x)
+    assert fit.sigma == pytest.approx(2.5, rel=0.02)
+    assert fit.statistic < 0.02
+    assert fit.p_value > 1e-3
+
+
+def test_rician_without_signal_is_rayleigh() -> None:
+    """scipy.stats.rice with b = 0 is the Rayleigh law (Gudbjartsson and Patz 1995, zero signal)."""
+    x = stats.rice(b=0.0, scale=1.3).rvs(20000, random_state=np.random.default_rng(2))
+    fit = nl.fit_central_chi(x)
+    assert fit.channels == pytest.approx(1.0, abs=0.1)
+    assert fit.sigma == pytest.approx(1.3, rel=0.03)
+
+
+@pytest.mark.parametrize("L", [2, 4, 8, 12, 16])
+def test_central_chi_fit_recovers_scipy_samples(L: int) -> None:
+    """scipy.stats.chi(df=2L, scale=0.8) samples: L within 10%, sigma within 3%.
+
+    Truth: L and sigma = 0.8, n = 20000 (method of moments, Constantinides 1997).
+    """
+    x = stats.chi(df=2 * L, scale=0.8).rvs(20000, random_state=np.random.default_rng(L))
+    fit = nl.fit_central_chi(x)
+    assert fit.channels == pytest.approx(L, rel=0.10)
+    assert fit.sigma == pytest.approx(0.8, rel=0.03)
+    assert fit.statistic < 0.02
+
+
+def test_gaussian_fit_recovers_scipy_samples() -> None:
+    """scipy.stats.norm(0, 4) samples: zero-mean sigma within 2%; the Rayleigh law rejects |x|.
+
+    The magnitude of one real Gaussian component is half-normal, not Rayleigh
+    (Gudbjartsson and Patz 1995 derive Rayleigh for two components).
+    """
+    x = stats.norm(scale=4.0).rvs(20000, random_state=np.random.default_rng(3))
+    g = nl.fit_gaussian(x, zero_mean=True)
+    assert g.sigma == pytest.approx(4.0, rel=0.02)
+    assert g.statistic < 0.02
+    assert nl.fit_rayleigh(np.abs(x)).statistic > 0.05
+
+
+def test_rounded_chi_with_sheppard_correction() -> None:
+    """Chi(2L = 16) samples with sigma = 2 rounded to integers: L within 10% after correction.
+
+    Sheppard (1898): rounding to a step q adds q^2/12 to the second moment; the
+    fit subtracts it. Truth: L = 8, sigma = 2 steps.
+    """
+    from app.traces.coil_combination import fit_magnitude_background
+
+    x = np.round(stats.chi(df=16, scale=2.0).rvs(30000, random_state=np.random.default_rng(4)))
+    res = fit_magnitude_background(x, step=1.0)
+    assert res["chosen"] == "noncentral_chi"
+    assert res["channels"] == pytest.approx(8.0, rel=0.10)
+    assert res["sigma"] == pytest.approx(2.0, rel=0.05)
+
+
+def test_law_choice_on_reference_samples() -> None:
+    """fit_magnitude_background picks Rayleigh for scipy rayleigh, chi for chi(2L = 8)."""
+    from app.traces.coil_combination import fit_magnitude_background
+
+    rng = np.random.default_rng(5)
+    r = fit_magnitude_background(stats.rayleigh(scale=1.0).rvs(10000, random_state=rng))
+    assert r["chosen"] == "rayleigh"
+    c = fit_magnitude_background(stats.chi(df=8, scale=1.0).rvs(10000, random_state=rng))
+    assert c["chosen"] == "noncentral_chi"
+    assert c["channels"] == pytest.approx(4.0, abs=0.8)
