@@ -16,7 +16,7 @@ from typing import Any
 from sqlalchemy import and_, or_, select, update
 from sqlalchemy.orm import Session
 
-from app.store.models import Job, Report, utcnow
+from app.store.models import Dataset, Job, Report, utcnow
 from app.store.service import audit, store_report
 
 MAX_ATTEMPTS = 3
@@ -94,6 +94,8 @@ def finish_job(session: Session, job_id: int, owner: str, report: dict[str, Any]
     if job is None:
         return None
     row = store_report(session, job, report)
+    session.execute(update(Dataset).where(Dataset.id == job.dataset_id)
+                    .values(updated_at=utcnow()).execution_options(synchronize_session=False))
     job.state = "done"
     job.report_id = row.id
     job.finished_at = utcnow()

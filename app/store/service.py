@@ -413,6 +413,7 @@ def add_comment(
     if trace is not None and not re.fullmatch(r"[a-z0-9_]{1,64}", trace):
         raise ValidationError("That trace id is not one rawproof knows.")
     row = Comment(dataset_id=dataset.id, author_id=author.id, body=text, trace_id=trace)
+    dataset.updated_at = utcnow()
     session.add(row)
     session.flush()
     audit(session, "comment.add", actor=author, dataset_id=dataset.id, comment_id=row.id,
