@@ -42,7 +42,7 @@ from app.traces.base import Trace, register
 
 TRACE_ID = "zero_filling"
 #: a step of at least this many dB (median over the band) marks an edge
-STEP_THRESHOLD_DB = 4.0
+STEP_THRESHOLD_DB = 4.5
 #: the edge is where the profile has fallen this fraction of the drop
 CROSSING_LEVEL = 0.35
 #: support fractions below this are not searched (padding above 5x)
@@ -76,6 +76,9 @@ class AxisSupport:
         Level (mean power, dB) of the outer part of the region.
     asymmetry : float
         For complex input: positive-side minus negative-side extent, in samples.
+    x_pos, x_neg : float or None
+        Distance from DC of the edge on the positive / negative side (None: no edge
+        on that side), each side judged on its own.
     """
 
     axis: str
@@ -87,19 +90,21 @@ class AxisSupport:
     score_db: float
     noise_floor_db: float | None
     asymmetry: float = 0.0
+    x_pos: float | None = None
+    x_neg: float | None = None
 
     @property
     def padding_factor(self) -> float:
         return 1.0 / self.support_fraction
 
 
-def _window(n: int) -> int:
+def line_window(n: int) -> int:
     """Samples per fitted line: 4 to 8, fewer on short axes so that the windows fit."""
     w = int(np.clip(round(n / 40), 4, 8))
     return int(max(2, min(w, (n // 2 - 2) // 6)))
 
 
-def _band_lines(mean_log: np.ndarray, axis: int, other_support: float = 0.4) -> np.ndarray:
+def band_lines(mean_log: np.ndarray, axis: int, other_support: float = 0.4) -> np.ndarray:
     """Lines along ``axis`` over a band of the other axis that avoids its DC line.
 
     The band spans ``|k| / m`` from ``other_support / 16`` to ``0.4 * other_support``,
@@ -115,7 +120,7 @@ def _band_lines(mean_log: np.ndarray, axis: int, other_support: float = 0.4) -> 
     return a[:, cols]
 
 
-def _edge_scores(prof: np.ndarray, w: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def edge_scores(prof: np.ndarray, w: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Sustained, trend-corrected level drop after each sample of an outward side.
 
     ``drop[d]`` is the median level of the ``v = 2 w`` samples ending at ``d`` minus
@@ -145,7 +150,7 @@ def _edge_scores(prof: np.ndarray, w: int) -> tuple[np.ndarray, np.ndarray, np.n
     return score, inside, outside
 
 
-def _crossing(prof: np.ndarray, d: int, w: int, mid: float) -> float:
+def crossing(prof: np.ndarray, d: int, w: int, mid: float) -> float:
     """Sub-sample distance from DC where the profile first falls below ``mid`` near ``d``.
 
     The profile is smoothed by a 3-sample median first; the crossing is interpolated
@@ -165,30 +170,39 @@ def _crossing(prof: np.ndarray, d: int, w: int, mid: float) -> float:
     return k - 1 + float(np.clip(frac, 0.0, 1.0))
 
 
-def _side_edge(
-    prof: np.ndarray, n: int, w: int, halves: tuple[np.ndarray, np.ndarray] | None = None
-) -> tuple[float, float, float] | None:
-    """Best edge on one outward side: (crossing distance, score, drop), or None.
+def _side_scores(
+    prof: np.ndarray, n: int, w: int, halves: tuple[np.ndarray, np.ndarray] | None
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Edge scores of one outward side (NaN where not searched), inside and outside levels.
 
     With ``halves`` (the profiles of the inner and outer halves of the band), an edge
     must show in both at the same place: the edge of zero-filled k-space is a straight
     line across the band, a ring of the object's spectrum is not.
     """
     dmin = max(w, int(np.ceil(MIN_SUPPORT * n / 2)))
-    score, inside, outside = _edge_scores(prof, w)
+    score, inside, outside = edge_scores(prof, w)
     if halves is not None:
         near = [np.fmax(np.fmax(h, np.roll(h, 1)), np.roll(h, -1))
-                for h in (_edge_scores(hp, w)[0] for hp in halves)]
+                for h in (edge_scores(hp, w)[0] for hp in halves)]
         score = np.minimum(score, 2.0 * np.minimum(near[0], near[1]))
     score[:dmin] = np.nan
+    return score, inside, outside
+
+
+def _side_edge(
+    prof: np.ndarray, n: int, w: int, halves: tuple[np.ndarray, np.ndarray] | None = None
+) -> tuple[float | None, float, float | None]:
+    """Best edge on one outward side: (crossing distance or None, best score, drop)."""
+    score, inside, outside = _side_scores(prof, n, w, halves)
     if not np.any(np.isfinite(score)):
-        return None
+        return None, float("-inf"), None
     d = int(np.nanargmax(score))
-    if score[d] < STEP_THRESHOLD_DB:
-        return None
+    best = float(score[d])
+    if best < STEP_THRESHOLD_DB:
+        return None, best, None
     # the magnitude echo ends at twice the acquired extent: prefer the inner edge
     half = (d + 1) // 2
-    lo, hi = max(dmin, half - 3), min(len(score), half + 3)
+    lo, hi = max(0, half - 3), min(len(score), half + 3)
     if hi > lo and np.any(np.isfinite(score[lo:hi])):
         j = lo + int(np.nanargmax(score[lo:hi]))
         if score[j] >= STEP_THRESHOLD_DB:
@@ -196,7 +210,7 @@ def _side_edge(
     # the echo just outside a magnitude image's region is strongest near the edge, so
     # the crossing level sits nearer the in-band level than the mid-point
     level = inside[d] - CROSSING_LEVEL * (inside[d] - outside[d])
-    return _crossing(prof, d, w, level), float(score[d]), float(inside[d] - outside[d])
+    return crossing(prof, d, w, level), best, float(inside[d] - outside[d])
 
 
 def axis_support(
@@ -226,7 +240,7 @@ def axis_support(
     lines = lines_db if lines_db.ndim == 2 else lines_db[:, None]
     n = lines.shape[0]
     c = n // 2
-    w = _window(n)
+    w = line_window(n)
     pos, neg = lines[c:], lines[c::-1]
     p_pos, p_neg = np.median(pos, axis=1), np.median(neg, axis=1)
     h_pos = h_neg = None
@@ -239,18 +253,15 @@ def axis_support(
     if symmetric:
         # one side holds everything; the positive side is one sample shorter for even n
         p_neg, h_neg = p_pos, h_pos
-    e_pos = _side_edge(p_pos, n, w, h_pos)
-    e_neg = e_pos if symmetric else _side_edge(p_neg, n, w, h_neg)
-    dmin = max(w, int(np.ceil(MIN_SUPPORT * n / 2)))
-    with np.errstate(all="ignore"):
-        scores = np.r_[_edge_scores(p_pos, w)[0][dmin:], _edge_scores(p_neg, w)[0][dmin:]]
-    score = float(np.nanmax(np.r_[scores, -np.inf]))
+    x_pos, s_pos, drop_pos = _side_edge(p_pos, n, w, h_pos)
+    x_neg, s_neg, drop_neg = (x_pos, s_pos, drop_pos) if symmetric else _side_edge(
+        p_neg, n, w, h_neg)
+    score = max(s_pos, s_neg)
     prof_db = sp.to_db(power_profile)
-    if e_pos is None or e_neg is None:
+    if x_pos is None or x_neg is None or drop_pos is None or drop_neg is None:
         outer = prof_db[np.r_[0:max(1, n // 16), n - max(1, n // 16):n]]
-        return AxisSupport(axis, n, False, 1.0, None, None, score, float(np.median(outer)))
-    x_pos, _, drop_pos = e_pos
-    x_neg, _, drop_neg = e_neg
+        return AxisSupport(axis, n, False, 1.0, None, None, score, float(np.median(outer)),
+                           x_pos=x_pos, x_neg=x_neg)
     width = min(float(n), x_pos + x_neg)
     hi = min(n - 1, c + int(np.floor(x_pos)))
     lo = max(0, c - int(np.floor(x_neg)))
@@ -268,6 +279,8 @@ def axis_support(
         score,
         noise_floor,
         asymmetry=float(x_pos - x_neg),
+        x_pos=x_pos,
+        x_neg=x_neg,
     )
 
 
@@ -289,13 +302,13 @@ def detect(spec: sp.Spectrum) -> dict[str, AxisSupport]:
     first = {}
     for i, ax in enumerate(("rows", "cols")):
         first[ax] = axis_support(
-            _band_lines(spec.mean_log, i), spec.profiles[ax], axis=ax, symmetric=symmetric
+            band_lines(spec.mean_log, i), spec.profiles[ax], axis=ax, symmetric=symmetric
         )
     # second pass: the band of the other axis now sits inside its measured region
     for i, ax in enumerate(("rows", "cols")):
         other = first["cols" if ax == "rows" else "rows"].support_fraction
         out[ax] = axis_support(
-            _band_lines(spec.mean_log, i, other), spec.profiles[ax], axis=ax,
+            band_lines(spec.mean_log, i, other), spec.profiles[ax], axis=ax,
             symmetric=symmetric,
         )
     if "slices" in spec.log_profiles:
