@@ -1,0 +1,205 @@
+"""coil_combination: the background noise law and the effective number of channels.
+
+Sources:
+- Constantinides, Atalar and McVeigh, Magnetic Resonance in Medicine 38:852-857,
+  1997: root-sum-of-squares of L channels leaves a central chi law with 2L
+  degrees of freedom in the air; correlated channels behave as fewer ones.
+- Gudbjartsson and Patz, Magnetic Resonance in Medicine 34:910-914, 1995: one
+  channel's magnitude is Rayleigh in the air; complex components are Gaussian.
+- Aja-Fernandez and Tristan-Vega, Magnetic Resonance in Medicine 67:580-585,
+  2012 (from memory): with correlation matrix C (unit diagonal) the effective
+  number of channels is about (tr C)^2 / tr(C^2), below L.
+- Synthetic acquisitions from demo_data/synth.py with a set truth (L, sigma,
+  correlation); pydicom's MR2_J2KI.dcm and nibabel's example4d.nii.gz, whose air
+  is stored as exact zeros (masked), and pydicom's emri_small.dcm (64 x 64 frames
+  of low signal-to-noise, no clean air).
+"""
+
+from __future__ import annotations
+
+import os
+
+import numpy as np
+import pytest
+
+from app.io.volume import Header, Volume
+from app.traces import coil_combination as cc
+from app.traces.context import AnalysisContext
+from demo_data import synth
+
+
+def _run(arr: np.ndarray, **kw) -> cc.Trace:
+    vol = Volume.from_array(arr, **kw)
+    return cc.analyse(vol, AnalysisContext(vol))
+
+
+@pytest.mark.parametrize("L", [1, 4, 8, 12, 16])
+def test_uncorrelated_channels(L: int) -> None:
+    """Root-sum-of-squares of L uncorrelated channels (sigma 0.01 each).
+
+    Truth: L, sigma = 0.01. Tolerances: L within max(1, 0.2 L), sigma within 10%.
+    L = 1 must be Rayleigh (absent), L >= 2 non-central chi (present).
+    """
+    mag = synth.rss(synth.acquire((128, 128), n_coils=L, n_slices=2, sigma=0.01, seed=L), axis=1)
+    t = _run(mag)
+    est = t.estimates
+    if L == 1:
+        assert t.status == "absent" and est["noise_model"] == "rayleigh"
+    else:
+        assert t.status == "present" and est["noise_model"] == "noncentral_chi"
+    assert abs(est["effective_channels"] - L) <= max(1.0, 0.2 * L)
+    assert est["sigma"] == pytest.approx(0.01, rel=0.10)
+
+
+def test_correlated_channels_give_fewer_effective_channels() -> None:
+    """8 channels with correlation 0.5: effective L well below 8, still present.
+
+    Truth: C = 0.5 + 0.5 I (8 x 8), (tr C)^2 / tr(C^2) = 64 / 22 = 2.9 channels
+    (Aja-Fernandez and Tristan-Vega 2012, from memory); the moment estimate must
+    lie between 2 and 5.5 (a different moment pair than theirs, hence the band).
+    """
+    c = np.full((8, 8), 0.5) + 0.5 * np.eye(8)
+    mag = synth.rss(synth.acquire((128, 128), n_coils=8, n_slices=2, sigma=0.01, seed=9,
+                                  correlation=c), axis=1)
+    t = _run(mag)
+    assert t.status == "present"
+    assert 2.0 <= t.estimates["effective_channels"] <= 5.5
+
+
+def test_uint16_quantised_rss() -> None:
+    """RSS of 8 channels rounded to uint16 (noise sigma about 30 steps): L within 1.6."""
+    mag = synth.rss(synth.acquire((128, 128), n_coils=8, n_slices=2, sigma=0.01, seed=3), axis=1)
+    u = np.round(mag / mag.max() * 4000).astype(np.uint16)
+    t = _run(u, header=Header(fields={"bits_stored": 12}))
+    assert t.status == "present"
+    assert abs(t.estimates["effective_channels"] - 8) <= 1.6
+
+
+def test_small_sigma_integer_rss() -> None:
+    """RSS of 8 channels stored with a noise sigma of about 1.5 steps: still L within 1.6.
+
+    Moments per sample work for coarse integer data once the rounding variance
+    (Sheppard's step^2 / 12) is taken off.
+    """
+    mag = synth.rss(synth.acquire((128, 128), n_coils=8, n_slices=2, sigma=0.01, seed=4), axis=1)
+    u = np.round(mag / 0.01 * 1.5).astype(np.uint16)
+    t = _run(u)
+    assert t.status == "present"
+    assert abs(t.estimates["effective_channels"] - 8) <= 1.6
+    assert t.estimates["sigma"] == pytest.approx(1.5, rel=0.1)
+
+
+def test_zero_filled_rss() -> None:
+    """RSS of 8 channels zero-filled 2 x 2 (correlated noise): chi law, L within 1.6.
+
+    Truth: L = 8; orthonormal transforms spread the noise over 4 x the pixels,
+    so the per-pixel sigma is 0.01 / 2 = 0.005 (within 15%).
+    """
+    mag, _ = synth.zero_filled_magnitude((96, 96), (2.0, 2.0), n_coils=8, n_slices=2,
+                                         sigma=0.01, seed=3)
+    t = _run(mag)
+    assert t.status == "present"
+    assert abs(t.estimates["effective_channels"] - 8) <= 1.6
+    assert t.estimates["sigma"] == pytest.approx(0.005, rel=0.15)
+
+
+def test_complex_multicoil_is_gaussian() -> None:
+    """Complex data with a coil axis: Gaussian, absent; sigma of the components within 5%."""
+    img = synth.acquire((96, 96), n_coils=8, n_slices=2, sigma=0.02, seed=5)
+    t = _run(img, coil_axis=1)
+    assert t.status == "absent" and t.estimates["noise_model"] == "gaussian"
+    assert t.estimates["sigma"] == pytest.approx(0.02, rel=0.05)
+
+
+def test_real_signed_is_gaussian() -> None:
+    """Phase-corrected real image: Gaussian air, absent."""
+    rng = np.random.default_rng(6)
+    obj = synth.phantom((96, 96), seed=rng, smooth_phase=False).real
+    real = (obj + synth.complex_noise(obj.shape, 0.01, rng)).real.astype(np.float32)
+    t = _run(real)
+    assert t.status == "absent" and t.estimates["noise_model"] == "gaussian"
+    assert t.estimates["sigma"] == pytest.approx(0.01, rel=0.1)
+
+
+def test_masked_background_is_inconclusive() -> None:
+    """Zeros outside the object: inconclusive with the reason, never a law."""
+    mag = synth.rss(synth.acquire((128, 128), n_coils=8, sigma=0.01, seed=7), axis=1)
+    mag[mag < 0.15] = 0
+    t = _run(mag)
+    assert t.status == "inconclusive"
+    assert t.estimates["noise_model"] == "unknown" and t.estimates["effective_channels"] is None
+    assert "one value" in t.summary
+
+
+def test_noise_free_is_inconclusive() -> None:
+    """A noise-free phantom magnitude: inconclusive, never a confident law."""
+    mag = np.abs(synth.phantom((128, 128), seed=8))[None].astype(np.float32)
+    t = _run(mag)
+    assert t.status == "inconclusive" and t.estimates["noise_model"] == "unknown"
+
+
+def test_tiny_roundoff_noise_is_inconclusive() -> None:
+    """Float round-off (1e-8 of the peak) in the air: noise-free, inconclusive."""
+    rng = np.random.default_rng(9)
+    mag = np.abs(synth.phantom((128, 128), seed=8)).astype(np.float64)
+    mag = np.abs(mag + 1e-8 * rng.standard_normal(mag.shape))[None]
+    t = _run(mag)
+    assert t.status == "inconclusive"
+    assert "noise-free" in t.summary
+
+
+def test_noise_below_quantisation_step_is_inconclusive() -> None:
+    """Rayleigh noise of sigma 0.5 steps stored as integers: below the step, inconclusive."""
+    mag = synth.rss(synth.acquire((128, 128), n_coils=1, sigma=0.01, seed=10), axis=1)
+    u = np.round(mag / 0.01 * 0.5).astype(np.uint16)
+    t = _run(u)
+    assert t.status == "inconclusive"
+
+
+def test_evidence_keys_for_the_page() -> None:
+    """The agreed evidence keys: histogram (n+1 edges), densities at density_x, statistics."""
+    mag = synth.rss(synth.acquire((96, 96), n_coils=4, sigma=0.01, seed=11), axis=1)
+    ev = _run(mag).evidence
+    h = ev["histogram"]
+    assert len(h["edges"]) == len(h["counts"]) + 1
+    widths = np.diff(h["edges"])
+    assert float(np.sum(np.asarray(h["counts"]) * widths)) == pytest.approx(1.0, rel=0.02)
+    for law in ("gaussian", "rayleigh", "noncentral_chi"):
+        assert len(ev["densities"][law]) == len(ev["density_x"])
+        assert set(ev["statistics"][law]) == {"statistic", "p_value"}
+    assert ev["chosen"] == "noncentral_chi"
+    assert ev["n_background"] > 1000
+
+
+def test_pydicom_j2k_masked_air_is_inconclusive() -> None:
+    """MR2_J2KI.dcm (pydicom test file): air stored as exact zeros, so no law is measured."""
+    pydicom = pytest.importorskip("pydicom")
+    from pydicom.data import get_testdata_file
+
+    ds = pydicom.dcmread(get_testdata_file("MR2_J2KI.dcm"))
+    t = _run(ds.pixel_array, header=Header(fields={"bits_stored": int(ds.BitsStored)}))
+    assert t.status == "inconclusive"
+    assert "one value 0" in t.summary
+
+
+def test_pydicom_emri_small_is_not_called() -> None:
+    """emri_small.dcm (pydicom test file): 64 x 64 low-SNR frames, no clean air: inconclusive."""
+    pydicom = pytest.importorskip("pydicom")
+    from pydicom.data import get_testdata_file
+
+    ds = pydicom.dcmread(get_testdata_file("emri_small.dcm"))
+    t = _run(ds.pixel_array, header=Header(fields={"bits_stored": int(ds.BitsStored)}))
+    assert t.status == "inconclusive"
+
+
+def test_nibabel_example4d_masked_is_inconclusive() -> None:
+    """example4d.nii.gz (nibabel test data, FSL): 61% exact zeros outside the head."""
+    nib = pytest.importorskip("nibabel")
+    img = nib.load(os.path.join(os.path.dirname(nib.__file__), "tests", "data",
+                                "example4d.nii.gz"))
+    a = np.asanyarray(img.dataobj)
+    frames = np.ascontiguousarray(np.moveaxis(a, [3, 2], [0, 1]).reshape(-1, a.shape[0],
+                                                                        a.shape[1]))
+    t = _run(frames)
+    assert t.status == "inconclusive"
+    assert "one value 0" in t.summary
