@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import contextlib
 import logging
+import math
 import warnings as _warnings
 from collections import defaultdict
 from collections.abc import Iterator
@@ -460,26 +461,91 @@ def _normal(ds: Any) -> np.ndarray | None:
     return None if norm == 0 else n / norm
 
 
+def _text_values(ds: Any, tag: int) -> list[str] | None:
+    """The backslash-separated values of a text element (DS, IS, UI), parsed from the
+    raw bytes when pydicom has not converted them yet: text values do not depend on
+    byte order or VR encoding, and a series read touches these in every file."""
+    try:
+        elem = ds.get_item(tag)
+    except (KeyError, TypeError):
+        return None
+    if elem is None:
+        return None
+    v = elem.value
+    if v is None:
+        return None
+    if isinstance(v, bytes):
+        text = v.decode("latin-1").strip(" \x00")
+        return [t.strip() for t in text.split("\\")] if text else None
+    if isinstance(v, str):
+        return [v.strip()] if v.strip() else None
+    try:
+        return [str(x) for x in v]
+    except TypeError:
+        return [str(v)]
+
+
+def _floats(ds: Any, tag: int, n: int) -> tuple[float, ...] | None:
+    vals = _text_values(ds, tag)
+    if vals is None or len(vals) != n:
+        return None
+    try:
+        return tuple(float(x) for x in vals)
+    except ValueError:
+        return None
+
+
+def _ushort(ds: Any, tag: int, default: int, order: str) -> int:
+    """An US element (Rows, BitsAllocated, ...) from its raw two bytes when unconverted."""
+    try:
+        elem = ds.get_item(tag)
+    except (KeyError, TypeError):
+        return default
+    if elem is None or elem.value is None:
+        return default
+    v = elem.value
+    if isinstance(v, bytes):
+        return int.from_bytes(v[:2], "big" if order == "big" else "little") if len(v) >= 2 \
+            else default
+    try:
+        return int(v)
+    except (TypeError, ValueError):
+        return default
+
+
+def _unit_normal(iop: tuple[float, ...]) -> tuple[float, ...] | None:
+    r, c = iop[:3], iop[3:]
+    n = (r[1] * c[2] - r[2] * c[1], r[2] * c[0] - r[0] * c[2], r[0] * c[1] - r[1] * c[0])
+    norm = math.sqrt(n[0] ** 2 + n[1] ** 2 + n[2] ** 2)
+    return None if norm == 0 else (n[0] / norm, n[1] / norm, n[2] / norm)
+
+
 def _meta(ds: Any) -> _Meta:
-    n = _normal(ds)
-    ipp = ds.get("ImagePositionPatient")
-    inst = ds.get("InstanceNumber")
-    bits_allocated = int(ds.get("BitsAllocated", 16) or 16)
+    iop = _floats(ds, 0x00200037, 6)
+    ipp = _floats(ds, 0x00200032, 3)
+    inst = _floats(ds, 0x00200013, 1)
+    slope = _floats(ds, 0x00281053, 1)
+    intercept = _floats(ds, 0x00281052, 1)
+    uid = _text_values(ds, 0x0020000E)
+    frames = _floats(ds, 0x00280008, 1)
+    ts = _transfer_syntax(ds)
+    order = "big" if ts == "1.2.840.10008.1.2.2" else "little"
+    bits_allocated = _ushort(ds, 0x00280100, 16, order) or 16
     return _Meta(
-        series_uid=str(ds.get("SeriesInstanceUID", "")),
-        rows=int(ds.get("Rows", 0) or 0),
-        cols=int(ds.get("Columns", 0) or 0),
-        spp=int(ds.get("SamplesPerPixel", 1) or 1),
-        frames=int(ds.get("NumberOfFrames", 1) or 1),
+        series_uid=uid[0] if uid else "",
+        rows=_ushort(ds, 0x00280010, 0, order),
+        cols=_ushort(ds, 0x00280011, 0, order),
+        spp=_ushort(ds, 0x00280002, 1, order) or 1,
+        frames=max(1, int(frames[0])) if frames else 1,
         bits_allocated=bits_allocated,
-        bits_stored=int(ds.get("BitsStored", bits_allocated) or bits_allocated),
-        signed=int(ds.get("PixelRepresentation", 0) or 0) == 1,
-        ts=_transfer_syntax(ds),
-        normal=tuple(float(v) for v in n) if n is not None else None,
-        ipp=None if ipp is None or len(ipp) != 3 else np.asarray([float(v) for v in ipp]),
-        instance=_int_or_none(inst),
-        slope=_float_or_none(ds.get("RescaleSlope")) or 1.0,
-        intercept=_float_or_none(ds.get("RescaleIntercept")) or 0.0,
+        bits_stored=_ushort(ds, 0x00280101, bits_allocated, order) or bits_allocated,
+        signed=_ushort(ds, 0x00280103, 0, order) == 1,
+        ts=ts,
+        normal=_unit_normal(iop) if iop is not None else None,
+        ipp=np.asarray(ipp) if ipp is not None else None,
+        instance=int(inst[0]) if inst else None,
+        slope=slope[0] if slope and slope[0] != 0 else 1.0,
+        intercept=intercept[0] if intercept else 0.0,
     )
 
 
