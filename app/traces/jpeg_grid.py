@@ -40,13 +40,13 @@ _TOL = 1.0
 #: coefficients up to this size carry no information about a step.
 _ROUNDING_MAX = 4.0
 #: Smallest share of the informative coefficients that must fit a step.
-_MIN_FIT = 0.8
+_MIN_FIT = 0.85
 #: One-sided z score (binomial, against the share expected by chance) a step needs.
 _MIN_Z = 6.0
 #: Fewest informative coefficients for a step to be measured.
 _MIN_SUPPORT = 8
 #: Informative coefficients needed to call a frequency's step 1 (fine, no lattice).
-_MIN_SUPPORT_FINE = 30
+_MIN_SUPPORT_FINE = 80
 
 
 @dataclass
@@ -116,6 +116,17 @@ class GridEstimate:
     def n_measured(self) -> int:
         """Frequencies whose step (> 1) was measured with significance."""
         return int(np.sum(np.isfinite(self.steps) & (self.steps > 1)))
+
+    @property
+    def n_measured_low(self) -> int:
+        """Measured steps (> 1) among the low frequencies ``u + v <= 4``.
+
+        The low frequencies carry most of the non-zero coefficients of a decoded
+        JPEG, so a real quantiser shows there first; lattice-like coincidences of
+        interpolated images were seen only at high frequencies.
+        """
+        low = (_U + _V) <= 4
+        return int(np.sum(np.isfinite(self.steps) & (self.steps > 1) & low))
 
 
 def find_lattice(values: np.ndarray, *, max_levels: int = 65536) -> Lattice:
@@ -428,7 +439,7 @@ def estimate_steps(coefs: np.ndarray, *, max_step: int = 255
     Every candidate step ``q = 2 .. max_step`` is scored by the share of informative
     (non-zero) coefficients within one unit of a multiple of ``q``, against the
     share expected by chance (``2 * tol / q``); the largest ``q`` with a share of at
-    least 0.8 and a binomial z score of at least 6 is the estimate (divisors of the
+    least 0.85 and a binomial z score of at least 6 is the estimate (divisors of the
     true step also fit; multiples of it do not, since odd multiples fall between).
     The DC term is measured with its phase fitted, so an unknown level shift does not
     matter.

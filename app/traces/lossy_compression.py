@@ -38,6 +38,13 @@ DEFAULTS = {"method": None, "quality": None, "block_origin": None}
 MAX_FRAMES = 8
 #: Frequencies with a measured step above 1 needed to call JPEG from the pixels.
 MIN_MEASURED = 3
+#: ... of which at least this many among the low frequencies (u + v <= 4), unless at
+#: least MIN_MEASURED_ANY frequencies show one. Uncompressed interpolated images
+#: showed lattice-like coincidences at up to 2 high frequencies (bench/accuracy_jpeg.py
+#: and its null runs); small high-quality JPEGs have too few large low-frequency
+#: coefficients to prove steps of 2 there.
+MIN_MEASURED_LOW = 2
+MIN_MEASURED_ANY = 6
 #: Usable blocks needed for any call from the pixels.
 MIN_BLOCKS = 16
 #: Largest root-mean-square relative table error still reported as an IJG quality.
@@ -232,11 +239,14 @@ def pixel_finding(images: np.ndarray, *, workers: int = 1) -> PixelFinding:
         return PixelFinding(
             "inconclusive", f"Only {grid.n_blocks} 8 x 8 blocks are neither flat nor touch the "
             "clipping levels; too few to measure a quantiser.", grid=grid, lattice=lat, bits=bits)
-    if grid.n_measured < MIN_MEASURED:
+    if grid.n_measured < MIN_MEASURED or (grid.n_measured_low < MIN_MEASURED_LOW
+                                          and grid.n_measured < MIN_MEASURED_ANY):
         return PixelFinding(
-            "absent", f"No quantisation step above 1 in the DCT coefficients of "
-            f"{grid.n_blocks} blocks on any 8 x 8 grid ({grid.n_measured} of 64 frequencies "
-            "show one).", grid=grid, lattice=lat, bits=bits)
+            "absent", f"No JPEG quantiser in the DCT coefficients of {grid.n_blocks} blocks on "
+            f"any 8 x 8 grid ({grid.n_measured} of 64 frequencies show a step above 1, "
+            f"{grid.n_measured_low} of them low ones; JPEG needs {MIN_MEASURED} with "
+            f"{MIN_MEASURED_LOW} low ones, or {MIN_MEASURED_ANY}).",
+            grid=grid, lattice=lat, bits=bits)
     q, err = trimmed_match(grid.steps, baseline=bits == 8)
     quality = q if err <= MAX_FIT_ERROR else None
     return PixelFinding(
