@@ -108,7 +108,9 @@ def band_lines(mean_log: np.ndarray, axis: int, other_support: float = 0.4) -> n
     """Lines along ``axis`` over a band of the other axis that avoids its DC line.
 
     The band spans ``|k| / m`` from ``other_support / 16`` to ``0.4 * other_support``,
-    inside the other axis's acquired region (assumed 0.4 until it is measured).
+    inside the other axis's acquired region (assumed 0.4 until it is measured). Lines
+    that are empty (more than 40 dB below the strongest line of the band: the missing
+    side of partial-Fourier complex data) are left out.
     """
     a = mean_log if axis == 0 else mean_log.T
     m = a.shape[1]
@@ -117,7 +119,9 @@ def band_lines(mean_log: np.ndarray, axis: int, other_support: float = 0.4) -> n
     hi = max(lo + 1, int(round(m * other_support * 0.4)))
     cols = np.r_[cm - hi:cm - lo + 1, cm + lo:min(m, cm + hi + 1)]
     cols = cols[(cols >= 0) & (cols < m)]
-    return a[:, cols]
+    level = np.median(a[:, cols], axis=0)
+    keep = cols[level >= level.max() - 40.0]
+    return a[:, keep]
 
 
 def edge_scores(prof: np.ndarray, w: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
