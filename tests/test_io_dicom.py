@@ -336,3 +336,29 @@ def test_files_without_suffix_or_meta(tmp_path):
         data = np.asarray(loaded.volumes[0].data)
         assert data.dtype.isnative
         np.testing.assert_array_equal(data, pydicom.dcmread(_f("MR_small.dcm")).pixel_array)
+
+
+def test_repeated_positions_become_a_time_axis(tmp_path):
+    """Truth: 3 positions x 2 repetitions (InstanceNumber orders the repetitions); slice
+    at position p, repetition t holds base + 100 p + 1000 t -> shape (2, 3, 64, 64)."""
+    base = pydicom.dcmread(_f("MR_small.dcm"))
+    ref = base.pixel_array.astype(np.int16)
+    uid = pydicom.uid.generate_uid()
+    n = 0
+    for t in range(2):
+        for p in (2, 0, 1):
+            ds = pydicom.dcmread(_f("MR_small.dcm"))
+            ds.PixelData = (ref + np.int16(100 * p + 1000 * t)).tobytes()
+            ds.SeriesInstanceUID = uid
+            ds.InstanceNumber = 1 + p + 3 * t
+            ds.ImageOrientationPatient = [1, 0, 0, 0, 1, 0]
+            ds.ImagePositionPatient = [0.0, 0.0, 3.0 * p]
+            ds.save_as(tmp_path / f"x{n}.dcm")
+            n += 1
+    with open_input(tmp_path) as loaded:
+        vol = loaded.volumes[0]
+        assert vol.shape == (2, 3, 64, 64) and vol.axes == ("time", "slices", "rows", "cols")
+        for t in range(2):
+            for p in range(3):
+                np.testing.assert_array_equal(vol.data[t, p], ref + 100 * p + 1000 * t)
+        assert vol.spacing[1] == pytest.approx(3.0)

@@ -549,21 +549,36 @@ def _meta(ds: Any) -> _Meta:
     )
 
 
-def _order(items: list[_Item]) -> tuple[list[_Item], float | None]:
-    """Sort slices; return them and the slice spacing along the normal (mm)."""
+def _order(items: list[_Item]) -> tuple[list[_Item], float | None, int]:
+    """Sort slices by position along the normal (then InstanceNumber).
+
+    Returns the items, the slice spacing along the normal (mm) and the number of
+    repetitions per position: when every position occurs equally often (time
+    series, multiple echoes), the items come time-major (all positions of the
+    first repetition, then the second...) so the stack reshapes to
+    ``(repetitions, positions, rows, cols)``.
+    """
     normal = items[0].meta.normal
+    inst_ok = all(it.meta.instance is not None for it in items)
     if normal is not None and all(it.meta.ipp is not None for it in items):
         nv = np.asarray(normal)
-        proj = np.asarray([float(np.dot(it.meta.ipp, nv)) for it in items])
-        if len(np.unique(np.round(proj, 4))) == len(proj):
-            order = np.argsort(proj, kind="stable")
-            sp = np.diff(proj[order])
+        proj = np.round(np.asarray([float(np.dot(it.meta.ipp, nv)) for it in items]), 4)
+        uniq, counts = np.unique(proj, return_counts=True)
+        if len(uniq) == len(proj) or (len(uniq) > 1 and np.all(counts == counts[0])):
+            reps = int(counts[0])
+            inst = [it.meta.instance or 0 for it in items] if inst_ok else list(range(len(items)))
+            by_pos = np.lexsort((inst, proj))  # position-major, InstanceNumber within
+            rank = np.empty(len(items), dtype=int)
+            rank[by_pos] = np.tile(np.arange(reps), len(uniq))
+            pos_index = np.searchsorted(uniq, proj)
+            order = np.lexsort((pos_index, rank))  # repetition-major, position within
+            sp = np.diff(uniq)
             spacing = float(np.median(np.abs(sp))) if len(sp) else None
-            return [items[i] for i in order], spacing
-    if all(it.meta.instance is not None for it in items):
+            return [items[i] for i in order], spacing, reps
+    if inst_ok:
         order = np.argsort([it.meta.instance for it in items], kind="stable")
         items = [items[i] for i in order]
-    return items, None
+    return items, None, 1
 
 
 def _native_dtype(m: _Meta) -> np.dtype | None:
@@ -631,8 +646,9 @@ def _stored_range(data: np.ndarray) -> list[float]:
 def _volume_of(items: list[_Item], opts: ReadOptions) -> Volume:
     """Stack one series (single-frame files) or wrap one multi-frame file."""
     spacing_mm: float | None = None
+    reps = 1
     if len(items) > 1:
-        items, spacing_mm = _order(items)
+        items, spacing_mm, reps = _order(items)
     first = items[0]
     ds0 = first.ds
     m0 = first.meta
@@ -702,6 +718,10 @@ def _volume_of(items: list[_Item], opts: ReadOptions) -> Volume:
     if ps is not None:
         spacing = (spacing_mm or float("nan"),) * (data.ndim - 2) + (ps[0], ps[1])
         spacing = tuple(float(s) for s in spacing)
+    if reps > 1:
+        data = data.reshape((reps, len(items) // reps) + data.shape[1:])
+        spacing = (float("nan"),) + spacing if spacing is not None else None
+        hdr.fields["repetitions_per_position"] = reps
     hdr.fields["stored_value_range"] = _stored_range(data)
     hdr.fields["n_files"] = len(items)
     domain = opts.domain or "image"
