@@ -142,7 +142,8 @@ def find_lattice(values: np.ndarray, *, max_levels: int = 65536) -> Lattice:
     values : ndarray
         Grey levels (any real dtype).
     max_levels : int
-        More distinct values than this are not treated as a lattice.
+        More distinct values, or a lattice of more steps, than this are not treated
+        as a lattice.
 
     Returns
     -------
@@ -181,6 +182,9 @@ def find_lattice(values: np.ndarray, *, max_levels: int = 65536) -> Lattice:
         a, b = np.polyfit(k, u, 1)
         a, b = float(a), float(b)
     k = np.round((u - b) / a)
+    if k[-1] - k[0] > max_levels:
+        return Lattice(False, n_levels=n, reason=f"the values would need {int(k[-1] - k[0])} "
+                       "lattice steps: not a regular lattice")
     res = float(np.max(np.abs(u - (a * k + b))))
     limit = 0.75 if integer and a > 1.5 else 1e-4 * max(1.0, a)
     if integer and abs(a - 1.0) < 1e-9:

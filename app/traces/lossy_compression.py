@@ -215,8 +215,11 @@ def pixel_finding(images: np.ndarray, *, workers: int = 1) -> PixelFinding:
     x = x.astype(np.float64, copy=False)
     finite = np.isfinite(x)
     lat = jpeg_grid.find_lattice(x[finite])
+    if lat.n_levels < 2:
+        return PixelFinding("inconclusive", "The image is constant: there is no block "
+                            "structure to measure.", lattice=lat)
     if not lat.found:
-        if lat.n_levels > 4096 or lat.n_levels < 2:
+        if lat.n_levels > min(4096, 0.5 * finite.sum()):
             return PixelFinding(
                 "absent", f"The grey levels are continuous ({lat.n_levels} distinct values, "
                 "on no regular lattice), so no 8- or 12-bit decoded stage survives in them.",
