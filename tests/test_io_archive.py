@@ -141,3 +141,19 @@ def test_empty_folder_and_zip(tmp_path):
     with zipfile.ZipFile(z, "w") as zf:
         zf.writestr("dir/", b"")
     assert _error(z).code == "empty"
+
+
+def test_folder_skips_links_and_hidden_files(tmp_path):
+    """Symbolic links (which could point outside the upload) and hidden files are not
+    read: a folder holding one real array, a link to another and a hidden copy gives
+    one group."""
+    outside = tmp_path / "outside"
+    outside.mkdir()
+    np.save(outside / "secret.npy", np.ones((4, 4), np.float32))
+    folder = tmp_path / "set"
+    folder.mkdir()
+    np.save(folder / "real.npy", np.zeros((4, 4), np.float32))
+    (folder / "link.npy").symlink_to(outside / "secret.npy")
+    np.save(folder / ".hidden.npy", np.ones((4, 4), np.float32))
+    with open_input(folder) as loaded:
+        assert [v.name for v in loaded.volumes] == ["real"] and loaded.n_files == 1

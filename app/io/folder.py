@@ -17,22 +17,33 @@ from app.io.options import ReadOptions
 from app.io.volume import Volume
 
 
-def list_files(folder: Path, opts: ReadOptions) -> list[Path]:
-    """All regular files below ``folder`` (hidden ones and resource forks left out)."""
-    out: list[Path] = []
-    for root, dirs, files in os.walk(folder, followlinks=False):
-        dirs[:] = sorted(d for d in dirs if not d.startswith(".") and d != "__MACOSX")
-        for name in sorted(files):
-            if name.startswith("."):
+def list_files(folder: Path, opts: ReadOptions) -> list[tuple[Path, int]]:
+    """All regular files below ``folder`` with their sizes, in sorted order.
+
+    Hidden entries, resource forks (``__MACOSX``) and symbolic links are left out.
+    """
+    out: list[tuple[Path, int]] = []
+    stack = [folder]
+    while stack:
+        here = stack.pop()
+        try:
+            entries = sorted(os.scandir(here), key=lambda e: e.name)
+        except OSError as exc:
+            raise InputError("unreadable", f"{here.name} cannot be listed: {exc}",
+                             str(here)) from exc
+        subdirs = []
+        for e in entries:
+            if e.name.startswith(".") or e.name == "__MACOSX" or e.is_symlink():
                 continue
-            p = Path(root) / name
-            if p.is_symlink() or not p.is_file():
-                continue
-            out.append(p)
-            if len(out) > opts.limits.max_files:
-                raise InputError("too_many_files", f"{folder.name} holds more than "
-                                 f"{opts.limits.max_files} files (RAWPROOF_MAX_FILES).",
-                                 str(folder))
+            if e.is_dir(follow_symlinks=False):
+                subdirs.append(Path(e.path))
+            elif e.is_file(follow_symlinks=False):
+                out.append((Path(e.path), e.stat(follow_symlinks=False).st_size))
+                if len(out) > opts.limits.max_files:
+                    raise InputError("too_many_files", f"{folder.name} holds more than "
+                                     f"{opts.limits.max_files} files (RAWPROOF_MAX_FILES).",
+                                     str(folder))
+        stack.extend(reversed(subdirs))
     return out
 
 
@@ -58,8 +69,8 @@ def read_folder(folder: Path, opts: ReadOptions) -> tuple[list[Volume], int]:
         raise InputError("empty", f"The folder {folder.name} is empty.", str(folder))
     by_family: dict[str, list[Path]] = defaultdict(list)
     skipped = []
-    for p in files:
-        if p.stat().st_size == 0:
+    for p, size in files:
+        if size == 0:
             skipped.append(p.name)
             continue
         fam = family_of(p)
