@@ -62,14 +62,15 @@ def get_database(request: Request) -> Database:
 def get_db(request: Request) -> Iterator[Session]:
     """A session per request; non-GET requests take the write lock from their first statement.
 
-    Handlers that change data commit explicitly; anything left is rolled back.
+    Handlers that change data commit explicitly; closing rolls back anything
+    left. (Closing, unlike ``rollback()``, keeps loaded attributes readable, so
+    an error page rendered after the request can still show who is signed in.)
     """
     db: Database = request.app.state.database
     session = db.session(write=request.method not in ("GET", "HEAD", "OPTIONS"))
     try:
         yield session
     finally:
-        session.rollback()
         session.close()
 
 

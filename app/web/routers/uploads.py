@@ -68,6 +68,9 @@ async def upload(request: Request, user: StreamingUser, settings: SettingsDep):
             if not (fields.get(key) or [""])[0].strip():
                 raise ValidationError(f"The {label} is required.")
 
+    if (not token_auth and header_token is None
+            and not request.headers.get("content-type", "").startswith("multipart/form-data")):
+        check_csrf(expected, None)  # no multipart body, so no token field can follow
     length = request.headers.get("content-length")
     if length and length.isdigit() and int(length) > settings.max_upload_bytes + 1024**2:
         return _error(request, settings, 413, ValidationError(
