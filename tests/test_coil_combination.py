@@ -203,3 +203,32 @@ def test_nibabel_example4d_masked_is_inconclusive() -> None:
     t = _run(frames)
     assert t.status == "inconclusive"
     assert "one value 0" in t.summary
+
+
+def test_large_frames_segmented_at_reduced_size() -> None:
+    """512 x 512 frames (segmented on 2 x 2 block means): L = 4 still within max(1, 0.8).
+
+    Truth: L = 4 uncorrelated channels, sigma 0.01; the noise samples come from
+    the full-resolution frame, so the law is unchanged.
+    """
+    mag = synth.rss(synth.acquire((512, 512), n_coils=4, sigma=0.01, seed=12), axis=1)
+    t = _run(mag)
+    assert t.status == "present"
+    assert abs(t.estimates["effective_channels"] - 4) <= 1.0
+    assert t.estimates["sigma"] == pytest.approx(0.01, rel=0.10)
+
+
+def test_noise_free_complex_names_no_law() -> None:
+    """A noise-free complex phantom: absent (complex values are never an RSS), law unknown."""
+    img = synth.acquire((96, 96), n_coils=4, sigma=0.0, seed=13)
+    t = _run(img, coil_axis=1)
+    assert t.status == "absent"
+    assert t.estimates["noise_model"] == "unknown" and t.estimates["sigma"] is None
+    assert "not measured" in t.summary
+
+
+def test_complex_kspace_is_gaussian() -> None:
+    """Multi-coil complex k-space: Gaussian by construction, absent."""
+    k = synth.to_kspace(synth.acquire((64, 64), n_coils=4, sigma=0.01, seed=14))
+    t = _run(k, domain="kspace", coil_axis=1)
+    assert t.status == "absent" and t.estimates["noise_model"] == "gaussian"

@@ -36,6 +36,8 @@ from scipy import ndimage
 from app.io.volume import Volume
 
 MAX_FRAMES = 16
+MAX_PIXELS = 2_000_000
+_WORK_SIDE = 192
 MAX_SAMPLES_PER_FRAME = 32768
 MIN_SAMPLES = 500
 _FLATNESS_LIMIT = 0.6
@@ -262,6 +264,9 @@ def frame_background(m: np.ndarray) -> tuple[np.ndarray, str, int, float]:
     Otsu 1979 (threshold); Gudbjartsson and Patz 1995 (background as the
     signal-free region).
     """
+    factor = min(m.shape) // _WORK_SIDE
+    if factor >= 2:
+        return _frame_background_reduced(m, factor)
     finite = np.isfinite(m)
     m = np.where(finite, m, 0.0).astype(np.float64, copy=False)
     k = _box_size(m.shape)
@@ -291,6 +296,22 @@ def frame_background(m: np.ndarray) -> tuple[np.ndarray, str, int, float]:
     return np.zeros(m.shape, dtype=bool), "none", 0, t
 
 
+def _frame_background_reduced(m: np.ndarray, factor: int) -> tuple[np.ndarray, str, int, float]:
+    """:func:`frame_background` on a ``factor x factor`` block mean, mask expanded back.
+
+    Large frames are segmented at a reduced size to bound the cost; a block
+    containing a non-finite pixel is not background.
+    """
+    rows, cols = m.shape
+    ny, nx = rows // factor, cols // factor
+    crop = m[:ny * factor, :nx * factor].astype(np.float64)
+    small = crop.reshape(ny, factor, nx, factor).mean(axis=(1, 3))
+    mask_s, method, excluded, t = frame_background(small)
+    mask = np.zeros((rows, cols), dtype=bool)
+    mask[:ny * factor, :nx * factor] = np.repeat(np.repeat(mask_s, factor, 0), factor, 1)
+    return mask & np.isfinite(m), method, excluded, t
+
+
 def analysed_frames(n_frames: int, base: np.ndarray | None = None,
                     max_frames: int = MAX_FRAMES) -> np.ndarray:
     """At most ``max_frames`` evenly spaced frame indices (from ``base`` if given)."""
@@ -318,7 +339,8 @@ def find_background(volume: Volume, *, frames: Any = None,
     frames : sequence of int, optional
         Frames to choose from (the context's stated subset); default all.
     max_frames : int
-        Upper bound on frames examined.
+        Upper bound on frames examined; fewer when the frames are large (at most
+        :data:`MAX_PIXELS` pixels in all).
 
     Returns
     -------
@@ -328,8 +350,9 @@ def find_background(volume: Volume, *, frames: Any = None,
     ----------
     Otsu 1979; Gudbjartsson and Patz, MRM 1995.
     """
-    idx = analysed_frames(volume.n_slices, frames, max_frames)
     rows, cols = volume.image_shape
+    max_frames = max(1, min(max_frames, MAX_PIXELS // max(1, rows * cols)))
+    idx = analysed_frames(volume.n_slices, frames, max_frames)
     notes = []
     if idx.size < volume.n_slices:
         notes.append(f"background found on {idx.size} of {volume.n_slices} frames, "
@@ -339,7 +362,6 @@ def find_background(volume: Volume, *, frames: Any = None,
                           0, "none", "the data are k-space samples, not images: there is "
                           "no image background", 0.0, 0.0, 0.0, 0, notes)
     multi = volume.coil_axis is not None
-    rng = np.random.default_rng(12345)
     masks, mags, vals, stored_parts = [], [], [], []
     obj_levels, peaks = [], []
     n_bg = n_px = n_nan = excluded = 0
@@ -367,7 +389,7 @@ def find_background(volume: Volume, *, frames: Any = None,
             pos = np.flatnonzero(mask)
             n_bg += pos.size
             if pos.size > MAX_SAMPLES_PER_FRAME:
-                pos = np.sort(rng.choice(pos, MAX_SAMPLES_PER_FRAME, replace=False))
+                pos = pos[np.linspace(0, pos.size - 1, MAX_SAMPLES_PER_FRAME).astype(np.int64)]
             mags.append(m.ravel()[pos])
             if multi:
                 vals.append(block[j].reshape(block.shape[1], -1)[:, pos])

@@ -160,18 +160,41 @@ def _evidence_from_fits(x: np.ndarray, res: dict, lo: float, hi: float,
 
 
 def _gaussian_trace(volume: Volume, bg: Background, kind: str) -> Trace:
-    """Complex or signed real data: Gaussian noise, no root-sum-of-squares."""
+    """Complex or signed real data: Gaussian noise, no root-sum-of-squares.
+
+    Such values cannot come out of a root-sum-of-squares (which is real and
+    non-negative), so the trace is absent whatever the air shows. The Gaussian
+    law is fitted to the background components where there is a measurable
+    background; k-space noise is Gaussian by construction; a masked, noise-free
+    or missing background leaves the law ``unknown`` with the reason said.
+    """
     what = ("complex values" if kind == "complex" else "real values of both signs")
     coils = f" from {volume.n_coils} separate receive channels" if volume.n_coils > 1 else ""
-    estimates = {"noise_model": "gaussian", "effective_channels": None, "sigma": None}
     evidence: dict[str, Any] = {"chosen": "gaussian", "effective_channels": None,
                                 "sigma": None, "n_background": int(bg.n_background),
                                 "n_coils": volume.n_coils}
-    masked = constant_share(bg).masked
-    if bg.usable and bg.values is not None and not masked:
+    estimates = {"noise_model": "gaussian", "effective_channels": None, "sigma": None}
+    comps = np.zeros(0)
+    if bg.usable and bg.values is not None:
         v = np.asarray(bg.values).ravel()
         comps = np.concatenate([v.real, v.imag]) if np.iscomplexobj(v) else v.real
         comps = comps[np.isfinite(comps)].astype(np.float64)
+    rms = float(np.sqrt(np.mean(comps**2))) if comps.size else 0.0
+    why = None
+    if volume.domain == "kspace":
+        sig = "; k-space noise is Gaussian by construction (not measured here)"
+    elif not bg.usable:
+        why = bg.reason
+    elif constant_share(bg).masked:
+        why = "the background holds one constant value (masked or noise-free)"
+    elif rms <= NOISE_FREE * max(bg.signal_peak, 1e-30):
+        why = "the background is below 1e-5 of the signal peak (noise-free data)"
+    if why is not None:
+        estimates["noise_model"] = evidence["chosen"] = "unknown"
+        summary = (f"The data hold {what}{coils}, which no root-sum-of-squares combination "
+                   f"produces; the noise law was not measured: {why}.")
+        return Trace(TRACE_ID, "absent", 0.8, summary, estimates, evidence)
+    if volume.domain != "kspace":
         tested = _subsample(comps, KS_SAMPLES)
         fit = nl.fit_gaussian(tested, zero_mean=kind == "complex")
         lim = float(np.percentile(np.abs(comps), 99.5)) or 1.0
@@ -187,8 +210,6 @@ def _gaussian_trace(volume: Volume, bg: Background, kind: str) -> Trace:
                                         "p_value": _r4(fit.p_value)}},
         })
         sig = f"; background sigma {fit.sigma:.4g} (KS distance {fit.statistic:.3f})"
-    else:
-        sig = ""
     summary = (f"The data hold {what}{coils}: their noise is Gaussian, and no root-sum-of-"
                f"squares combination took place{sig}.")
     return Trace(TRACE_ID, "absent", 0.9, summary, estimates, evidence)
