@@ -60,6 +60,7 @@ def _traversal_zip(tmp_path: Path) -> Path:
     (_zero_byte, "empty_file"),
     (_traversal_zip, "unsafe_archive"),
     (lambda tmp: Path(get_testdata_file("MR_truncated.dcm")), "truncated_dicom"),
+    (lambda tmp: Path(get_testdata_file("JPEG-lossy.dcm")), "undecodable_pixels"),
 ])
 def test_cli_subprocess_exit_2(tmp_path, make, code):
     """The installed ``rawproof`` command: exit 2, error object on stdout, one line on stderr."""
@@ -69,6 +70,7 @@ def test_cli_subprocess_exit_2(tmp_path, make, code):
     assert proc.returncode == 2, proc.stderr
     err = _check_error(proc.stdout, proc.stderr, code)
     assert err["path"]
+    assert len(proc.stderr.strip().splitlines()) == 1, proc.stderr  # no decoder log noise
 
 
 def _lying_nifti(tmp_path: Path) -> Path:

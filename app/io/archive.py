@@ -21,6 +21,7 @@ from pathlib import Path, PurePosixPath
 
 from app.config import Limits
 from app.errors import InputError
+from app.io.options import one_line
 
 _CHUNK = 1 << 20
 #: Ratio checks start above this uncompressed size: small files of zeros
@@ -63,8 +64,8 @@ def extract_zip(archive: Path, target: Path, limits: Limits) -> list[str]:
     try:
         zf = zipfile.ZipFile(archive)
     except (zipfile.BadZipFile, OSError) as exc:
-        raise InputError("unreadable", f"{archive.name} is not a readable ZIP archive: {exc}",
-                         str(archive)) from exc
+        raise InputError("unreadable", f"{archive.name} is not a readable ZIP archive: "
+                         f"{one_line(exc)}", str(archive)) from exc
     warnings: list[str] = []
     with zf:
         infos = zf.infolist()
@@ -131,6 +132,6 @@ def extract_zip(archive: Path, target: Path, limits: Limits) -> list[str]:
                                              "size or the limits; extraction stopped.", where)
                         out.write(chunk)
             except (zipfile.BadZipFile, OSError, EOFError, RuntimeError) as exc:
-                raise InputError("unreadable", f"{where} could not be extracted: {exc}",
+                raise InputError("unreadable", f"{where} could not be extracted: {one_line(exc)}",
                                  where) from exc
     return warnings

@@ -20,7 +20,7 @@ from typing import Any
 import numpy as np
 
 from app.errors import InputError
-from app.io.options import ReadOptions, array_axes, check_array_bytes
+from app.io.options import ReadOptions, array_axes, check_array_bytes, one_line
 from app.io.volume import Header, Volume
 
 _DOMAIN_KEYS = ("kspace", "k_space", "image", "images", "img")
@@ -34,7 +34,8 @@ def _sidecar(path: Path) -> dict[str, Any]:
     try:
         meta = json.loads(side.read_text(encoding="utf-8"))
     except (OSError, ValueError) as exc:
-        raise InputError("bad_sidecar", f"{side.name} is not valid JSON: {exc}", str(side)) from exc
+        raise InputError("bad_sidecar", f"{side.name} is not valid JSON: {one_line(exc)}",
+                         str(side)) from exc
     if not isinstance(meta, dict):
         raise InputError("bad_sidecar", f"{side.name} must hold a JSON object", str(side))
     dom = meta.get("domain")
@@ -79,7 +80,7 @@ def _wrap(arr: Any, path: Path, fmt: str, domain: str, coil_axis: int | None,
                       source_files=[str(path)], name=name,
                       header=Header(fields={"array_key": name}))
     except ValueError as exc:
-        raise InputError("bad_axes", f"{path.name}: {exc}", str(path)) from exc
+        raise InputError("bad_axes", f"{path.name}: {one_line(exc)}", str(path)) from exc
 
 
 def read_npy(path: Path, opts: ReadOptions) -> list[Volume]:
@@ -99,7 +100,7 @@ def read_npy(path: Path, opts: ReadOptions) -> list[Volume]:
         with open(path, "rb") as fh:
             shape, dtype, _fortran, offset = _read_npy_header(fh)
     except (ValueError, OSError, SyntaxError) as exc:
-        raise InputError("unreadable", f"{path.name} is not a valid .npy file: {exc}",
+        raise InputError("unreadable", f"{path.name} is not a valid .npy file: {one_line(exc)}",
                          str(path)) from exc
     _check_dtype(dtype, path)
     _check_shape(shape, path)
@@ -131,7 +132,7 @@ def read_npz(path: Path, opts: ReadOptions) -> list[Volume]:
     try:
         zf = zipfile.ZipFile(path)
     except (zipfile.BadZipFile, OSError) as exc:
-        raise InputError("unreadable", f"{path.name} is not a valid .npz archive: {exc}",
+        raise InputError("unreadable", f"{path.name} is not a valid .npz archive: {one_line(exc)}",
                          str(path)) from exc
     headers: dict[str, tuple[tuple[int, ...], np.dtype]] = {}
     with zf:
@@ -143,8 +144,8 @@ def read_npz(path: Path, opts: ReadOptions) -> list[Volume]:
                 with zf.open(info) as fh:
                     shape, dtype, _f, _o = _read_npy_header(fh)
             except (ValueError, OSError, SyntaxError, zipfile.BadZipFile) as exc:
-                raise InputError("unreadable", f"{path.name}[{key}] is not a valid array: {exc}",
-                                 str(path)) from exc
+                raise InputError("unreadable", f"{path.name}[{key}] is not a valid array: "
+                                 f"{one_line(exc)}", str(path)) from exc
             headers[key] = (shape, dtype)
     if not headers:
         raise InputError("empty", f"{path.name} holds no arrays.", str(path))
@@ -158,7 +159,7 @@ def read_npz(path: Path, opts: ReadOptions) -> list[Volume]:
         with np.load(path, allow_pickle=False) as npz:
             arr = npz[key]
     except (ValueError, OSError, zipfile.BadZipFile, EOFError) as exc:
-        raise InputError("truncated", f"{path.name}[{key}] could not be read: {exc}",
+        raise InputError("truncated", f"{path.name}[{key}] could not be read: {one_line(exc)}",
                          str(path)) from exc
     meta = _sidecar(path)
     lowered = key.lower().replace("-", "_")

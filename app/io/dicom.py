@@ -32,7 +32,7 @@ import numpy as np
 
 from app.errors import InputError
 from app.io.jpeg_markers import parse_jpeg_markers
-from app.io.options import ReadOptions, check_array_bytes
+from app.io.options import ReadOptions, check_array_bytes, one_line
 from app.io.volume import Header, Volume
 
 #: Transfer syntaxes whose pixel data went through a lossy coder (PS3.5 / PS3.6).
@@ -170,13 +170,13 @@ def _read_dataset(path: Path) -> Any:
         ds = _forced(path) if path.suffix.lower() in (".dcm", ".dicom", ".ima") else None
         if ds is None:
             raise InputError(
-                "unreadable", f"{path.name} is not a DICOM file: {exc}", str(path)
+                "unreadable", f"{path.name} is not a DICOM file: {one_line(exc)}", str(path)
             ) from exc
         caught = []
     except Exception as exc:  # noqa: BLE001 - pydicom raises many types on damaged files
         raise InputError(
             "truncated_dicom",
-            f"{path.name} could not be parsed as DICOM (damaged or truncated): {exc}",
+            f"{path.name} could not be parsed as DICOM (damaged or truncated): {one_line(exc)}",
             str(path),
         ) from exc
     if "PixelData" not in ds and "FloatPixelData" not in ds and "DoubleFloatPixelData" not in ds:
@@ -410,7 +410,8 @@ def _undecodable(item: _Item, exc: Exception) -> UndecodablePixelsError:
         q, _err, exact = match_quality(np.asarray(f["jpeg_quant_tables"][0]).reshape(8, 8))
         declared.append(f"stored table quality {q}" + ("" if exact else " (nearest IJG quality)"))
     msg = parts[0] + (f"; header evidence: {', '.join(declared)}" if declared else "")
-    msg += f". Decoder said: {str(exc)[:160]}"
+    said = " ".join(str(exc).split())  # one line: decoders report over several
+    msg += f". Decoder said: {said[:200]}"
     return UndecodablePixelsError(msg, str(item.path), hdr)
 
 
@@ -441,7 +442,7 @@ def _pixels(item: _Item) -> np.ndarray:
         raise InputError(
             "truncated_dicom",
             f"{item.path.name}: the pixel data could not be read "
-            f"(damaged or truncated file): {exc}",
+            f"(damaged or truncated file): {one_line(exc)}",
             str(item.path),
         ) from exc
     arr = np.asarray(arr)
@@ -598,7 +599,8 @@ def _native_into(item: _Item, out: np.ndarray, dtype: np.dtype) -> None:
         raw = item.ds.PixelData
     except Exception as exc:  # noqa: BLE001 - a deferred read of a damaged file
         raise InputError("truncated_dicom", f"{item.path.name}: the pixel data could not be "
-                         f"read (damaged or truncated file): {exc}", str(item.path)) from exc
+                         f"read (damaged or truncated file): {one_line(exc)}",
+                         str(item.path)) from exc
     if raw is None or len(raw) < n:
         have = 0 if raw is None else len(raw)
         raise InputError("truncated_dicom", f"{item.path.name}: the pixel data hold {have} "

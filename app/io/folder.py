@@ -13,7 +13,7 @@ from pathlib import Path
 
 from app.errors import InputError
 from app.io.formats import family_of
-from app.io.options import ReadOptions
+from app.io.options import ReadOptions, one_line
 from app.io.volume import Volume
 
 
@@ -29,7 +29,7 @@ def list_files(folder: Path, opts: ReadOptions) -> list[tuple[Path, int]]:
         try:
             entries = sorted(os.scandir(here), key=lambda e: e.name)
         except OSError as exc:
-            raise InputError("unreadable", f"{here.name} cannot be listed: {exc}",
+            raise InputError("unreadable", f"{here.name} cannot be listed: {one_line(exc)}",
                              str(here)) from exc
         subdirs = []
         for e in entries:

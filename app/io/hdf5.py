@@ -20,7 +20,7 @@ from typing import Any
 import numpy as np
 
 from app.errors import InputError
-from app.io.options import ReadOptions, array_axes
+from app.io.options import ReadOptions, array_axes, one_line
 from app.io.volume import Header, Volume
 
 
@@ -96,7 +96,7 @@ def read_hdf5(path: Path, opts: ReadOptions) -> list[Volume]:
     try:
         f = h5py.File(path, "r")
     except (OSError, ValueError) as exc:
-        raise InputError("unreadable", f"{path.name} is not a readable HDF5 file: {exc}",
+        raise InputError("unreadable", f"{path.name} is not a readable HDF5 file: {one_line(exc)}",
                          str(path)) from exc
     opts.stack.callback(f.close)
     all_ds = _datasets(f)
@@ -147,4 +147,4 @@ def read_hdf5(path: Path, opts: ReadOptions) -> list[Volume]:
                        format="hdf5", source_files=[str(path)], name=f"{path.stem}:{key}",
                        header=Header(fields=fields, raw=raw))]
     except ValueError as exc:
-        raise InputError("bad_axes", f"{path.name}:{key}: {exc}", str(path)) from exc
+        raise InputError("bad_axes", f"{path.name}:{key}: {one_line(exc)}", str(path)) from exc

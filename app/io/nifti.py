@@ -22,7 +22,7 @@ from typing import Any
 import numpy as np
 
 from app.errors import InputError
-from app.io.options import ReadOptions, check_array_bytes
+from app.io.options import ReadOptions, check_array_bytes, one_line
 from app.io.volume import Header, Volume
 
 #: NIfTI xform codes (nifti1.h, NIFTI_XFORM_*).
@@ -35,7 +35,7 @@ def _load(path: Path) -> Any:
     try:
         img = nib.load(str(path), mmap=True)
     except Exception as exc:  # noqa: BLE001 - nibabel raises many types on bad headers
-        raise InputError("unreadable", f"{path.name} could not be read as NIfTI: {exc}",
+        raise InputError("unreadable", f"{path.name} could not be read as NIfTI: {one_line(exc)}",
                          str(path)) from exc
     if not isinstance(img, nib.Nifti1Image | nib.Nifti2Image):
         raise InputError("unsupported_format", f"{path.name} is a {type(img).__name__}, not "
@@ -115,8 +115,8 @@ def read_nifti(path: Path, opts: ReadOptions) -> list[Volume]:
     try:
         raw = img.dataobj.get_unscaled()
     except Exception as exc:  # noqa: BLE001
-        raise InputError("truncated", f"{path.name}: the voxel data could not be read: {exc}",
-                         str(path)) from exc
+        raise InputError("truncated", f"{path.name}: the voxel data could not be read: "
+                         f"{one_line(exc)}", str(path)) from exc
     raw = np.reshape(raw, shape, order="F") if raw.shape != shape else raw
     data = raw.T
     names = {2: ("rows", "cols"), 3: ("slices", "rows", "cols"),

@@ -76,3 +76,9 @@ def array_axes(ndim: int, coil_axis: int | None) -> tuple[str, ...]:
     for k in range(ndim - 2):
         out.append("coils" if k == cax else next(it))
     return tuple(out + axes)
+
+
+def one_line(exc: BaseException, limit: int = 300) -> str:
+    """An exception's text on one line (libraries report over several), shortened."""
+    text = " ".join(str(exc).split())
+    return text if len(text) <= limit else text[: limit - 3] + "..."

@@ -21,7 +21,7 @@ from typing import Any
 import numpy as np
 
 from app.errors import InputError
-from app.io.options import ReadOptions, check_array_bytes
+from app.io.options import ReadOptions, check_array_bytes, one_line
 from app.io.volume import Header, Volume
 
 RASTER_SUFFIXES = {".png": "png", ".jpg": "jpeg", ".jpeg": "jpeg", ".tif": "tiff",
@@ -42,9 +42,9 @@ def _open(path: Path, opts: ReadOptions) -> Any:
             _warnings.simplefilter("error", Image.DecompressionBombWarning)
             im = Image.open(path)
     except (Image.DecompressionBombError, Image.DecompressionBombWarning) as exc:
-        raise InputError("too_large", f"{path.name}: {exc}", str(path)) from exc
+        raise InputError("too_large", f"{path.name}: {one_line(exc)}", str(path)) from exc
     except (UnidentifiedImageError, OSError, SyntaxError, ValueError) as exc:
-        raise InputError("unreadable", f"{path.name} is not a readable image: {exc}",
+        raise InputError("unreadable", f"{path.name} is not a readable image: {one_line(exc)}",
                          str(path)) from exc
     w, h = im.size
     if w * h > opts.limits.max_image_pixels:
@@ -76,7 +76,7 @@ def _to_array(frame: Any, path: Path, colour_note: list[str]) -> tuple[np.ndarra
         arr = np.asarray(frame)
     except (OSError, SyntaxError, ValueError) as exc:
         raise InputError("truncated", f"{path.name}: the pixels could not be decoded "
-                         f"(damaged or truncated file): {exc}", str(path)) from exc
+                         f"(damaged or truncated file): {one_line(exc)}", str(path)) from exc
     if arr.ndim != 2:
         raise InputError("unsupported_format", f"{path.name}: image mode {mode} with shape "
                          f"{arr.shape} is not supported.", str(path))
@@ -119,7 +119,7 @@ def _read_file(path: Path, opts: ReadOptions) -> tuple[np.ndarray, dict[str, Any
             if isinstance(exc, InputError):
                 raise
             raise InputError("truncated", f"{path.name}: the pixels could not be decoded "
-                             f"(damaged or truncated file): {exc}", str(path)) from exc
+                             f"(damaged or truncated file): {one_line(exc)}", str(path)) from exc
         fields = _fields(im, fmt, bits, im.mode)
     shapes = {a.shape for a in arrays}
     if len(shapes) != 1:
