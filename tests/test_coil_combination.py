@@ -232,3 +232,15 @@ def test_complex_kspace_is_gaussian() -> None:
     k = synth.to_kspace(synth.acquire((64, 64), n_coils=4, sigma=0.01, seed=14))
     t = _run(k, domain="kspace", coil_axis=1)
     assert t.status == "absent" and t.estimates["noise_model"] == "gaussian"
+
+
+def test_uncombined_magnitude_channels_are_rayleigh() -> None:
+    """Per-channel magnitudes with a coil axis (not combined): Rayleigh per channel, absent.
+
+    Truth: 6 channels, |x| of each (Gudbjartsson and Patz 1995: Rayleigh), sigma 0.01.
+    """
+    img = np.abs(synth.acquire((96, 96), n_coils=6, n_slices=2, sigma=0.01, seed=15))
+    t = _run(img.astype(np.float32), coil_axis=1)
+    assert t.status == "absent" and t.estimates["noise_model"] == "rayleigh"
+    assert t.estimates["sigma"] == pytest.approx(0.01, rel=0.1)
+    assert "6 separate magnitude channels" in t.summary

@@ -238,7 +238,9 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
             f"value {const.value:.4g} (masked, thresholded or noise-free background).",
             n_background=int(bg.n_background), constant_value=const.value,
             constant_share=const.share)
-    x = bg.magnitude
+    per_channel = volume.coil_axis is not None and bg.values is not None
+    # uncombined magnitude channels: each channel's own law is what was delivered
+    x = np.abs(np.asarray(bg.values)).ravel() if per_channel else bg.magnitude
     x = x[np.isfinite(x)]
     rms = float(np.sqrt(np.mean(x * x))) if x.size else 0.0
     if rms <= NOISE_FREE * max(bg.signal_peak, 1e-30):
@@ -259,7 +261,8 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
     hi = float(np.percentile(x, 99.5)) * 1.15 or 1.0
     evidence = _evidence_from_fits(x, res, 0.0, hi, bg.n_background)
     evidence.update({"background_method": bg.method, "quantisation_step": _r4(step),
-                     "excluded_blocks": bg.excluded_blocks})
+                     "excluded_blocks": bg.excluded_blocks,
+                     "per_channel": per_channel, "n_coils": volume.n_coils})
     chosen = res["chosen"]
     L = res["channels"]
     estimates = {"noise_model": chosen, "sigma": _r4(res["sigma"]),
@@ -282,10 +285,11 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
         return Trace(TRACE_ID, "present", conf, summary, estimates, evidence)
     if chosen == "rayleigh":
         conf *= float(np.clip((L_SPLIT + 0.5 - L) / 1.0, 0.3, 1.0))
+        what = (f"{volume.n_coils} separate magnitude channels, not combined" if per_channel
+                else "the magnitude of one channel (or an equivalent single-channel "
+                "combination), not a root-sum-of-squares of several")
         summary = (f"The background follows the Rayleigh law (sigma {res['sigma']:.4g}; moment "
-                   f"estimate L = {L:.2f}; KS distance {stat.statistic:.3f}): the magnitude of "
-                   "one channel (or an equivalent single-channel combination), not a "
-                   "root-sum-of-squares of several.")
+                   f"estimate L = {L:.2f}; KS distance {stat.statistic:.3f}): {what}.")
         return Trace(TRACE_ID, "absent", conf, summary, estimates, evidence)
     summary = (f"The background is Gaussian around {res['m1']:.4g} (sigma {res['sigma']:.4g}; "
                f"KS distance {stat.statistic:.3f}): an offset background, no chi law.")
