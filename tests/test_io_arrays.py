@@ -145,3 +145,25 @@ def test_hdf5_coil_axis_first_is_moved_lazily(tmp_path, coils):
         assert vol.axes == ("slices", "coils", "rows", "cols") and vol.shape == (3, 4, 32, 32)
         np.testing.assert_array_equal(vol.frame(1), arr[:, 1])
         np.testing.assert_array_equal(vol.to_array(), np.moveaxis(arr, 0, 1))
+
+
+def test_real_imaginary_pairs_in_last_axis(tmp_path, coils):
+    """Truth: complex k-space stored as float32 (..., 2) real/imaginary pairs, as several
+    public k-space collections do (common practice, no source): .npy is viewed as
+    complex without a copy, HDF5 (coil axis 0 in the file) lazily."""
+    ksp = synth.to_kspace(coils).astype(np.complex64)  # (3, 4, 32, 32)
+    pairs = np.stack([ksp.real, ksp.imag], axis=-1).astype(np.float32)
+    np.save(tmp_path / "p.npy", pairs)
+    with open_input(tmp_path / "p.npy", domain="kspace", coil_axis=1) as loaded:
+        vol = loaded.volumes[0]
+        assert vol.value_type == "complex" and vol.shape == (3, 4, 32, 32)
+        assert isinstance(vol.data, np.memmap)
+        np.testing.assert_array_equal(vol.frame(2), ksp[2])
+        assert any("real and imaginary" in w for w in loaded.warnings)
+    path = tmp_path / "p.h5"
+    with h5py.File(path, "w") as f:
+        f["kspace"] = np.ascontiguousarray(np.moveaxis(pairs, 1, 0))  # (4, 3, 32, 32, 2)
+    with open_input(path, coil_axis=0) as loaded:
+        vol = loaded.volumes[0]
+        assert vol.shape == (3, 4, 32, 32) and vol.axes == ("slices", "coils", "rows", "cols")
+        np.testing.assert_array_equal(vol.frame(1), ksp[1])

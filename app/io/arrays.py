@@ -20,7 +20,13 @@ from typing import Any
 import numpy as np
 
 from app.errors import InputError
-from app.io.options import ReadOptions, array_axes, check_array_bytes, one_line
+from app.io.options import (
+    ReadOptions,
+    array_axes,
+    check_array_bytes,
+    is_complex_pairs,
+    one_line,
+)
 from app.io.volume import Header, Volume
 
 _DOMAIN_KEYS = ("kspace", "k_space", "image", "images", "img")
@@ -73,12 +79,31 @@ def _check_shape(shape: tuple[int, ...], path: Path, key: str = "") -> None:
                          str(path))
 
 
+def _complex_view(arr: np.ndarray) -> np.ndarray:
+    """(..., 2) real/imaginary pairs as a complex array, without a copy when the pairs
+    are contiguous (C order, memory maps included)."""
+    ctype = np.complex64 if arr.dtype.itemsize <= 4 else np.complex128
+    if arr.flags.c_contiguous:
+        return arr.astype(arr.dtype.newbyteorder("="), copy=False).view(ctype)[..., 0]
+    return (arr[..., 0] + 1j * arr[..., 1]).astype(ctype)
+
+
 def _wrap(arr: Any, path: Path, fmt: str, domain: str, coil_axis: int | None,
-          name: str) -> Volume:
+          name: str, opts: ReadOptions | None = None) -> Volume:
+    fields: dict[str, Any] = {"array_key": name}
+    if is_complex_pairs(arr.shape, arr.dtype):
+        nd = arr.ndim
+        if coil_axis is not None and -nd <= coil_axis < nd:
+            coil_axis = coil_axis % nd
+        arr = _complex_view(arr)
+        fields["complex_from_last_axis"] = True
+        if opts is not None:
+            opts.warnings.append(f"{path.name}: the last axis (size 2) was read as real and "
+                                 "imaginary parts of complex values.")
     try:
         return Volume(data=arr, domain=domain, axes=array_axes(arr.ndim, coil_axis), format=fmt,
                       source_files=[str(path)], name=name,
-                      header=Header(fields={"array_key": name}))
+                      header=Header(fields=fields))
     except ValueError as exc:
         raise InputError("bad_axes", f"{path.name}: {one_line(exc)}", str(path)) from exc
 
@@ -116,7 +141,7 @@ def read_npy(path: Path, opts: ReadOptions) -> list[Volume]:
     meta = _sidecar(path)
     domain = opts.domain or meta.get("domain") or "image"
     cax = opts.coil_axis if opts.coil_axis is not None else meta.get("coil_axis")
-    return [_wrap(arr, path, "npy", domain, cax, path.stem)]
+    return [_wrap(arr, path, "npy", domain, cax, path.stem, opts)]
 
 
 def read_npz(path: Path, opts: ReadOptions) -> list[Volume]:
@@ -171,7 +196,7 @@ def read_npz(path: Path, opts: ReadOptions) -> list[Volume]:
     if others:
         opts.warnings.append(f"{path.name}: analysed the array {key!r}; also present: "
                              f"{', '.join(others[:10])} (choose with --dataset).")
-    vol = _wrap(arr, path, "npz", domain, cax, f"{path.stem}[{key}]")
+    vol = _wrap(arr, path, "npz", domain, cax, f"{path.stem}[{key}]", opts)
     vol.header.fields["array_key"] = key
     return [vol]
 

@@ -20,7 +20,7 @@ from typing import Any
 import numpy as np
 
 from app.errors import InputError
-from app.io.options import ReadOptions, array_axes, one_line
+from app.io.options import ReadOptions, array_axes, is_complex_pairs, one_line
 from app.io.volume import Header, Volume
 
 
@@ -53,6 +53,29 @@ class CoilsBeforeImage:
         kept_orig = [a for a in range(self.ndim) if not dropped(orig[a])]
         kept_view = [self._perm[v] for v in range(self.ndim) if not dropped(key[v])]
         return np.transpose(out, [kept_orig.index(a) for a in kept_view])
+
+    def __array__(self, dtype: Any = None, copy: Any = None) -> np.ndarray:
+        a = self[()]
+        return a if dtype is None else a.astype(dtype)
+
+
+class ComplexPairs:
+    """A lazily read view of a real h5py Dataset whose last axis (size 2) holds real
+    and imaginary parts, as complex values."""
+
+    def __init__(self, dataset: Any) -> None:
+        self._ds = dataset
+        self.shape = tuple(int(s) for s in dataset.shape[:-1])
+        self.dtype = np.dtype(np.complex64 if dataset.dtype.itemsize <= 4 else np.complex128)
+        self.ndim = len(self.shape)
+
+    def __getitem__(self, key: Any) -> np.ndarray:
+        key = key if isinstance(key, tuple) else (key,)
+        if any(k is Ellipsis for k in key):
+            raise IndexError("Ellipsis is not supported")
+        key = key + (slice(None),) * (self.ndim - len(key))
+        pairs = np.asarray(self._ds[key + (slice(None),)])
+        return (pairs[..., 0] + 1j * pairs[..., 1]).astype(self.dtype)
 
     def __array__(self, dtype: Any = None, copy: Any = None) -> np.ndarray:
         a = self[()]
@@ -138,8 +161,16 @@ def read_hdf5(path: Path, opts: ReadOptions) -> list[Volume]:
     raw.update({f"{key}.{k}": str(v)[:200] for k, v in list(ds.attrs.items())[:50]})
     data: Any = ds
     nd = len(ds.shape)
+    if is_complex_pairs(tuple(ds.shape), ds.dtype):
+        if cax is not None and -nd <= cax < nd:
+            cax = cax % nd
+        data = ComplexPairs(ds)
+        nd -= 1
+        fields["complex_from_last_axis"] = True
+        opts.warnings.append(f"{path.name}:{key}: the last axis (size 2) was read as real and "
+                             "imaginary parts of complex values.")
     if cax is not None and -nd <= cax < nd - 2 and cax % nd != nd - 3:
-        data = CoilsBeforeImage(ds, cax % nd)
+        data = CoilsBeforeImage(data, cax % nd)
         fields["coil_axis_in_file"] = cax % nd
         cax = nd - 3
     try:

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import contextlib
 from dataclasses import dataclass, field
+from typing import Any
 
 from app.config import Limits
 
@@ -82,3 +83,13 @@ def one_line(exc: BaseException, limit: int = 300) -> str:
     """An exception's text on one line (libraries report over several), shortened."""
     text = " ".join(str(exc).split())
     return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
+def is_complex_pairs(shape: tuple[int, ...], dtype: Any) -> bool:
+    """True for a real float array whose last axis (size 2) holds real and imaginary
+    parts, as several k-space collections store complex data; an image of two
+    columns is not a plausible reading of such an array."""
+    import numpy as np
+
+    dt = np.dtype(dtype)
+    return dt.kind == "f" and len(shape) >= 3 and shape[-1] == 2 and shape[-2] > 2
