@@ -112,3 +112,14 @@ def test_stack_of_different_sizes_is_refused(tmp_path):
         with open_input(tmp_path):
             pass
     assert info.value.code == "inconsistent_stack" and "a2.png" in info.value.message
+
+
+def test_stack_of_8_and_16_bit_images_keeps_values(tmp_path):
+    """Truth: an 8-bit PNG (value 200) then a 16-bit PNG (value 40000): the stack widens
+    to hold both, and a warning says the bit depths differ."""
+    Image.fromarray(np.full((8, 8), 200, np.uint8)).save(tmp_path / "a1.png")
+    Image.fromarray(np.full((8, 8), 40000, np.uint16)).save(tmp_path / "a2.png")
+    with open_input(tmp_path) as loaded:
+        data = np.asarray(loaded.volumes[0].data)
+        assert int(data[0, 0, 0]) == 200 and int(data[1, 0, 0]) == 40000
+        assert any("bit depths" in w for w in loaded.warnings)

@@ -451,17 +451,6 @@ def _pixels(item: _Item) -> np.ndarray:
     return arr
 
 
-def _normal(ds: Any) -> np.ndarray | None:
-    iop = ds.get("ImageOrientationPatient")
-    if iop is None or len(iop) != 6:
-        return None
-    r = np.asarray([float(v) for v in iop[:3]])
-    c = np.asarray([float(v) for v in iop[3:]])
-    n = np.cross(r, c)
-    norm = np.linalg.norm(n)
-    return None if norm == 0 else n / norm
-
-
 def _text_values(ds: Any, tag: int) -> list[str] | None:
     """The backslash-separated values of a text element (DS, IS, UI), parsed from the
     raw bytes when pydicom has not converted them yet: text values do not depend on

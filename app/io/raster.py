@@ -54,7 +54,7 @@ def _open(path: Path, opts: ReadOptions) -> Any:
     return im
 
 
-def _frames(im: Any, path: Path) -> list[Any]:
+def _frames(im: Any) -> list[Any]:
     from PIL import ImageSequence
 
     n = int(getattr(im, "n_frames", 1) or 1)
@@ -109,7 +109,7 @@ def _read_file(path: Path, opts: ReadOptions) -> tuple[np.ndarray, dict[str, Any
     colour: list[str] = []
     with im:
         try:
-            frames = _frames(im, path)
+            frames = _frames(im)
             arrays = []
             bits = 8
             for fr in frames:
@@ -151,39 +151,40 @@ def read_raster(paths: list[Path], opts: ReadOptions, *, name: str | None = None
         pixels than the limits allow, or images of different sizes in one stack.
     """
     paths = sorted(paths, key=natural_key)
-    per_file_bytes = 0
-    slices = []
     fields: dict[str, Any] = {}
     colours: set[str] = set()
+    stack: np.ndarray | None = None
+    mixed = False
     for k, p in enumerate(paths):
         data, f, colour = _read_file(p, opts)
         colours.update(colour)
         if k == 0:
             fields = f
-            per_file_bytes = data.nbytes
-            check_array_bytes(per_file_bytes * len(paths), opts.limits, str(p),
-                              "This image stack")
-        elif data.shape != slices[0].shape:
+            check_array_bytes(data.nbytes * len(paths), opts.limits, str(p), "This image stack")
+            if len(paths) == 1:
+                stack = data
+                break
+            stack = np.empty((len(paths),) + data.shape, dtype=data.dtype)
+        elif data.shape != stack.shape[1:]:
             raise InputError("inconsistent_stack", f"{p.name} is {data.shape[-1]} x "
                              f"{data.shape[-2]} pixels but {paths[0].name} is "
-                             f"{slices[0].shape[-1]} x {slices[0].shape[-2]}; a stack needs "
+                             f"{stack.shape[-1]} x {stack.shape[-2]}; a stack needs "
                              "images of one size.", str(p))
         elif f.get("jpeg_quant_tables") and f["jpeg_quant_tables"] != fields.get(
                 "jpeg_quant_tables"):
             fields.setdefault("jpeg_quant_tables_vary", True)
-        slices.append(data)
+        if data.dtype != stack.dtype:
+            mixed = True
+            wider = np.result_type(stack.dtype, data.dtype)
+            if wider != stack.dtype:
+                stack = stack.astype(wider)
+        stack[k] = data
+    assert stack is not None
+    data = stack
     fmt = RASTER_SUFFIXES[paths[0].suffix.lower()]
-    if len(slices) == 1:
-        data = slices[0]
-    else:
-        dtypes = {s.dtype for s in slices}
-        dtype = np.result_type(*dtypes)
-        data = np.empty((len(slices),) + slices[0].shape, dtype=dtype)
-        for k, s in enumerate(slices):
-            data[k] = s
-        if len(dtypes) > 1:
-            opts.warnings.append(f"{name or paths[0].parent.name}: images of different bit "
-                                 "depths were stacked.")
+    if mixed:
+        opts.warnings.append(f"{name or paths[0].parent.name}: images of different bit "
+                             "depths were stacked.")
     label = name or (paths[0].stem if len(paths) == 1 else paths[0].parent.name)
     if colours:
         opts.warnings.append(f"{label}: colour images ({', '.join(sorted(colours))}) were "
