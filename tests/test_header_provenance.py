@@ -136,3 +136,4 @@ def test_png_declares_nothing_lossy(tmp_path):
     Image.fromarray(np.zeros((8, 8), np.uint8)).save(tmp_path / "a.png")
     d, _ = _declared(tmp_path / "a.png")
     assert d["lossy_compression"] is None and "stored_jpeg_quality" not in d
+    assert d["bit_depth"] == 8

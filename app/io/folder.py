@@ -73,6 +73,8 @@ def read_folder(folder: Path, opts: ReadOptions) -> tuple[list[Volume], int]:
         if size == 0:
             skipped.append(p.name)
             continue
+        if p.name.upper() == "DICOMDIR":
+            continue  # the media directory indexes the images; it holds none itself
         fam = family_of(p)
         if fam is None:
             if p.suffix.lower() != ".json":

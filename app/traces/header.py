@@ -84,8 +84,9 @@ def provenance(volume: Volume) -> tuple[dict[str, Any], list[str]]:
         order), ``acquisition_matrix``, ``acquired`` and ``interpolation_factor``
         (``{"rows": n, "cols": n}``), ``percent_sampling``, ``percent_phase_fov``,
         ``derivation_description``, ``bits_stored``, ``bits_used``,
-        ``sform_code``, ``qform_code``, ``grid_aligned_to`` (``"image"`` or
-        ``"template"``), ``template_space``, ``descrip``.
+        ``sform_code``, ``qform_code``, ``grid_aligned_to`` (``"image"``,
+        ``"template"`` or ``"scanner"``), ``template_space``, ``descrip``,
+        ``bit_depth`` (bits per stored sample of PNG, JPEG, TIFF and NIfTI files).
     notes : list of str
         Plain-English sentences for the report.
 
@@ -103,6 +104,8 @@ def provenance(volume: Volume) -> tuple[dict[str, Any], list[str]]:
     _acquisition(f, declared, notes)
     _bits(f, declared, notes)
     _nifti(f, declared, notes)
+    if f.get("bit_depth") is not None and volume.format in ("png", "jpeg", "tiff", "nifti"):
+        declared["bit_depth"] = int(f["bit_depth"])
     declared.setdefault("lossy_compression", None)
     return declared, notes
 
