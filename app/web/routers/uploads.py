@@ -24,7 +24,10 @@ FORM_FIELDS = ("name", "source", "licence", "description", "intended_use")
 
 
 def _wants_json(request: Request) -> bool:
-    return "application/json" in request.headers.get("accept", "")
+    """Scripts (token, ``/api/``, or asking for JSON) get JSON; a plain form post a redirect."""
+    return ("application/json" in request.headers.get("accept", "")
+            or getattr(request.state, "auth", None) == "token"
+            or request.url.path.startswith("/api/"))
 
 
 @router.get("/upload")
@@ -98,7 +101,7 @@ async def upload(request: Request, user: StreamingUser, settings: SettingsDep):
 
 def _error(request: Request, settings: Settings, status: int, exc: StoreError,
            fields: dict[str, list[str]]):
-    if _wants_json(request) or getattr(request.state, "auth", None) == "token":
+    if _wants_json(request):
         return JSONResponse({"error": {"code": type(exc).__name__, "message": exc.message}},
                             status_code=status)
     form = {k: (fields.get(k) or [""])[0] for k in FORM_FIELDS}
