@@ -362,3 +362,17 @@ def test_repeated_positions_become_a_time_axis(tmp_path):
             for p in range(3):
                 np.testing.assert_array_equal(vol.data[t, p], ref + 100 * p + 1000 * t)
         assert vol.spacing[1] == pytest.approx(3.0)
+
+
+def test_jpeg_baseline_colour_decoded_to_luminance():
+    """SC_rgb_jpeg_dcmtk.dcm (bundled, JPEG baseline .50, YBR_FULL_422): decoded by
+    pydicom's handlers and converted to luma; Pillow's convert("L") of pydicom's RGB
+    output is the reference (within 1 grey level: Pillow rounds in fixed point)."""
+    ds = pydicom.dcmread(_f("SC_rgb_jpeg_dcmtk.dcm"))
+    ref = np.asarray(Image.fromarray(ds.pixel_array, "RGB").convert("L")).astype(int)
+    with open_input(_f("SC_rgb_jpeg_dcmtk.dcm")) as loaded:
+        vol = loaded.volumes[0]
+        assert vol.header.fields["transfer_syntax"] == "1.2.840.10008.1.2.4.50"
+        assert vol.dtype == np.uint8 and vol.shape == (100, 100)
+        assert np.abs(np.asarray(vol.data).astype(int) - ref).max() <= 1
+        assert any("luminance" in w for w in loaded.warnings)
