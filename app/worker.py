@@ -187,7 +187,8 @@ def _finish(settings: Settings, owner: str, act: _Active, result: dict[str, Any]
     db = database(settings)
     with db.scope() as s:
         if "ok" in result:
-            row = jobq.finish_job(s, act.job_id, owner, result["ok"])
+            row = jobq.finish_job(s, act.job_id, owner, result["ok"],
+                                  progress=summarise_progress(act.progress_file))
             if row is None:
                 return "lost"
             if act.previews_out.exists():

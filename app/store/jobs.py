@@ -87,12 +87,14 @@ def _held(session: Session, job_id: int, owner: str) -> Job | None:
     return job
 
 
-def finish_job(session: Session, job_id: int, owner: str, report: dict[str, Any]
-               ) -> Report | None:
+def finish_job(session: Session, job_id: int, owner: str, report: dict[str, Any], *,
+               progress: dict[str, Any] | None = None) -> Report | None:
     """Store the report and mark the job done; None (nothing stored) if the lease was lost."""
     job = _held(session, job_id, owner)
     if job is None:
         return None
+    if progress is not None:
+        job.progress = progress
     row = store_report(session, job, report)
     session.execute(update(Dataset).where(Dataset.id == job.dataset_id)
                     .values(updated_at=utcnow()).execution_options(synchronize_session=False))
