@@ -108,7 +108,13 @@ def _load_commands() -> None:
     """Import the modules that add further sub-commands (if they exist yet)."""
     import importlib
 
-    for mod in ("app.sampling_cli", "app.web.cli", "app.store.cli", "app.demo_cli", "app.backup_cli"):
+    for mod in (
+        "app.sampling_cli",
+        "app.web.cli",
+        "app.store.cli",
+        "app.demo_cli",
+        "app.backup_cli",
+    ):
         try:
             importlib.import_module(mod)
         except ModuleNotFoundError as exc:

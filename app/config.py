@@ -22,7 +22,9 @@ class Limits:
     max_array_bytes: int = field(
         default_factory=lambda: _env_int("RAWPROOF_MAX_ARRAY_BYTES", 8 * 1024**3)
     )
-    max_zip_members: int = field(default_factory=lambda: _env_int("RAWPROOF_MAX_ZIP_MEMBERS", 20000))
+    max_zip_members: int = field(
+        default_factory=lambda: _env_int("RAWPROOF_MAX_ZIP_MEMBERS", 20000)
+    )
     max_zip_total_bytes: int = field(
         default_factory=lambda: _env_int("RAWPROOF_MAX_ZIP_TOTAL_BYTES", 16 * 1024**3)
     )

@@ -26,8 +26,11 @@ def _analyse(path: str) -> dict:
     from app.traces.report import analyse_path
 
     rep = analyse_path(path, workers=2)
-    return {"verdict": rep["verdict"], "warnings": rep["warnings"],
-            "present": sorted(t for t, v in rep["traces"].items() if v["status"] == "present")}
+    return {
+        "verdict": rep["verdict"],
+        "warnings": rep["warnings"],
+        "present": sorted(t for t, v in rep["traces"].items() if v["status"] == "present"),
+    }
 
 
 def _read(path: str) -> None:

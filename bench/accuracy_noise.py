@@ -101,7 +101,27 @@ def k_complex_kspace(rng: np.random.Generator) -> Case:
     p = _params(rng)
     k = synth.to_kspace(_acq(p, 4)).astype(np.complex64)
     return Case("complex k-space", Volume.from_array(k, domain="kspace", coil_axis=1),
-                _truth(background_masking="inconclusive"))
+                _truth())
+
+
+def k_fake_kspace(rng: np.random.Generator) -> Case:
+    p = _params(rng)
+    L = int(rng.choice([1, 4, 8]))
+    mag = synth.rss(_acq(p, L), axis=1)
+    k = synth.to_kspace(mag.astype(np.complex64)).astype(np.complex64)
+    return Case(f"k-space made from rss L={L}", Volume.from_array(k, domain="kspace"),
+                _truth(magnitude_only="present",
+                       coil_combination="present" if L > 1 else "absent"), channels=L)
+
+
+def k_fake_kspace_masked(rng: np.random.Generator) -> Case:
+    p = _params(rng)
+    mag = synth.rss(_acq(p, 4), axis=1)
+    mag = np.where(_object_mask(mag), mag, 0)
+    k = synth.to_kspace(mag.astype(np.complex64)).astype(np.complex64)
+    return Case("k-space made from masked rss", Volume.from_array(k, domain="kspace"),
+                _truth(magnitude_only="present", coil_combination="inconclusive",
+                       background_masking="present"))
 
 
 def k_magnitude_single(rng: np.random.Generator) -> Case:
@@ -415,7 +435,7 @@ def k_masked_noisy_edge(rng: np.random.Generator) -> Case:
 KINDS: list[Callable[[np.random.Generator], Case]] = [
     k_low_snr, k_gibbs, k_unequal_noise, k_many_slices, k_zero_filled_single,
     k_ghost_single, k_uint16_rayleigh_small, k_clip_small, k_windowed_uint8,
-    k_masked_noisy_edge,
+    k_masked_noisy_edge, k_fake_kspace, k_fake_kspace_masked,
     k_complex_single, k_complex_multicoil, k_complex_kspace, k_magnitude_single,
     k_rss, k_rss, k_rss_uint16, k_rss_small_sigma, k_single_uint16, k_zero_filled,
     k_correlated, k_ghosting, k_real_signed, k_complex_zero_imag, k_masked,
@@ -465,8 +485,7 @@ def main(argv: list[str] | None = None) -> int:
                     wrong[tid][f"{case.kind}: {case.truth[tid]} -> {tr.status}"] += 1
                     if args.verbose:
                         print(f"  {tid} {case.kind}: {tr.summary}", file=sys.stderr)
-            if case.volume.value_type == "complex" and case.kind.startswith("complex") \
-                    and "zero imag" not in case.kind:
+            if case.kind.startswith("complex") and "zero imag" not in case.kind:
                 n_complex += 1
                 complex_as_magnitude += out["magnitude_only"].estimates["domain"] == "magnitude"
             cc = out["coil_combination"]

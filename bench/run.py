@@ -30,7 +30,11 @@ def _measure(kind: str, path: Path) -> dict:
     env = dict(os.environ, PYTHONPATH=str(ROOT))
     out = subprocess.run(
         [sys.executable, "-m", "bench._measure", kind, str(path)],
-        capture_output=True, text=True, check=True, env=env, cwd=ROOT,
+        capture_output=True,
+        text=True,
+        check=True,
+        env=env,
+        cwd=ROOT,
     )
     return json.loads(out.stdout.strip().splitlines()[-1])
 
@@ -55,16 +59,23 @@ def bench_analysis(work: Path, repeats: int, sizes: list[tuple[int, int, int]]) 
         for fmt, path in (("nifti", nii), ("dicom", dcm)):
             floor = _median_of("floor", path, repeats)
             full = _median_of("analyse", path, repeats)
-            rows.append({
-                "row": "analysis", "format": fmt, "shape": [s, r, c], "volume_bytes": nbytes,
-                "floor_s": round(floor["seconds"], 3), "analyse_s": round(full["seconds"], 3),
-                "ratio": round(full["seconds"] / floor["seconds"], 2),
-                "peak_rss_mb": round(full["peak_rss_bytes"] / 2**20, 1),
-                "memory_budget_mb": round((2 * nbytes + 300 * 2**20) / 2**20, 1),
-                "memory_ok": full["peak_rss_bytes"] < 2 * nbytes + 300 * 2**20,
-                "verdict": full.get("verdict"), "present": full.get("present"),
-                "warnings": full.get("warnings"),
-            })
+            rows.append(
+                {
+                    "row": "analysis",
+                    "format": fmt,
+                    "shape": [s, r, c],
+                    "volume_bytes": nbytes,
+                    "floor_s": round(floor["seconds"], 3),
+                    "analyse_s": round(full["seconds"], 3),
+                    "ratio": round(full["seconds"] / floor["seconds"], 2),
+                    "peak_rss_mb": round(full["peak_rss_bytes"] / 2**20, 1),
+                    "memory_budget_mb": round((2 * nbytes + 300 * 2**20) / 2**20, 1),
+                    "memory_ok": full["peak_rss_bytes"] < 2 * nbytes + 300 * 2**20,
+                    "verdict": full.get("verdict"),
+                    "present": full.get("present"),
+                    "warnings": full.get("warnings"),
+                }
+            )
             print(_fmt_row(rows[-1]), flush=True)
     return rows
 
@@ -73,16 +84,26 @@ def scaling(rows: list[dict]) -> list[dict]:
     """Fit log(time) and log(memory) against log(slices) for the 256 x 256 rows."""
     out = []
     for fmt in ("nifti", "dicom"):
-        pts = [(r["shape"][0], r["analyse_s"], r["peak_rss_mb"]) for r in rows
-               if r["format"] == fmt and r["shape"][1:] == [256, 256]]
+        pts = [
+            (r["shape"][0], r["analyse_s"], r["peak_rss_mb"])
+            for r in rows
+            if r["format"] == fmt and r["shape"][1:] == [256, 256]
+        ]
         if len(pts) < 2:
             continue
         n = np.log([p[0] for p in pts])
         t_exp = float(np.polyfit(n, np.log([p[1] for p in pts]), 1)[0])
         m_exp = float(np.polyfit(n, np.log([p[2] for p in pts]), 1)[0])
-        out.append({"row": "scaling", "format": fmt, "slices": [p[0] for p in pts],
-                    "time_exponent": round(t_exp, 3), "memory_exponent": round(m_exp, 3),
-                    "verdicts_agree": len({r["verdict"] for r in rows if r["format"] == fmt}) == 1})
+        out.append(
+            {
+                "row": "scaling",
+                "format": fmt,
+                "slices": [p[0] for p in pts],
+                "time_exponent": round(t_exp, 3),
+                "memory_exponent": round(m_exp, 3),
+                "verdicts_agree": len({r["verdict"] for r in rows if r["format"] == fmt}) == 1,
+            }
+        )
         print(_fmt_row(out[-1]), flush=True)
     return out
 
@@ -111,8 +132,12 @@ def bench_series_read(work: Path, repeats: int, n_files: int = 500) -> dict:
             t0 = time.perf_counter()
             fn()
             acc.append(time.perf_counter() - t0)
-    row = {"row": "series_read", "files": n_files, "pydicom_loop_s": round(statistics.median(t_plain), 3),
-           "rawproof_s": round(statistics.median(t_ours), 3)}
+    row = {
+        "row": "series_read",
+        "files": n_files,
+        "pydicom_loop_s": round(statistics.median(t_plain), 3),
+        "rawproof_s": round(statistics.median(t_ours), 3),
+    }
     row["ratio"] = round(row["rawproof_s"] / row["pydicom_loop_s"], 2)
     print(_fmt_row(row), flush=True)
     return row
@@ -127,27 +152,41 @@ def markdown_table(result: dict) -> str:
     lines = [f"cores: {result['cores']}; command: `{result['command']}`", ""]
     ana = [r for r in result["rows"] if r["row"] == "analysis"]
     if ana:
-        lines += ["| volume | format | floor s | analyse s | ratio (target <= 5) | peak RSS MB | budget MB | verdict |",
-                  "|---|---|---|---|---|---|---|---|"]
+        lines += [
+            "| volume | format | floor s | analyse s | ratio (target <= 5) | peak RSS MB "
+            "| budget MB | verdict |",
+            "|---|---|---|---|---|---|---|---|",
+        ]
         for r in ana:
-            lines.append(f"| {'x'.join(map(str, r['shape']))} | {r['format']} | {r['floor_s']} | "
-                         f"{r['analyse_s']} | {r['ratio']} | {r['peak_rss_mb']} | {r['memory_budget_mb']} | "
-                         f"{r['verdict']} |")
+            lines.append(
+                f"| {'x'.join(map(str, r['shape']))} | {r['format']} | {r['floor_s']} | "
+                f"{r['analyse_s']} | {r['ratio']} | {r['peak_rss_mb']} | {r['memory_budget_mb']} | "
+                f"{r['verdict']} |"
+            )
         lines.append("")
     for r in result["rows"]:
         if r["row"] == "scaling":
-            lines.append(f"- scaling ({r['format']}, slices {r['slices']}): time exponent "
-                         f"{r['time_exponent']}, memory exponent {r['memory_exponent']} (target 0.9-1.1 for time)")
+            lines.append(
+                f"- scaling ({r['format']}, slices {r['slices']}): time exponent "
+                f"{r['time_exponent']}, memory exponent {r['memory_exponent']} "
+                "(target 0.9-1.1 for time)"
+            )
         elif r["row"] == "series_read":
-            lines.append(f"- DICOM series read, {r['files']} files: rawproof {r['rawproof_s']} s vs "
-                         f"pydicom loop {r['pydicom_loop_s']} s, ratio {r['ratio']} (target <= 1.3)")
+            lines.append(
+                f"- DICOM series read, {r['files']} files: rawproof {r['rawproof_s']} s vs "
+                f"pydicom loop {r['pydicom_loop_s']} s, ratio {r['ratio']} (target <= 1.3)"
+            )
         elif r["row"] == "upload":
-            lines.append(f"- upload {r['megabytes']} MB: {r['upload_mb_s']} MB/s vs disk write "
-                         f"{r['disk_mb_s']} MB/s, ratio {r['ratio']} (target >= 0.5); server peak RSS "
-                         f"{r['server_peak_rss_mb']} MB (target < 200)")
+            lines.append(
+                f"- upload {r['megabytes']} MB: {r['upload_mb_s']} MB/s vs disk write "
+                f"{r['disk_mb_s']} MB/s, ratio {r['ratio']} (target >= 0.5); server peak RSS "
+                f"{r['server_peak_rss_mb']} MB (target < 200)"
+            )
         elif r["row"] == "pages":
-            lines.append(f"- {r['page']} ({r['datasets']} datasets, {r['clients']} clients, {r['requests']} "
-                         f"requests): median {r['median_ms']} ms, p95 {r['p95_ms']} ms (target p95 < 200)")
+            lines.append(
+                f"- {r['page']} ({r['datasets']} datasets, {r['clients']} clients, {r['requests']} "
+                f"requests): median {r['median_ms']} ms, p95 {r['p95_ms']} ms (target p95 < 200)"
+            )
     return "\n".join(lines)
 
 
@@ -160,8 +199,11 @@ def main(argv: list[str] | None = None) -> int:
     args = ap.parse_args(argv)
     parts = set(args.only.split(","))
     repeats = 1 if args.quick else args.repeats
-    result = {"cores": os.cpu_count(), "command": "python -m bench " + " ".join(argv or sys.argv[1:]),
-              "rows": []}
+    result = {
+        "cores": os.cpu_count(),
+        "command": "python -m bench " + " ".join(argv or sys.argv[1:]),
+        "rows": [],
+    }
     print(f"cores: {result['cores']}", flush=True)
     with tempfile.TemporaryDirectory(prefix="rawproof-bench-") as tmp:
         work = Path(tmp)
@@ -177,8 +219,9 @@ def main(argv: list[str] | None = None) -> int:
             if "upload" in parts:
                 result["rows"].append(web_bench.bench_upload(work, 64 if args.quick else 1024))
             if "pages" in parts:
-                result["rows"] += web_bench.bench_pages(work, 50 if args.quick else 1000,
-                                                        requests_per_client=10 if args.quick else 40)
+                result["rows"] += web_bench.bench_pages(
+                    work, 50 if args.quick else 1000, requests_per_client=10 if args.quick else 40
+                )
     out = Path(args.out)
     out.parent.mkdir(parents=True, exist_ok=True)
     out.write_text(json.dumps(result, indent=2))

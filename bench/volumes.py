@@ -42,7 +42,9 @@ def write_nifti(volume: np.ndarray, path: Path) -> Path:
     return path
 
 
-def write_dicom_series(volume: np.ndarray, folder: Path, *, series_uid: str | None = None) -> list[Path]:
+def write_dicom_series(
+    volume: np.ndarray, folder: Path, *, series_uid: str | None = None
+) -> list[Path]:
     """Write one uncompressed MR Image Storage file per slice."""
     from pydicom.dataset import Dataset, FileMetaDataset
     from pydicom.uid import ExplicitVRLittleEndian, MRImageStorage, generate_uid

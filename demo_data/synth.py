@@ -14,8 +14,13 @@ def _rng(seed: int | np.random.Generator | None) -> np.random.Generator:
     return seed if isinstance(seed, np.random.Generator) else np.random.default_rng(seed)
 
 
-def phantom(shape: tuple[int, int] = (128, 128), *, seed: int | np.random.Generator | None = 0,
-            n_blobs: int = 8, smooth_phase: bool = True) -> np.ndarray:
+def phantom(
+    shape: tuple[int, int] = (128, 128),
+    *,
+    seed: int | np.random.Generator | None = 0,
+    n_blobs: int = 8,
+    smooth_phase: bool = True,
+) -> np.ndarray:
     """A head-like complex object: nested ellipses, random inner blobs, smooth phase.
 
     The object fills about 60-75 % of the field of view, leaving air around it
@@ -23,7 +28,7 @@ def phantom(shape: tuple[int, int] = (128, 128), *, seed: int | np.random.Genera
     """
     rng = _rng(seed)
     ny, nx = shape
-    y, x = np.mgrid[-1:1:complex(0, ny), -1:1:complex(0, nx)]
+    y, x = np.mgrid[-1 : 1 : complex(0, ny), -1 : 1 : complex(0, nx)]
     img = np.zeros(shape, dtype=np.float64)
     a, b = 0.72 + 0.05 * rng.random(), 0.58 + 0.05 * rng.random()
     img[(x / b) ** 2 + (y / a) ** 2 <= 1] = 0.9
@@ -41,8 +46,10 @@ def phantom(shape: tuple[int, int] = (128, 128), *, seed: int | np.random.Genera
     img = img * (1 + 0.08 * tex / (np.abs(tex).max() + 1e-12))
     img /= img.max()
     if smooth_phase:
-        ph = (rng.uniform(-1, 1) * x + rng.uniform(-1, 1) * y) * np.pi * 0.8 + rng.uniform(0, 2 * np.pi)
-        ph += 0.6 * np.pi * (x ** 2 - y ** 2) * rng.uniform(-1, 1)
+        ph = (rng.uniform(-1, 1) * x + rng.uniform(-1, 1) * y) * np.pi * 0.8 + rng.uniform(
+            0, 2 * np.pi
+        )
+        ph += 0.6 * np.pi * (x**2 - y**2) * rng.uniform(-1, 1)
         return (img * np.exp(1j * ph)).astype(np.complex64)
     return img.astype(np.complex64)
 
@@ -50,11 +57,12 @@ def phantom(shape: tuple[int, int] = (128, 128), *, seed: int | np.random.Genera
 def _lowpass(shape: tuple[int, int], frac: float) -> np.ndarray:
     ky = sfft.fftfreq(shape[0])[:, None]
     kx = sfft.fftfreq(shape[1])[None, :]
-    return np.exp(-(kx ** 2 + ky ** 2) / (2 * (frac / 4) ** 2))
+    return np.exp(-(kx**2 + ky**2) / (2 * (frac / 4) ** 2))
 
 
-def coil_maps(shape: tuple[int, int], n_coils: int, *, seed: int | np.random.Generator | None = 0
-              ) -> np.ndarray:
+def coil_maps(
+    shape: tuple[int, int], n_coils: int, *, seed: int | np.random.Generator | None = 0
+) -> np.ndarray:
     """Smooth complex receive sensitivities of coils placed around the object.
 
     Returns ``(n_coils, rows, cols)`` complex64, normalised so that the
@@ -62,7 +70,7 @@ def coil_maps(shape: tuple[int, int], n_coils: int, *, seed: int | np.random.Gen
     """
     rng = _rng(seed)
     ny, nx = shape
-    y, x = np.mgrid[-1:1:complex(0, ny), -1:1:complex(0, nx)]
+    y, x = np.mgrid[-1 : 1 : complex(0, ny), -1 : 1 : complex(0, nx)]
     maps = []
     for c in range(n_coils):
         ang = 2 * np.pi * c / n_coils + rng.uniform(-0.2, 0.2)
@@ -78,14 +86,16 @@ def coil_maps(shape: tuple[int, int], n_coils: int, *, seed: int | np.random.Gen
 
 def to_kspace(image: np.ndarray) -> np.ndarray:
     """Centred orthonormal 2D FFT over the last two axes."""
-    return sfft.fftshift(sfft.fft2(sfft.ifftshift(image, axes=(-2, -1)), norm="ortho"),
-                         axes=(-2, -1))
+    return sfft.fftshift(
+        sfft.fft2(sfft.ifftshift(image, axes=(-2, -1)), norm="ortho"), axes=(-2, -1)
+    )
 
 
 def to_image(kspace: np.ndarray) -> np.ndarray:
     """Centred orthonormal inverse 2D FFT over the last two axes."""
-    return sfft.fftshift(sfft.ifft2(sfft.ifftshift(kspace, axes=(-2, -1)), norm="ortho"),
-                         axes=(-2, -1))
+    return sfft.fftshift(
+        sfft.ifft2(sfft.ifftshift(kspace, axes=(-2, -1)), norm="ortho"), axes=(-2, -1)
+    )
 
 
 def zero_fill(kspace: np.ndarray, out_shape: tuple[int, int]) -> np.ndarray:
@@ -95,12 +105,16 @@ def zero_fill(kspace: np.ndarray, out_shape: tuple[int, int]) -> np.ndarray:
     out = np.zeros(kspace.shape[:-2] + (oy, ox), dtype=kspace.dtype)
     y0 = oy // 2 - ny // 2
     x0 = ox // 2 - nx // 2
-    out[..., y0:y0 + ny, x0:x0 + nx] = kspace
+    out[..., y0 : y0 + ny, x0 : x0 + nx] = kspace
     return out
 
 
-def complex_noise(shape: tuple[int, ...], sigma: float, rng: np.random.Generator,
-                  correlation: np.ndarray | None = None) -> np.ndarray:
+def complex_noise(
+    shape: tuple[int, ...],
+    sigma: float,
+    rng: np.random.Generator,
+    correlation: np.ndarray | None = None,
+) -> np.ndarray:
     """Complex white Gaussian noise with per-component standard deviation ``sigma``.
 
     ``correlation`` (coils x coils, Hermitian positive definite) correlates the
@@ -134,8 +148,9 @@ def acquire(
     out = np.empty((n_slices, n_coils) + tuple(shape), dtype=np.complex64)
     for s in range(n_slices):
         obj = phantom(shape, seed=rng)
-        out[s] = maps * obj[None] + complex_noise((n_coils,) + tuple(shape), sigma, rng,
-                                                   correlation)
+        out[s] = maps * obj[None] + complex_noise(
+            (n_coils,) + tuple(shape), sigma, rng, correlation
+        )
     return out
 
 
@@ -159,7 +174,10 @@ def zero_filled_magnitude(
     matrix. The truth: support fraction per axis = acquired / output size.
     """
     imgs = acquire(acquired_shape, n_coils=n_coils, n_slices=n_slices, sigma=sigma, seed=seed)
-    out_shape = (int(round(acquired_shape[0] * padding[0])), int(round(acquired_shape[1] * padding[1])))
+    out_shape = (
+        int(round(acquired_shape[0] * padding[0])),
+        int(round(acquired_shape[1] * padding[1])),
+    )
     k = to_kspace(imgs)
     zf = to_image(zero_fill(k, out_shape))
     return rss(zf, axis=1), out_shape

@@ -52,8 +52,13 @@ def test_one_registered_function_plugs_in(monkeypatch):
     def _constant(volume, ctx):
         arr = volume.to_array()
         flat = bool(np.ptp(arr) == 0)
-        return base.Trace("test_constant_image", "present" if flat else "absent", 1.0,
-                          "constant" if flat else "varies", {"value": float(arr.flat[0])})
+        return base.Trace(
+            "test_constant_image",
+            "present" if flat else "absent",
+            1.0,
+            "constant" if flat else "varies",
+            {"value": float(arr.flat[0])},
+        )
 
     rep = analyse_volume(Volume.from_array(np.full((2, 8, 8), 3.0)))
     assert rep["traces"]["test_constant_image"]["status"] == "present"
@@ -99,18 +104,46 @@ def test_shared_step_runs_once_per_volume(monkeypatch):
         return ctx.cached("test_shared", lambda: calls.append(1) or 42)
 
     for name in ("test_a", "test_b"):
+
         def fn(volume, ctx, name=name):
             return base.Trace(name, "absent", 1.0, f"shared {shared(ctx)}", {})
+
         base.register(name)(fn)
     analyse_volume(Volume.from_array(np.ones((8, 8))))
     assert calls == [1]
 
 
 def test_group_merge_keeps_most_severe_and_verdict_rule():
-    g1 = {"group": "a", "input": {"shape": [2, 8, 8]}, "warnings": [], "header": {"declared": {}, "notes": []},
-          "traces": {"x": {"status": "absent", "confidence": 0.9, "summary": "s", "estimates": {}, "evidence": {}}}}
-    g2 = {"group": "b", "input": {"shape": [4, 8, 8]}, "warnings": ["w"], "header": {"declared": {}, "notes": []},
-          "traces": {"x": {"status": "present", "confidence": 0.5, "summary": "p", "estimates": {}, "evidence": {}}}}
+    g1 = {
+        "group": "a",
+        "input": {"shape": [2, 8, 8]},
+        "warnings": [],
+        "header": {"declared": {}, "notes": []},
+        "traces": {
+            "x": {
+                "status": "absent",
+                "confidence": 0.9,
+                "summary": "s",
+                "estimates": {},
+                "evidence": {},
+            }
+        },
+    }
+    g2 = {
+        "group": "b",
+        "input": {"shape": [4, 8, 8]},
+        "warnings": ["w"],
+        "header": {"declared": {}, "notes": []},
+        "traces": {
+            "x": {
+                "status": "present",
+                "confidence": 0.5,
+                "summary": "p",
+                "estimates": {},
+                "evidence": {},
+            }
+        },
+    }
     rep = combine_groups([g1, g2], path="p", fmt="folder", n_files=2)
     assert rep["traces"]["x"]["status"] == "present"
     assert rep["traces"]["x"]["evidence"]["group"] == "b"
@@ -137,7 +170,9 @@ def test_unreadable_input_exit_code_2_and_error_object(tmp_path):
     """Contract: exit code 2, the error object on stdout, one human line on stderr."""
     proc = subprocess.run(
         [sys.executable, "-m", "app.cli", "analyse", str(tmp_path / "missing.dcm"), "--json"],
-        capture_output=True, text=True, check=False,
+        capture_output=True,
+        text=True,
+        check=False,
     )
     assert proc.returncode == 2
     obj = json.loads(proc.stdout)

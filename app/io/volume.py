@@ -227,13 +227,13 @@ class Volume:
             dtype = np.complex64 if self.value_type == "complex" else np.float32
         frame_shape = tuple(s for s, n in zip(lead, self.axes[:-2], strict=True) if n != "coils")
         for start in range(0, len(indices), batch):
-            idx = indices[start:start + batch]
+            idx = indices[start : start + batch]
             contiguous = len(idx) > 0 and bool(np.all(np.diff(idx) == 1))
             if len(frame_shape) == 0:
                 block = np.asarray(a)[None]
                 idx = idx[:1]
             elif len(frame_shape) == 1 and contiguous:
-                block = np.asarray(a[int(idx[0]):int(idx[-1]) + 1])
+                block = np.asarray(a[int(idx[0]) : int(idx[-1]) + 1])
             else:
                 block = None
             if block is not None:

@@ -200,9 +200,13 @@ def combine_groups(
         gname = g.get("group", "")
         for tid, t in g["traces"].items():
             best = traces.get(tid)
-            if best is None or _SEVERITY[t["status"]] > _SEVERITY[best["status"]] or (
-                _SEVERITY[t["status"]] == _SEVERITY[best["status"]]
-                and t["confidence"] > best["confidence"]
+            if (
+                best is None
+                or _SEVERITY[t["status"]] > _SEVERITY[best["status"]]
+                or (
+                    _SEVERITY[t["status"]] == _SEVERITY[best["status"]]
+                    and t["confidence"] > best["confidence"]
+                )
             ):
                 merged = dict(t)
                 merged["summary"] = f"[{gname}] {t['summary']}" if gname else t["summary"]
@@ -211,7 +215,9 @@ def combine_groups(
     first = max(group_reports, key=lambda g: int(np.prod(g["input"]["shape"])))
     warnings = [f"[{g.get('group', '')}] {w}" for g in group_reports for w in g["warnings"]]
     notes = [f"[{g.get('group', '')}] {n}" for g in group_reports for n in g["header"]["notes"]]
-    declared = {g.get("group", str(i)): g["header"]["declared"] for i, g in enumerate(group_reports)}
+    declared = {
+        g.get("group", str(i)): g["header"]["declared"] for i, g in enumerate(group_reports)
+    }
     return {
         "schema": SCHEMA,
         "tool_version": app.__version__,
@@ -274,8 +280,6 @@ def analyse_path(
                 from app.traces.previews import make_previews
 
                 previews[rep["group"]] = make_previews(vol)
-        report = combine_groups(
-            group_reports, path=path, fmt=loaded.format, n_files=loaded.n_files
-        )
+        report = combine_groups(group_reports, path=path, fmt=loaded.format, n_files=loaded.n_files)
         report["warnings"] = list(loaded.warnings) + report["warnings"]
     return report
