@@ -104,11 +104,24 @@ def test_integer_noise_of_small_sigma_is_absent() -> None:
     assert t.estimates["zero_background_fraction"] == pytest.approx(0.558, abs=0.04)
 
 
-def test_kspace_is_inconclusive() -> None:
-    """k-space data have no image background: inconclusive with a reason."""
-    k = synth.to_kspace(synth.acquire((64, 64), n_coils=2, sigma=0.01, seed=6))
-    t = _run(k, domain="kspace", coil_axis=1)
-    assert t.status == "inconclusive" and "k-space" in t.summary
+def test_kspace_is_judged_by_its_images() -> None:
+    """Raw multi-coil k-space: its images hold noise, absent. K-space made from a masked
+    magnitude image (the FFT of zeros outside the head): present.
+
+    Truth: the masked image had every pixel outside a dilated object mask set to 0.
+    """
+    raw = synth.acquire((96, 96), n_coils=2, sigma=0.01, seed=6)
+    t = _run(synth.to_kspace(raw), domain="kspace", coil_axis=1)
+    assert t.status == "absent"
+    mag = _rss(7)
+    for f in mag:
+        obj = ndimage.binary_fill_holes(ndimage.gaussian_filter(f, 2) > 0.15)
+        f[~ndimage.binary_dilation(obj, iterations=2)] = 0
+    fake = synth.to_kspace(mag.astype(np.complex64))
+    t = _run(fake, domain="kspace")
+    assert t.status == "present"
+    assert t.estimates["zero_background_fraction"] >= 0.95
+    assert t.evidence["constant_value"] == pytest.approx(0.0, abs=1e-4)
 
 
 def test_nibabel_example4d_is_masked() -> None:

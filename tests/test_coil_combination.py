@@ -228,10 +228,11 @@ def test_noise_free_complex_names_no_law() -> None:
 
 
 def test_complex_kspace_is_gaussian() -> None:
-    """Multi-coil complex k-space: Gaussian by construction, absent."""
+    """Multi-coil complex k-space: Gaussian in the images of it, sigma 0.01 within 5%, absent."""
     k = synth.to_kspace(synth.acquire((64, 64), n_coils=4, sigma=0.01, seed=14))
     t = _run(k, domain="kspace", coil_axis=1)
     assert t.status == "absent" and t.estimates["noise_model"] == "gaussian"
+    assert t.estimates["sigma"] == pytest.approx(0.01, rel=0.05)
 
 
 def test_uncombined_magnitude_channels_are_rayleigh() -> None:
@@ -244,3 +245,15 @@ def test_uncombined_magnitude_channels_are_rayleigh() -> None:
     assert t.status == "absent" and t.estimates["noise_model"] == "rayleigh"
     assert t.estimates["sigma"] == pytest.approx(0.01, rel=0.1)
     assert "6 separate magnitude channels" in t.summary
+
+
+def test_kspace_made_from_rss_images_shows_the_chi_law() -> None:
+    """The FFT of an 8-channel root-sum-of-squares image posing as k-space: chi law, L within 1.6.
+
+    Truth: L = 8, sigma 0.01 (the orthonormal FFT keeps sigma; Constantinides 1997).
+    """
+    mag = synth.rss(synth.acquire((128, 128), n_coils=8, n_slices=2, sigma=0.01, seed=16), axis=1)
+    t = _run(synth.to_kspace(mag.astype(np.complex64)), domain="kspace")
+    assert t.status == "present" and t.estimates["noise_model"] == "noncentral_chi"
+    assert abs(t.estimates["effective_channels"] - 8) <= 1.6
+    assert t.estimates["sigma"] == pytest.approx(0.01, rel=0.1)

@@ -129,3 +129,36 @@ def test_nibabel_normalised_anatomical_is_magnitude() -> None:
     t = mo.analyse(vol, AnalysisContext(vol))
     assert t.estimates["domain"] == "magnitude" and t.status == "present"
     assert t.evidence["negative_fraction"] < 0.01
+
+
+def test_measured_kspace_is_complex() -> None:
+    """Multi-coil k-space of a complex acquisition: its images are complex, absent."""
+    k = synth.to_kspace(synth.acquire((96, 96), n_coils=4, sigma=0.01, seed=8))
+    t = _run(k, domain="kspace", coil_axis=1)
+    assert t.estimates["domain"] == "complex" and t.status == "absent"
+
+
+@pytest.mark.parametrize("centred", [True, False])
+def test_kspace_made_from_magnitude_images_is_caught(centred: bool) -> None:
+    """The FFT of a root-sum-of-squares magnitude image posing as k-space: magnitude, present.
+
+    Truth: the images behind the k-space are real and non-negative, so the
+    imaginary energy of the inverse FFT is round-off only (below 1e-8 of the
+    total); checked for centred k-space and with DC at index 0.
+    """
+    import scipy.fft as sfft
+
+    mag = synth.rss(synth.acquire((96, 96), n_coils=8, sigma=0.01, seed=9), axis=1)
+    k = synth.to_kspace(mag.astype(np.complex64))
+    if not centred:
+        k = sfft.ifftshift(k, axes=(-2, -1))
+    t = _run(k, domain="kspace")
+    assert t.estimates["domain"] == "magnitude" and t.status == "present"
+    assert t.evidence["imag_energy_fraction"] < 1e-8
+    assert "synthesised" in t.summary
+
+
+def test_all_nan_is_inconclusive() -> None:
+    """No finite value: inconclusive, not magnitude (common practice, no source)."""
+    t = _run(np.full((2, 32, 32), np.nan, np.float32))
+    assert t.status == "inconclusive" and t.estimates["domain"] is None

@@ -5,10 +5,13 @@ the constant-background test (masking), the sign test (magnitude only). It is
 found here once, on a bounded, evenly spaced subset of frames, and shared
 through ``ctx.cached("background", ...)``.
 
-Method, per frame: the magnitude image (root-sum-of-squares over channels) is
-smoothed with a box filter; a threshold is chosen from the histogram of the
-smoothed image (Otsu's between-class variance); the low region is opened
-(morphology), only its connected parts that touch the image border are kept
+K-space volumes are first brought to the image domain (centred orthonormal
+inverse FFT of the analysed frames), so a fake k-space made from processed
+images shows the processing. Method, per frame: the magnitude image
+(root-sum-of-squares over channels) is smoothed with a box filter; a
+threshold is chosen from the histogram of the smoothed image (Otsu's
+between-class variance, lowered to a few times the air level); the low region
+is opened (morphology), only its connected parts that touch the image border are kept
 (air surrounds the object; dark tissue inside it does not touch the border),
 and the result is eroded away from the object's edge. Blocks of the background
 whose mean power stands far above the rest (ghosting bands, ringing, stray
@@ -31,11 +34,13 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+import scipy.fft as sfft
 from scipy import ndimage
 
 from app.io.volume import Volume
 
 MAX_FRAMES = 16
+FFT_TOLERANCE = 1e-5
 MAX_PIXELS = 2_000_000
 _WORK_SIDE = 192
 MAX_SAMPLES_PER_FRAME = 32768
@@ -70,7 +75,7 @@ class Background:
         Pixels in the analysed frames.
     method : {"threshold", "corners", "none"}
     reason : str or None
-        Why the background is unusable (too few samples, k-space data), else None.
+        Why the background is unusable (too few samples), else None.
     object_level : float
         Median magnitude of the pixels above the threshold (the object).
     signal_peak : float
@@ -79,6 +84,9 @@ class Background:
         Fraction of non-finite pixels (outside a resampled field of view).
     excluded_blocks : int
         Background blocks dropped as ghosting or stray signal.
+    tolerance : float
+        Values closer than this count as equal (round-off of the inverse FFT of
+        k-space; 0 for stored image values).
     """
 
     frames: np.ndarray
@@ -95,6 +103,7 @@ class Background:
     nan_fraction: float
     excluded_blocks: int = 0
     notes: list[str] = field(default_factory=list)
+    tolerance: float = 0.0
 
     @property
     def usable(self) -> bool:
@@ -322,6 +331,48 @@ def analysed_frames(n_frames: int, base: np.ndarray | None = None,
     return idx[pick]
 
 
+def kspace_is_centred(block: np.ndarray) -> bool:
+    """Whether k-space has its largest power near the centre (DC at ``n // 2``).
+
+    Common practice, no source: raw files store k-space either centred or with
+    DC at index 0.
+    """
+    p = np.abs(np.asarray(block).reshape(-1, *block.shape[-2:])) ** 2
+    mean = p.mean(axis=0)
+    rows, cols = mean.shape
+    r, c = np.unravel_index(int(np.argmax(mean)), mean.shape)
+    to_centre = abs(r - rows // 2) + abs(c - cols // 2)
+    to_corner = min(r, rows - r) + min(c, cols - c)
+    return bool(to_centre <= to_corner)
+
+
+def image_blocks(volume: Volume, indices: np.ndarray, *, batch: int = 8,
+                 workers: int = 2) -> Any:
+    """Yield ``(frame_indices, block)`` in the image domain.
+
+    Image volumes are passed through; k-space volumes are transformed by a
+    centred orthonormal inverse 2D FFT (noise sigma is kept), with DC taken at
+    the centre or at index 0, whichever holds the peak power.
+
+    References
+    ----------
+    J. W. Cooley and J. W. Tukey, Math. Comp. 19:297-301, 1965 (the FFT).
+    """
+    centred = None
+    for idx, block in volume.iter_slices(batch, indices=indices):
+        if volume.domain != "kspace":
+            yield idx, block
+            continue
+        k = np.nan_to_num(np.asarray(block).astype(np.complex64, copy=False))
+        if centred is None:
+            centred = kspace_is_centred(k)
+        if centred:
+            k = sfft.ifftshift(k, axes=(-2, -1))
+        img = sfft.fftshift(sfft.ifft2(k, axes=(-2, -1), norm="ortho", workers=workers),
+                            axes=(-2, -1))
+        yield idx, img.astype(np.complex64, copy=False)
+
+
 def _magnitude(block: np.ndarray, multi: bool) -> np.ndarray:
     if multi:
         return np.sqrt((np.abs(block.astype(np.complex128 if np.iscomplexobj(block)
@@ -358,17 +409,15 @@ def find_background(volume: Volume, *, frames: Any = None,
         notes.append(f"background found on {idx.size} of {volume.n_slices} frames, "
                      "evenly spaced")
     if volume.domain == "kspace":
-        return Background(idx, np.zeros((0, rows, cols), bool), np.zeros(0), None, None, 0,
-                          0, "none", "the data are k-space samples, not images: there is "
-                          "no image background", 0.0, 0.0, 0.0, 0, notes)
+        notes.append("noise and background measured on the inverse FFT of the k-space")
     multi = volume.coil_axis is not None
     masks, mags, vals, stored_parts = [], [], [], []
     obj_levels, peaks = [], []
     n_bg = n_px = n_nan = excluded = 0
     methods = set()
-    single_real = not multi
-    stored_iter = volume.iter_slices(8, scaled=False, indices=idx) if single_real else None
-    for _, block in volume.iter_slices(8, indices=idx):
+    single = not multi and volume.domain == "image"
+    stored_iter = volume.iter_slices(8, scaled=False, indices=idx) if single else None
+    for _, block in image_blocks(volume, idx):
         mag = _magnitude(block, multi)
         sblock = next(stored_iter)[1] if stored_iter is not None else None
         for j in range(mag.shape[0]):
@@ -395,7 +444,8 @@ def find_background(volume: Volume, *, frames: Any = None,
                 vals.append(block[j].reshape(block.shape[1], -1)[:, pos])
             else:
                 vals.append(block[j].ravel()[pos])
-                stored_parts.append(sblock[j].ravel()[pos])
+                if sblock is not None:
+                    stored_parts.append(sblock[j].ravel()[pos])
     magnitude = np.concatenate(mags) if mags else np.zeros(0)
     values = (np.concatenate(vals, axis=-1) if vals else None)
     stored = np.concatenate(stored_parts) if stored_parts else None
@@ -420,6 +470,7 @@ def find_background(volume: Volume, *, frames: Any = None,
         nan_fraction=n_nan / n_px if n_px else 0.0,
         excluded_blocks=int(excluded),
         notes=notes,
+        tolerance=FFT_TOLERANCE * max(peaks) if volume.domain == "kspace" and peaks else 0.0,
     )
 
 
@@ -505,7 +556,8 @@ def constant_share(bg: Background) -> ConstantShare:
     a sigma of a step or two does repeat values, but then the next lattice
     values either side are nearly as common, whereas a masked background stands
     alone (its neighbours are empty). The background counts as masked when at
-    least :data:`MASKED_SHARE` of it holds one value and, for data on a
+    least :data:`MASKED_SHARE` of it holds one value (values within the
+    background's round-off tolerance counting as one) and, for data on a
     lattice (integers, or floats on few levels), either it holds at least 90%
     or it is the lowest value and its two lattice neighbours together hold less
     than half as much (quantised noise of a sigma near one step has its mode
@@ -515,6 +567,8 @@ def constant_share(bg: Background) -> ConstantShare:
     use_stored = bg.stored is not None and not np.iscomplexobj(bg.stored)
     v = np.asarray(bg.stored if use_stored else bg.magnitude).ravel()
     v = v[np.isfinite(v)] if v.dtype.kind == "f" else v
+    if bg.tolerance > 0 and not use_stored:
+        v = np.round(v / bg.tolerance) * bg.tolerance
     if v.size == 0:
         return ConstantShare(None, 0.0, 0.0, False)
     vals, counts = np.unique(v, return_counts=True)

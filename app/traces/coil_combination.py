@@ -164,9 +164,9 @@ def _gaussian_trace(volume: Volume, bg: Background, kind: str) -> Trace:
 
     Such values cannot come out of a root-sum-of-squares (which is real and
     non-negative), so the trace is absent whatever the air shows. The Gaussian
-    law is fitted to the background components where there is a measurable
-    background; k-space noise is Gaussian by construction; a masked, noise-free
-    or missing background leaves the law ``unknown`` with the reason said.
+    law is fitted to the background components (of the inverse FFT, for
+    k-space) where there is a measurable background; a masked, noise-free or
+    missing background leaves the law ``unknown`` with the reason said.
     """
     what = ("complex values" if kind == "complex" else "real values of both signs")
     coils = f" from {volume.n_coils} separate receive channels" if volume.n_coils > 1 else ""
@@ -181,9 +181,7 @@ def _gaussian_trace(volume: Volume, bg: Background, kind: str) -> Trace:
         comps = comps[np.isfinite(comps)].astype(np.float64)
     rms = float(np.sqrt(np.mean(comps**2))) if comps.size else 0.0
     why = None
-    if volume.domain == "kspace":
-        sig = "; k-space noise is Gaussian by construction (not measured here)"
-    elif not bg.usable:
+    if not bg.usable:
         why = bg.reason
     elif constant_share(bg).masked:
         why = "the background holds one constant value (masked or noise-free)"
@@ -194,22 +192,22 @@ def _gaussian_trace(volume: Volume, bg: Background, kind: str) -> Trace:
         summary = (f"The data hold {what}{coils}, which no root-sum-of-squares combination "
                    f"produces; the noise law was not measured: {why}.")
         return Trace(TRACE_ID, "absent", 0.8, summary, estimates, evidence)
-    if volume.domain != "kspace":
-        tested = _subsample(comps, KS_SAMPLES)
-        fit = nl.fit_gaussian(tested, zero_mean=kind == "complex")
-        lim = float(np.percentile(np.abs(comps), 99.5)) or 1.0
-        dens_x = np.linspace(-lim, lim, 96)
-        estimates["sigma"] = _r4(fit.sigma)
-        evidence.update({
-            "histogram": _histogram(comps, lim, -lim),
-            "density_x": _r4(dens_x),
-            "densities": {"gaussian": _r4(fit.frozen().pdf(dens_x)), "rayleigh": None,
-                          "noncentral_chi": None},
-            "sigma": _r4(fit.sigma),
-            "statistics": {"gaussian": {"statistic": _r4(fit.statistic),
-                                        "p_value": _r4(fit.p_value)}},
-        })
-        sig = f"; background sigma {fit.sigma:.4g} (KS distance {fit.statistic:.3f})"
+    tested = _subsample(comps, KS_SAMPLES)
+    fit = nl.fit_gaussian(tested, zero_mean=kind == "complex")
+    lim = float(np.percentile(np.abs(comps), 99.5)) or 1.0
+    dens_x = np.linspace(-lim, lim, 96)
+    estimates["sigma"] = _r4(fit.sigma)
+    evidence.update({
+        "histogram": _histogram(comps, lim, -lim),
+        "density_x": _r4(dens_x),
+        "densities": {"gaussian": _r4(fit.frozen().pdf(dens_x)), "rayleigh": None,
+                      "noncentral_chi": None},
+        "sigma": _r4(fit.sigma),
+        "statistics": {"gaussian": {"statistic": _r4(fit.statistic),
+                                    "p_value": _r4(fit.p_value)}},
+    })
+    where = " of the inverse FFT" if volume.domain == "kspace" else ""
+    sig = f"; background{where} sigma {fit.sigma:.4g} (KS distance {fit.statistic:.3f})"
     summary = (f"The data hold {what}{coils}: their noise is Gaussian, and no root-sum-of-"
                f"squares combination took place{sig}.")
     return Trace(TRACE_ID, "absent", 0.9, summary, estimates, evidence)

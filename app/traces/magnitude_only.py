@@ -11,7 +11,10 @@ Status: ``present`` for ``magnitude``; ``absent`` for ``complex``; ``absent`` fo
 removed by a phase correction that keeps the sign), with the summary saying
 that the data are nevertheless real-valued, not complex.
 
-A complex array whose imaginary part is zero is judged by its real part. Sparse
+A complex array whose imaginary part is zero is judged by its real part.
+K-space is judged by its images (centred inverse FFT): k-space synthesised
+from magnitude images (the FFT of a real, non-negative image) is
+``magnitude``, present; measured k-space gives complex images. Sparse
 negative values (interpolation overshoot at edges of a resampled magnitude
 image) do not make an image ``real_signed``: it takes a substantial share of
 negative values, most of all in the air.
@@ -34,11 +37,13 @@ from typing import Any
 import numpy as np
 
 from app.io.volume import Volume
-from app.traces.background import Background, background_of
-from app.traces.base import Trace, register
+from app.traces.background import Background, background_of, image_blocks
+from app.traces.base import Trace, inconclusive, register
 
 TRACE_ID = "magnitude_only"
 IMAG_ZERO = 1e-10
+IMAG_ZERO_FFT = 1e-8
+NEG_TOL_FFT = 1e-5
 NEG_BACKGROUND_SHARE = 0.2
 NEG_OVERALL_SHARE = 0.05
 
@@ -104,32 +109,42 @@ def classify_values(volume: Volume, bg: Background) -> ValueKind:
     Rayleigh-distributed air).
     """
     frames = bg.frames
-    is_complex = volume.value_type == "complex"
+    kspace = volume.domain == "kspace"
+    is_complex = kspace or volume.value_type == "complex"
+    imag_zero = IMAG_ZERO_FFT if kspace else IMAG_ZERO
     imag_e = total_e = 0.0
     n_neg = n_fin = 0
+    peak = 0.0
     obj_samples = []
-    for j0, (_, block) in enumerate(_blocks(volume, frames)):
+    reals = []
+    for _, block in image_blocks(volume, frames):
         block = np.asarray(block)
         fin = np.isfinite(block)
         if is_complex:
             imag_e += float(np.sum(np.where(fin, block.imag, 0.0).astype(np.float64) ** 2))
             total_e += float(np.sum(np.abs(np.where(fin, block, 0.0)).astype(np.float64) ** 2))
-        re = block.real
-        n_neg += int(np.sum((re < 0) & fin))
+            obj_samples.append(_object_phasors(block))
+        re = np.where(fin, block.real, 0.0)
+        if fin.any():
+            peak = max(peak, float(np.max(np.abs(re))))
+        reals.append((re, fin))
         n_fin += int(fin.sum())
-        if is_complex:
-            obj_samples.append(_object_phasors(block, bg, j0))
+    if n_fin == 0:
+        return ValueKind("unknown", 0.0, None, None, None)
+    # values from an inverse FFT carry round-off: negatives count beyond 1e-5 of the peak
+    tol = NEG_TOL_FFT * peak if kspace else 0.0
+    n_neg = sum(int(np.sum((re < -tol) & fin)) for re, fin in reals)
     imag_fraction = imag_e / total_e if is_complex and total_e > 0 else (0.0 if is_complex
                                                                         else None)
-    neg_fraction = n_neg / n_fin if n_fin else 0.0
+    neg_fraction = n_neg / n_fin
     neg_bg = None
     if bg.values is not None and bg.values.size and bg.usable:
         v = bg.values.real if np.iscomplexobj(bg.values) else bg.values
         v = np.asarray(v).ravel()
         v = v[np.isfinite(v)]
-        neg_bg = float(np.mean(v < 0)) if v.size else None
+        neg_bg = float(np.mean(v < -tol)) if v.size else None
     spread = None
-    if is_complex and imag_fraction is not None and imag_fraction > IMAG_ZERO:
+    if is_complex and imag_fraction is not None and imag_fraction > imag_zero:
         z = np.concatenate(obj_samples) if obj_samples else np.zeros(0, complex)
         spread = circular_spread(z)
         return ValueKind("complex", neg_fraction, neg_bg, spread, imag_fraction)
@@ -139,11 +154,7 @@ def classify_values(volume: Volume, bg: Background) -> ValueKind:
     return ValueKind(domain, neg_fraction, neg_bg, spread, imag_fraction)
 
 
-def _blocks(volume: Volume, frames: np.ndarray) -> Any:
-    return volume.iter_slices(8, indices=frames)
-
-
-def _object_phasors(block: np.ndarray, bg: Background, start: int) -> np.ndarray:
+def _object_phasors(block: np.ndarray) -> np.ndarray:
     """Complex samples above the median magnitude of each frame (the object), bounded."""
     out = []
     for b in block:
@@ -173,6 +184,10 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
     Gudbjartsson and Patz, MRM 1995.
     """
     vk = value_kind_of(volume, ctx)
+    if vk.domain == "unknown":
+        return inconclusive(TRACE_ID, "No finite values to judge (every sample is NaN or "
+                            "infinite).")
+    kspace = volume.domain == "kspace"
     evidence = {
         "negative_fraction": _r4(vk.negative_fraction),
         "negative_background_fraction": _r4(vk.negative_background_fraction),
@@ -180,13 +195,22 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
         "imag_energy_fraction": _r4(vk.imag_energy_fraction),
         "dtype": str(volume.dtype),
         "n_coils": volume.n_coils,
+        "measured_on": "inverse FFT of the k-space" if kspace else "stored values",
     }
     estimates = {"domain": vk.domain}
     if vk.domain == "complex":
         coils = f" from {volume.n_coils} receive channels" if volume.n_coils > 1 else ""
-        summary = (f"Complex values{coils} with a non-trivial phase (phase spread "
+        what = "Complex k-space whose images are complex" if kspace else "Complex values"
+        summary = (f"{what}{coils} with a non-trivial phase (phase spread "
                    f"{vk.phase_spread:.2f} rad): the phase was kept.")
         return Trace(TRACE_ID, "absent", 0.97, summary, estimates, evidence)
+    if kspace:
+        signs = "of both signs" if vk.domain == "real_signed" else "non-negative"
+        summary = (f"The k-space is the Fourier transform of real, {signs} images (imaginary "
+                   f"energy {vk.imag_energy_fraction:.1e} of the total): it was synthesised "
+                   "from processed images, not measured.")
+        status = "present" if vk.domain == "magnitude" else "absent"
+        return Trace(TRACE_ID, status, 0.95, summary, estimates, evidence)
     zero_imag = " (complex dtype with a zero imaginary part)" if vk.imag_energy_fraction \
         is not None else ""
     if vk.domain == "real_signed":
