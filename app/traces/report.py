@@ -256,11 +256,78 @@ def analyse_path(
         When the input cannot be read (the CLI turns it into exit code 2).
     """
     from app.io import open_input
+    from app.io.dicom import UndecodablePixelsError
 
     options = {"domain": domain, "coil_axis": coil_axis, "dataset": dataset}
-    with open_input(
-        path, domain=domain, coil_axis=coil_axis, dataset=dataset, limits=limits
-    ) as loaded:
+    try:
+        return _analyse_opened(
+            open_input(path, domain=domain, coil_axis=coil_axis, dataset=dataset, limits=limits),
+            path=path,
+            workers=workers,
+            max_frames=max_frames,
+            options=options,
+            progress=progress,
+            previews=previews,
+        )
+    except UndecodablePixelsError as exc:
+        return _header_only_report(exc, path=path, options=options, progress=progress)
+
+
+class _UndecodedPixels:
+    """Stands in for pixel data no installed decoder can read: any access raises."""
+
+    def __init__(self, shape: tuple[int, ...], dtype: Any) -> None:
+        self.shape = shape
+        self.dtype = np.dtype(dtype)
+
+    def __array__(self, *args: Any, **kwargs: Any) -> Any:
+        return self[...]
+
+    def __getitem__(self, item: Any) -> Any:
+        raise RuntimeError(
+            "the pixel data could not be decoded by the installed decoders; "
+            "only the header was analysed"
+        )
+
+
+def _header_only_report(
+    exc: Any, *, path: str, options: dict[str, Any], progress: ProgressFn | None
+) -> dict[str, Any]:
+    """A report from the header alone, for a file whose pixels cannot be decoded.
+
+    Pixel analysers come out ``inconclusive`` (they cannot read a sample); the
+    header's declarations (for example a lossy JPEG transfer syntax with its stored
+    quantisation table) still reach the report.
+    """
+    fields = exc.header.fields
+    rows, cols = int(fields.get("rows") or 1), int(fields.get("columns") or 1)
+    frames = int(fields.get("number_of_frames") or 1)
+    bits = int(fields.get("bits_allocated") or 16)
+    dtype = np.uint8 if bits <= 8 else np.uint16
+    shape = (frames, rows, cols) if frames > 1 else (rows, cols)
+    vol = Volume.from_array(
+        _UndecodedPixels(shape, dtype),
+        format="dicom",
+        source_files=[str(path)],
+        header=exc.header,
+        name=str(path).rsplit("/", 1)[-1],
+    )
+    rep = analyse_volume(vol, path=path, fmt="dicom", n_files=1, options=options, progress=progress)
+    rep["warnings"].insert(0, f"pixels not decoded: {exc.message}")
+    return rep
+
+
+def _analyse_opened(
+    opened: Any,
+    *,
+    path: str,
+    workers: int,
+    max_frames: int | None,
+    options: dict[str, Any],
+    progress: ProgressFn | None,
+    previews: dict[str, Any] | None,
+) -> dict[str, Any]:
+    with opened as loaded:
         group_reports = []
         for vol in loaded.volumes:
             rep = analyse_volume(
