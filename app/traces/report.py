@@ -312,7 +312,14 @@ def _header_only_report(
         header=exc.header,
         name=str(path).rsplit("/", 1)[-1],
     )
-    rep = analyse_volume(vol, path=path, fmt="dicom", n_files=1, options=options, progress=progress)
+    rep = analyse_volume(
+        vol,
+        path=path,
+        fmt="dicom",
+        n_files=1,
+        options={**options, "pixels_decoded": False},
+        progress=progress,
+    )
     rep["warnings"].insert(0, f"pixels not decoded: {exc.message}")
     return rep
 
