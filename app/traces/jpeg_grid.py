@@ -27,7 +27,6 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import scipy.fft as sfft
-from scipy.stats import binom
 
 #: Residual tolerance (grey-level DCT units) for a coefficient to count as lying on a
 #: multiple of a candidate step. Decoded pixels are rounded to integers (variance
@@ -45,6 +44,8 @@ _MIN_FIT = 0.85
 _MIN_Z = 6.0
 #: Fewest informative coefficients for a step to be measured.
 _MIN_SUPPORT = 8
+#: Coefficients per frequency scored at most (evenly spaced; bounds the run time).
+_MAX_COEFS = 1500
 #: Informative coefficients needed to call a frequency's step 1 (fine, no lattice).
 _MIN_SUPPORT_FINE = 80
 
@@ -338,62 +339,100 @@ def find_block_origin(images: np.ndarray, low: float, high: float, *, workers: i
     return (int(r), int(c)), scores
 
 
+def _informative(x: np.ndarray, q: np.ndarray, tol: np.ndarray
+                 ) -> tuple[np.ndarray, np.ndarray]:
+    """Which AC coefficients are scored for candidate step ``q``, and their chance of a hit.
+
+    Coefficients up to ``_ROUNDING_MAX`` can be coherent rounding patterns of nearly
+    flat blocks and say nothing about a step. A lattice bin ``[kq - q/2, kq + q/2)``
+    wholly above that floor is scored whole (chance of a hit ``2 tol / q`` for a
+    smooth density); a bin the floor cuts through is scored only inside the window
+    ``|c - kq| <= d`` that the floor leaves symmetric around the multiple (chance
+    ``tol / d``), since a one-sided cut would put the steep lower tail of the
+    coefficient distribution near the multiple and fake a fit. For steps above
+    ``2 * _ROUNDING_MAX``, the outer half of the zero bin is scored too, as certain
+    misses: there a coarser candidate than the true step sees the true step's
+    multiples.
+
+    Returns
+    -------
+    inform : ndarray of bool
+    p : ndarray
+        Probability of a hit under no lattice (0 where not informative).
+    """
+    a = np.abs(x)
+    k = np.round(a / q)
+    centre = k * q
+    d = np.minimum(centre - _ROUNDING_MAX, q / 2)
+    in_bin = (k >= 1) & (d > tol) & (np.abs(a - centre) <= d)
+    zero_outer = (k == 0) & (q / 2 > _ROUNDING_MAX) & (a >= np.maximum(q / 4, _ROUNDING_MAX))
+    p = np.where(in_bin, tol / np.where(d > 0, d, 1.0), 0.0)
+    return in_bin | zero_outer, np.clip(p, 0.0, 1.0)
+
+
 def _candidate_scores(s: np.ndarray, q: np.ndarray, *, dc: bool
                       ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Informative count, share on the lattice, binomial z and mean |residual| per step."""
     tol = np.minimum(_TOL, q / 4)
-    p0 = np.clip(2 * tol / q, 1e-6, 1 - 1e-6)
     nq = np.zeros(q.size, dtype=int)
     frac = np.zeros(q.size)
     mres = np.zeros(q.size)
+    z = np.zeros(q.size)
     chunk = max(1, 2_000_000 // max(s.size, 1))
     for i in range(0, q.size, chunk):
         qq = q[i:i + chunk, None]
+        tt = tol[i:i + chunk, None]
         x = s[None, :]
         if dc:
             # the DC level shift is unknown after an affine rescale: fit the phase
             ph = np.angle(np.mean(np.exp(2j * np.pi * x / qq), axis=1, keepdims=True))
             x = x - ph * qq / (2 * np.pi)
             inform = np.ones(x.shape, dtype=bool)
+            p = np.broadcast_to(2 * tt / qq, x.shape)
         else:
-            # coefficients inside a candidate's zero bin say nothing about it, nor
-            # do coherent rounding patterns of nearly flat blocks
-            inform = np.abs(x) > np.maximum(_ROUNDING_MAX, qq / 4)
+            inform, p = _informative(x, qq, tt)
         r = x - qq * np.round(x / qq)
-        hit = (np.abs(r) <= tol[i:i + chunk, None]) & inform
-        nq[i:i + chunk] = inform.sum(axis=1)
-        frac[i:i + chunk] = hit.sum(axis=1) / np.maximum(nq[i:i + chunk], 1)
-        mres[i:i + chunk] = (np.abs(r) * inform).sum(axis=1) / np.maximum(nq[i:i + chunk], 1)
-    z = (frac - p0) / np.sqrt(p0 * (1 - p0) / np.maximum(nq, 1))
+        hit = (np.abs(r) <= tt) & inform
+        n = inform.sum(axis=1)
+        h = hit.sum(axis=1)
+        ep = p.sum(axis=1)
+        var = (p * (1 - p)).sum(axis=1)
+        nq[i:i + chunk] = n
+        frac[i:i + chunk] = h / np.maximum(n, 1)
+        mres[i:i + chunk] = (np.abs(r) * inform).sum(axis=1) / np.maximum(n, 1)
+        z[i:i + chunk] = (h - ep) / np.sqrt(np.maximum(var, 1e-12))
     return nq, frac, z, mres
 
 
 def _multiple_of_true_step(s: np.ndarray, q: float, m: int, *, dc: bool) -> bool:
-    """Whether step ``q`` beats its divisor ``q / m`` (binomial test, level 0.01).
+    """Whether step ``q`` stands against its divisor ``q / m``.
 
-    Coefficients on the ``q / m`` lattice but off the ``q`` lattice prove the finer
-    step. Under the finer step at least ``(m - 1) / m`` of the non-zero multiples
-    would fall off the coarser lattice (the coefficient distribution peaks at
-    +-1 step); seeing almost none of them is evidence for ``q``.
+    Multiples of the true step fit every divisor, so the divisor wins only where
+    it explains coefficients the coarser step cannot: among the scored
+    coefficients off the ``q`` lattice, at least 3, with a share of 0.85 on the
+    ``q / m`` lattice and a z score of 4 against chance. (Under the coarser step,
+    the coefficients off its lattice are rounding noise and fit the finer one only
+    by chance.)
     """
     qf = q / m
-    x = s
+    tol_f = min(_TOL, qf / 4)
+    tol_c = min(_TOL, q / 4)
     if dc:
         # both lattices through the origin of the coarser one (unknown level shift)
-        ph = np.angle(np.mean(np.exp(2j * np.pi * x / q)))
-        x = x - ph * q / (2 * np.pi)
+        ph = np.angle(np.mean(np.exp(2j * np.pi * s / q)))
+        x = s - ph * q / (2 * np.pi)
+        p = np.full(x.shape, 2 * tol_f / qf)
     else:
-        x = x[np.abs(x) > max(_ROUNDING_MAX, qf / 4)]
-    tol = min(_TOL, qf / 4)
-    k = np.round(x / qf)
-    on = np.abs(x - qf * k) <= tol
-    if not dc:
-        on &= k != 0
-    off = int(np.sum(on & (k % m != 0)))
-    n = int(np.sum(on))
-    if n == 0:
+        inform, p = _informative(s, np.float64(qf), np.float64(tol_f))
+        x, p = s[inform], p[inform]
+    off = np.abs(x - q * np.round(x / q)) > tol_c
+    x, p = x[off], p[off]
+    n = int(x.size)
+    if n < 3:
         return True
-    return bool(binom.cdf(off, n, (m - 1) / m) < 0.01)
+    hits = np.abs(x - qf * np.round(x / qf)) <= tol_f
+    z = (hits.sum() - p.sum()) / np.sqrt(max(float((p * (1 - p)).sum()), 1e-12))
+    return not (hits.mean() >= _MIN_FIT and z >= 4.0)
 
 
 def _step_for(c: np.ndarray, *, dc: bool, max_step: int) -> tuple[float, int, float, float]:
@@ -403,6 +442,8 @@ def _step_for(c: np.ndarray, *, dc: bool, max_step: int) -> tuple[float, int, fl
     coefficients, 1 when many coefficients show no step above 1.
     """
     s = c if dc else c[np.abs(c) >= 1.5]  # the zero cluster fits every step
+    if s.size > _MAX_COEFS:
+        s = s[np.linspace(0, s.size - 1, _MAX_COEFS).round().astype(int)]
     n = int(s.size)
     if n < _MIN_SUPPORT:
         return float("nan"), n, float("nan"), 0.0
@@ -475,6 +516,21 @@ def estimate_steps(coefs: np.ndarray, *, max_step: int = 255
     return (steps.reshape(8, 8), support.reshape(8, 8), fit.reshape(8, 8), z.reshape(8, 8))
 
 
+#: Side of the central region (per frame) searched for the grid origin.
+_SEARCH_SIZE = 256
+
+
+def _central(x: np.ndarray, size: int) -> np.ndarray:
+    """Central ``size + 8`` square of each frame, cut at multiples of 8 (keeps the phase)."""
+    out = x
+    for axis in (1, 2):
+        n = x.shape[axis]
+        if n > size + 8:
+            start = ((n - size) // 2) // 8 * 8
+            out = np.take(out, np.arange(start, start + size + 8), axis=axis)
+    return out
+
+
 def analyse_grid(levels: np.ndarray, *, low: float, high: float, workers: int = 1,
                  max_blocks: int = 4096, max_step: int = 255) -> GridEstimate:
     """Block grid, blocking signature and quantiser steps of integer grey levels.
@@ -504,7 +560,8 @@ def analyse_grid(levels: np.ndarray, *, low: float, high: float, workers: int = 
     if x.ndim == 2:
         x = x[None]
     sig_r, sig_c = blocking_signature(x)
-    origin, scores = find_block_origin(x, low, high, workers=workers, max_blocks=max_blocks)
+    origin, scores = find_block_origin(_central(x, _SEARCH_SIZE), low, high, workers=workers,
+                                       max_blocks=max_blocks)
     coefs, blocks = block_dct(x, origin, workers=workers)
     ok = usable_blocks(blocks, low, high)
     coefs, blocks = coefs[ok], blocks[ok]
