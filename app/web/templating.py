@@ -40,6 +40,10 @@ def when(dt: datetime | None) -> str:
     return "" if dt is None else f"{dt:%Y-%m-%d %H:%M} UTC"
 
 
+def day(dt: datetime | None) -> str:
+    return "" if dt is None else f"{dt:%Y-%m-%d}"
+
+
 def static_exists(name: str) -> bool:
     """True when ``static/<name>`` exists (optional assets owned by other modules)."""
     return (STATIC_DIR / name).is_file()
@@ -59,6 +63,7 @@ templates.env.globals.update(
 templates.env.filters.update(
     filesize=filesize,
     when=when,
+    day=day,
     trace_label=labels.trace_label,
     status_label=labels.status_label,
     outcome_label=labels.outcome_label,
