@@ -158,3 +158,32 @@ def test_pydicom_emri_small_is_not_masked() -> None:
     t = _run(ds.pixel_array)
     assert t.status == "absent"
     assert t.estimates["zero_background_fraction"] < 0.1
+
+
+def test_jpeg_flattened_air_is_not_called_a_mask() -> None:
+    """8-bit RSS air compressed by Pillow's JPEG encoder (quality 50): flattened, not masked.
+
+    Pillow (libjpeg) quantises the air's 8 x 8 blocks onto one level with a few
+    values below it; that is not how a mask or threshold leaves air (they set
+    it to its lowest value), so the trace is inconclusive, and the noise law is
+    not measured.
+    """
+    import io
+
+    from PIL import Image
+
+    from app.traces import coil_combination
+
+    mag = synth.rss(synth.acquire((192, 192), n_coils=4, n_slices=2, sigma=0.01, seed=3), axis=1)
+    u = np.round(mag / mag.max() * 255).astype(np.uint8)
+    frames = []
+    for f in u:
+        buf = io.BytesIO()
+        Image.fromarray(f).save(buf, format="JPEG", quality=50)
+        frames.append(np.asarray(Image.open(buf)))
+    vol = Volume.from_array(np.stack(frames))
+    ctx = AnalysisContext(vol)
+    t = bm.analyse(vol, ctx)
+    assert t.status == "inconclusive"
+    assert t.estimates["zero_background_fraction"] > 0.9
+    assert coil_combination.analyse(vol, ctx).status == "inconclusive"

@@ -537,15 +537,35 @@ class ConstantShare:
     masked : bool
         Whether the background is one constant rather than noise (see
         :func:`constant_share`).
+    at_bottom : bool
+        Whether the constant is the lowest background value.
+    isolated : bool
+        Whether the value stands alone on its lattice (its neighbours hold less
+        than half as much, or it holds 90%); always True for continuous data.
     """
 
     value: float | None
     share: float
     neighbour_share: float
     masked: bool
+    at_bottom: bool = True
+    isolated: bool = True
+
+    @property
+    def flattened(self) -> bool:
+        """Half or more of the background on one value: masked, or flattened otherwise.
+
+        Compression or coarse quantisation can flatten noisy air onto one level
+        with a few values below it; the noise law cannot be measured either way.
+        Quantised noise of a sigma near one step is not flat: its neighbouring
+        levels are busy.
+        """
+        return self.masked or (self.share >= FLATTENED_SHARE and self.isolated)
 
 
 MASKED_SHARE = 0.3
+FLATTENED_SHARE = 0.5
+PURE_SHARE = 0.999
 
 
 def constant_share(bg: Background) -> ConstantShare:
@@ -557,11 +577,13 @@ def constant_share(bg: Background) -> ConstantShare:
     values either side are nearly as common, whereas a masked background stands
     alone (its neighbours are empty). The background counts as masked when at
     least :data:`MASKED_SHARE` of it holds one value (values within the
-    background's round-off tolerance counting as one) and, for data on a
-    lattice (integers, or floats on few levels), either it holds at least 90%
-    or it is the lowest value and its two lattice neighbours together hold less
-    than half as much (quantised noise of a sigma near one step has its mode
-    above the lowest value, and busy neighbours).
+    background's round-off tolerance counting as one), that value is the
+    lowest of the background (masks and thresholds set the air to the bottom;
+    compression that flattens air leaves values below the flat level) unless it
+    holds at least 99.9%, and, for data on a lattice (integers, or floats on few
+    levels), it holds at least 90% or its two lattice neighbours together hold
+    less than half as much (quantised noise of a sigma near one step has busy
+    neighbours).
     Common practice, no source.
     """
     use_stored = bg.stored is not None and not np.iscomplexobj(bg.stored)
@@ -582,6 +604,6 @@ def constant_share(bg: Background) -> ConstantShare:
         near = np.abs(gap - step) <= LATTICE_TOL * step
         neighbour = float(counts[near].sum() / v.size)
     at_bottom = bool(vals[j] == vals[0])
-    masked = share >= MASKED_SHARE and (
-        step is None or share >= 0.9 or (at_bottom and neighbour < 0.5 * share))
-    return ConstantShare(float(vals[j]), share, neighbour, masked)
+    lattice_ok = step is None or share >= 0.9 or neighbour < 0.5 * share
+    masked = share >= MASKED_SHARE and lattice_ok and (at_bottom or share >= PURE_SHARE)
+    return ConstantShare(float(vals[j]), share, neighbour, masked, at_bottom, lattice_ok)

@@ -8,7 +8,9 @@ the two neighbouring lattice values must be nearly empty too (a masked
 background stands alone, quantised noise does not). The constant region's
 shape (connected parts, share of the image, whether it reaches the border)
 is reported for the reviewer. A noise-free synthetic image has a constant
-background too and is reported the same way, with that said.
+background too and is reported the same way, with that said. Masks and
+thresholds set the air to its lowest value; air flattened onto a level with
+lower values around it (compression, coarse quantisation) is inconclusive.
 
 ``zero_background_fraction`` is the share of background samples holding that
 constant (0 in most cases; ``constant_value`` in the evidence says which).
@@ -105,7 +107,8 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
     }
     estimates = {"zero_background_fraction": evidence["zero_background_fraction"]}
     if const.masked:
-        kind = ("masked or skull-stripped, or a noise-free simulation" if const.share >= 0.999
+        kind = ("masked or skull-stripped, a noise-free simulation, or air flattened by "
+                "lossy compression" if const.share >= 0.999
                 else "masked or thresholded; some noise samples survive")
         summary = (f"{100 * const.share:.1f}% of the background holds exactly the value "
                    f"{physical:.4g} instead of noise ({kind}); the constant region covers "
@@ -113,6 +116,12 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
                    f"{shape['n_regions']} part(s).")
         conf = float(np.clip(0.5 + 0.5 * (const.share - 0.3) / 0.5, 0.5, 0.98))
         return Trace(TRACE_ID, "present", conf, summary, estimates, evidence)
+    if const.flattened:
+        below = "" if const.at_bottom else ", with lower values in the air too"
+        summary = (f"{100 * const.share:.1f}% of the background holds the value {physical:.4g}"
+                   f"{below}: the air was flattened, but not as a mask or threshold leaves it "
+                   "(compression or coarse quantisation can do this).")
+        return Trace(TRACE_ID, "inconclusive", 0.3, summary, estimates, evidence)
     if const.share >= PARTIAL_SHARE and bg.stored is not None and \
             bg.stored.dtype.kind in "iu":
         note = (f"; {100 * const.share:.0f}% of it at {physical:.4g}, with its lattice "

@@ -183,8 +183,8 @@ def _gaussian_trace(volume: Volume, bg: Background, kind: str) -> Trace:
     why = None
     if not bg.usable:
         why = bg.reason
-    elif constant_share(bg).masked:
-        why = "the background holds one constant value (masked or noise-free)"
+    elif constant_share(bg).flattened:
+        why = "the background holds one constant value (masked, flattened or noise-free)"
     elif rms <= NOISE_FREE * max(bg.signal_peak, 1e-30):
         why = "the background is below 1e-5 of the signal peak (noise-free data)"
     if why is not None:
@@ -229,11 +229,13 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
         return inconclusive(TRACE_ID, f"No noise law measured: {bg.reason}.",
                             n_background=int(bg.n_background))
     const = constant_share(bg)
-    if const.masked:
+    if const.flattened:
+        kind = ("masked, thresholded or noise-free background" if const.masked else
+                "a flattened background, as compression or coarse quantisation leaves")
         return inconclusive(
             TRACE_ID,
             f"No noise law measured: {100 * const.share:.0f}% of the background holds the one "
-            f"value {const.value:.4g} (masked, thresholded or noise-free background).",
+            f"value {const.value:.4g} ({kind}).",
             n_background=int(bg.n_background), constant_value=const.value,
             constant_share=const.share)
     per_channel = volume.coil_axis is not None and bg.values is not None
