@@ -102,9 +102,16 @@ def load_demo(data_dir: Path, *, only: list[str] | None = None,
             ds = service.get_dataset(s, entry["dataset_id"])
             rep = service.get_current_report(s, ds.id)
             entry["report_id"] = rep.id if rep is not None else None
+            if rep is not None:
+                from app.web.evidence import warm_cache
+
+                warm_cache(settings, rep.id, rep.data)
             for c in entry["comments"]:
                 service.add_comment(s, dataset=ds, author=users[c["author"]], body=c["body"],
                                     trace_id=c["trace"])
+            for dec in entry.get("earlier_decisions", []):
+                service.record_decision(s, dataset=ds, reviewer=users[dec["reviewer"]],
+                                        outcome=dec["outcome"], rationale=dec["rationale"])
             dec = entry["decision"]
             if dec is not None:
                 service.record_decision(s, dataset=ds, reviewer=users[dec["reviewer"]],

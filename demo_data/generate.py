@@ -235,6 +235,9 @@ SOURCES: list[dict[str, Any]] = [
          ("zhou", "Agreed. Background looks like root-sum-of-squares of about 8 coils too.",
           "coil_combination"),
      ],
+     "history": [("okafor", "fit_for_reconstruction",
+                  "Provisional, from the portal's description ('raw scanner images'), before "
+                  "the analysis finished.")],
      "decision": ("brandt", "downstream_only",
                   "Zero-filled 2x and coil-combined magnitude: not usable as k-space; fine for "
                   "segmentation work.")},
@@ -330,13 +333,15 @@ def generate(out: Path | str = DEFAULT_OUT, *, seed: int = 20261201,
             shutil.rmtree(folder)
         folder.mkdir(parents=True)
         built = spec["build"](folder, np.random.default_rng(child))
-        entry = {k: v for k, v in spec.items() if k != "build"}
+        entry = {k: v for k, v in spec.items() if k not in ("build", "history")}
         entry["path"] = f"{spec['slug']}/{built['path']}"
         entry["files"] = _rel(built["files"], out)
         entry["format"] = built["format"]
         entry["truth"] = built["truth"]
         entry["size_bytes"] = int(sum(Path(p).stat().st_size for p in built["files"]))
         entry["comments"] = [{"author": a, "body": b, "trace": t} for a, b, t in spec["comments"]]
+        entry["earlier_decisions"] = [{"reviewer": r, "outcome": o, "rationale": t}
+                                      for r, o, t in spec.get("history", [])]
         dec = spec["decision"]
         entry["decision"] = (None if dec is None else
                              {"reviewer": dec[0], "outcome": dec[1], "rationale": dec[2]})

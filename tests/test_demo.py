@@ -42,17 +42,19 @@ def loaded(tmp_path_factory: pytest.TempPathFactory) -> dict:
     assert rc == 0
     manifest = json.loads((data / "demo-sources" / "manifest.json").read_text())
     settings = Settings(data_dir=data)
-    reports, decisions, comments = {}, {}, {}
+    reports, decisions, comments, history = {}, {}, {}, {}
     with session_scope(settings, write=False) as s:
         for ds in service_datasets(s):
             rep = service.get_current_report(s, ds.id)
             reports[ds.name] = rep.data if rep else None
             dec = service.current_decision(s, ds)
+            history[ds.name] = [d.outcome for d in service.list_decisions(s, ds.id)]
             decisions[ds.name] = ({"outcome": dec.outcome, "rationale": dec.rationale}
                                   if dec else None)
             comments[ds.name] = [c.body for c in service.list_comments(s, ds.id)]
     return {"data": data, "stdout": out.getvalue(), "manifest": manifest, "reports": reports,
-            "decisions": decisions, "comments": comments, "settings": settings}
+            "decisions": decisions, "comments": comments, "history": history,
+            "settings": settings}
 
 
 def service_datasets(session) -> list:  # noqa: ANN001 - a SQLAlchemy session
@@ -91,6 +93,9 @@ def test_every_source_loaded_with_comments_and_decisions(loaded: dict) -> None:
         assert (got is None) == (dec is None)
         if dec:
             assert got["outcome"] == dec["outcome"]
+            # history newest first: the current decision, then the earlier ones, kept
+            earlier = [d["outcome"] for d in reversed(src["earlier_decisions"])]
+            assert loaded["history"][src["name"]] == [dec["outcome"], *earlier]
         assert src["size_bytes"] < 5_000_000  # "each small (a few MB)"
     assert any(s["decision"] is None for s in man["sources"])  # some await review
 

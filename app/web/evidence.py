@@ -8,6 +8,7 @@ never changes once stored, so a cached file stays valid.
 
 from __future__ import annotations
 
+import json
 import os
 import tempfile
 from pathlib import Path
@@ -48,7 +49,7 @@ def _cache_dir(settings: Settings, report_id: int) -> Path:
 
 def _write_atomic(path: Path, data: bytes) -> None:
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".tmp-", suffix=".png")
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".tmp-", suffix=path.suffix)
     try:
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
@@ -102,44 +103,41 @@ def _preview_array(settings: Settings, report_id: int, group: int, kind: str, i:
 
 # ---------------------------------------------------------------- effective rate
 FAMILY_LABELS = {
-    "random_1d": "1D random lines (variable density)",
-    "equispaced_1d": "1D equispaced lines",
-    "poisson_2d": "2D Poisson disc",
-    "random_2d": "2D random points",
+    "polynomial": "Variable density, polynomial decay",
+    "gaussian": "Variable density, Gaussian",
+    "uniform": "Uniform random",
+    "poisson": "Variable-density Poisson disc",
+    "equispaced": "Equispaced with calibration region",
 }
-DIM_LABELS = {"cols": "along columns (k_x)", "rows": "along rows (k_y)",
-              "rows,cols": "both in-plane axes"}
+LAYOUT_LABELS = {
+    "1-cols": "Lines: undersample the columns (k_x)",
+    "1-rows": "Lines: undersample the rows (k_y)",
+    "2-cols": "2D: undersample both in-plane axes",
+}
 NOMINAL_GRID = (2.0, 3.0, 4.0, 6.0, 8.0, 10.0, 12.0)
+CALC_MASKS = 20  # as ``rawproof sampling`` (its default --n-masks), so the numbers agree
+CALC_SEED = 0
 MAX_ACCELERATION = 32.0
 
 
 def measured_support(report: dict[str, Any]) -> dict[str, Any]:
-    """The acquired k-space support per in-plane axis, from the report's evidence.
+    """Image shape and true support fractions from a report, as ``rawproof sampling`` reads them.
 
-    Returns ``{"shape": (rows, cols), "rows": (lo, hi) | None, "cols": (lo, hi) | None}``
-    with inclusive centred-order index ranges; ``None`` means the whole axis.
-    Zero-filling edges and partial-Fourier edges are intersected.
+    The ``zero_filling`` estimates' ``support_fraction`` per in-plane axis, 1.0
+    where the report has none (the same rule as
+    :func:`app.sampling_cli.support_from_report`, so the page and the command
+    agree for the same report).
     """
-    shape = [int(v) for v in (report.get("input") or {}).get("shape") or []]
+    shape = (report.get("input") or {}).get("shape") or []
     if len(shape) < 2:
         raise ValidationError("The report does not say the image size.")
-    rows, cols = shape[-2], shape[-1]
-    traces = report.get("traces") or {}
-    support: dict[str, Any] = {"shape": (rows, cols), "rows": None, "cols": None}
-    for tid in ("zero_filling", "partial_fourier"):
-        t = traces.get(tid) or {}
-        if t.get("status") != "present":
-            continue
-        edges = (t.get("evidence") or {}).get("edges") or {}
-        for axis, n in (("rows", rows), ("cols", cols)):
-            e = edges.get(axis)
-            if isinstance(e, list) and len(e) == 2 and all(isinstance(v, int) for v in e):
-                lo, hi = max(0, e[0]), min(n - 1, e[1])
-                if support[axis] is not None:
-                    lo, hi = max(lo, support[axis][0]), min(hi, support[axis][1])
-                if hi >= lo and (lo > 0 or hi < n - 1):
-                    support[axis] = (lo, hi)
-    return support
+    est = ((report.get("traces") or {}).get("zero_filling") or {}).get("estimates") or {}
+    support = []
+    for axis in ("rows", "cols"):
+        f = (est.get(axis) or {}).get("support_fraction") if isinstance(est.get(axis),
+                                                                        dict) else None
+        support.append(float(f) if isinstance(f, int | float) and 0 < f <= 1 else 1.0)
+    return {"shape": [int(shape[-2]), int(shape[-1])], "support": support}
 
 
 def _sampling() -> Any:
@@ -148,55 +146,68 @@ def _sampling() -> Any:
     return sampling
 
 
-def _check_inputs(family: str, acceleration: float, dims: str) -> None:
+def _layout(dims: int, axis: str) -> tuple[int, str]:
+    if dims not in (1, 2) or axis not in ("rows", "cols"):
+        raise ValidationError("dims is 1 (lines) or 2 (2D points); axis is rows or cols.")
+    return dims, axis
+
+
+def _check_inputs(family: str, acceleration: float, dims: int, axis: str) -> None:
     if family not in FAMILY_LABELS:
         raise ValidationError(f"Unknown mask family {family!r}; choose one of "
                               + ", ".join(FAMILY_LABELS) + ".")
-    if dims not in DIM_LABELS:
-        raise ValidationError("The undersampled axes are 'rows', 'cols' or 'rows,cols'.")
+    _layout(dims, axis)
     if not (np.isfinite(acceleration) and 1.0 <= acceleration <= MAX_ACCELERATION):
         raise ValidationError(f"The nominal acceleration must be between 1 and "
                               f"{MAX_ACCELERATION:g}.")
 
 
 def effective_summary(report: dict[str, Any], *, family: str, acceleration: float,
-                      dims: str, n_masks: int = 8, seed: int = 0) -> dict[str, Any]:
-    """The calculator's answer: the effective rate on the measured support and on a raw grid."""
-    _check_inputs(family, acceleration, dims)
+                      dims: int = 1, axis: str = "cols") -> dict[str, Any]:
+    """The calculator's answer: app.sampling's effective rate on the measured support,
+    and on the full grid of a raw acquisition of the same size."""
+    _check_inputs(family, acceleration, dims, axis)
     sampling = _sampling()
     sup = measured_support(report)
-    ds = sampling.effective_rate(sup["shape"], sup, family, acceleration, dims=dims,
-                                 n_masks=n_masks, seed=seed)
-    raw = sampling.effective_rate(sup["shape"], {"shape": sup["shape"], "rows": None,
-                                                 "cols": None},
-                                  family, acceleration, dims=dims, n_masks=n_masks, seed=seed)
-    return {"family": family, "dims": dims, "acceleration": float(acceleration),
-            "effective_acceleration": float(ds["effective_acceleration"]),
+    res = sampling.effective_rate(sup["shape"], sup["support"], family, acceleration,
+                                  dims=dims, axis=axis, n_masks=CALC_MASKS, seed=CALC_SEED)
+    raw = sampling.effective_rate(sup["shape"], (1.0, 1.0), family, acceleration, dims=dims,
+                                  axis=axis, n_masks=CALC_MASKS, seed=CALC_SEED)
+    return {"family": family, "dims": dims, "axis": axis if dims == 1 else None,
+            "acceleration": float(acceleration),
+            "effective_acceleration": float(res["effective_acceleration"]),
+            "effective_acceleration_std": float(res["effective_acceleration_std"]),
             "raw_effective_acceleration": float(raw["effective_acceleration"]),
-            "support": {"shape": list(sup["shape"]),
-                        "rows": list(sup["rows"]) if sup["rows"] else None,
-                        "cols": list(sup["cols"]) if sup["cols"] else None},
-            "sampling": ds}
+            "shape": sup["shape"], "support": sup["support"],
+            "n_masks": CALC_MASKS, "seed": CALC_SEED, "result": res}
 
 
-def curves_for_report(report: dict[str, Any], *, family: str, dims: str) -> dict[str, Any]:
+def curves_for_report(report: dict[str, Any], *, family: str, dims: int = 1,
+                      axis: str = "cols") -> dict[str, Any]:
     """Effective against nominal acceleration on the measured support and on a raw grid."""
-    nominal, eff, raw = [], [], []
-    for r in NOMINAL_GRID:
-        res = effective_summary(report, family=family, acceleration=r, dims=dims, n_masks=4)
-        nominal.append(r)
-        eff.append(res["effective_acceleration"])
-        raw.append(res["raw_effective_acceleration"])
-    return {"nominal": nominal, "dataset": eff, "raw": raw, "family": family, "dims": dims}
+    _check_inputs(family, 2.0, dims, axis)
+    sampling = _sampling()
+    sup = measured_support(report)
+    # 2D Poisson-disc masks are slow to draw: fewer masks and points keep the chart quick
+    slow = family == "poisson" and dims == 2
+    grid = (2.0, 4.0, 6.0, 8.0, 12.0) if slow else NOMINAL_GRID
+    c = sampling.curve(sup["shape"], sup["support"], family, grid, dims=dims, axis=axis,
+                       n_masks=2 if slow else 10, seed=CALC_SEED)
+    return {"nominal": c["acceleration"], "dataset": c["effective"], "raw": c["raw_effective"],
+            "family": family, "dims": f"{axis}" if dims == 1 else "rows and cols"}
 
 
 def _support_text(sup: dict[str, Any]) -> str:
     parts = []
-    for axis in ("rows", "cols"):
-        n = sup["shape"][0 if axis == "rows" else 1]
-        e = sup[axis]
-        parts.append(f"{axis} {e[0]}-{e[1]} of {n}" if e else f"all {n} {axis}")
+    for axis, n, f in zip(("rows", "cols"), sup["shape"], sup["support"], strict=True):
+        parts.append(f"all {n} {axis}" if f >= 0.999 else
+                     f"about {round(f * n)} of {n} {axis} ({100 * f:.1f} %)")
     return ", ".join(parts)
+
+
+def _default_layout(sup: dict[str, Any]) -> tuple[int, str]:
+    rows_f, cols_f = sup["support"]
+    return (1, "rows") if rows_f < cols_f else (1, "cols")
 
 
 def calculator_options(report: dict[str, Any]) -> dict[str, Any] | None:
@@ -206,26 +217,29 @@ def calculator_options(report: dict[str, Any]) -> dict[str, Any] | None:
     except ImportError:
         return None
     sup = measured_support(report)
-    dims = "cols" if sup["cols"] or not sup["rows"] else "rows"
-    default = {"family": "random_1d", "acceleration": 4.0, "dims": dims}
-    try:
-        first = effective_summary(report, **default)
-        initial = {"nominal_text": f"{first['acceleration']:g}",
-                   "effective_text": f"{first['effective_acceleration']:.2f}"}
-    except (ValidationError, ValueError):
-        initial = None
-    return {"families": list(FAMILY_LABELS.items()), "dims": list(DIM_LABELS.items()),
-            "default": default, "initial": initial, "support_text": _support_text(sup),
+    dims, axis = _default_layout(sup)
+    default = {"family": "polynomial", "acceleration": 4.0, "layout": f"{dims}-{axis}",
+               "dims": dims, "axis": axis}
+    first = effective_summary(report, family="polynomial", acceleration=4.0, dims=dims,
+                              axis=axis)
+    return {"families": list(FAMILY_LABELS.items()), "layouts": list(LAYOUT_LABELS.items()),
+            "default": default, "support_text": _support_text(sup),
+            "initial": {"nominal_text": f"{first['acceleration']:g}",
+                        "effective_text": f"{first['effective_acceleration']:.2f}",
+                        "raw_text": f"{first['raw_effective_acceleration']:.2f}"},
             "max_acceleration": MAX_ACCELERATION}
 
 
 def default_effective(report: dict[str, Any]) -> dict[str, Any] | None:
-    """The default calculator answer, for the methods statement (None if no support cut)."""
+    """The default calculator answer for the methods statement (None on a full support)."""
     sup = measured_support(report)
-    if sup["rows"] is None and sup["cols"] is None:
+    if min(sup["support"]) >= 0.999:
         return None
-    dims = "cols" if sup["cols"] else "rows"
-    return effective_summary(report, family="random_1d", acceleration=4.0, dims=dims)
+    dims, axis = _default_layout(sup)
+    res = effective_summary(report, family="polynomial", acceleration=4.0, dims=dims,
+                            axis=axis)
+    res["family"] = f"polynomial variable-density line (along the {axis})"
+    return res
 
 
 # ---------------------------------------------------------------- routes
@@ -262,27 +276,54 @@ def _current(db: Session, dataset_id: int) -> dict[str, Any]:
     return rep.data
 
 
+def _layout_param(layout: str | None, dims: int, axis: str) -> tuple[int, str]:
+    if layout:
+        d, _, a = layout.partition("-")
+        if layout not in LAYOUT_LABELS:
+            raise ValidationError("Unknown mask layout; choose one the form offers.")
+        return int(d), a
+    return _layout(dims, axis)
+
+
 @router.get("/datasets/{dataset_id}/effective-rate")
 def effective_rate_json(dataset_id: int, db: DbSession,
-                        family: str = Query("random_1d", max_length=40),
+                        family: str = Query("polynomial", max_length=40),
                         acceleration: float = Query(4.0),
-                        dims: str = Query("cols", max_length=20)) -> JSONResponse:
+                        dims: int = Query(1), axis: str = Query("cols", max_length=8),
+                        layout: str | None = Query(None, max_length=12)) -> JSONResponse:
+    """The effective rate for one mask family and nominal acceleration (as ``rawproof
+    sampling --from-report`` with its default 20 masks and seed 0)."""
     report = _current(db, dataset_id)
-    result = effective_summary(report, family=family, acceleration=acceleration, dims=dims)
-    return JSONResponse(result)
+    d, a = _layout_param(layout, dims, axis)
+    return JSONResponse(effective_summary(report, family=family, acceleration=acceleration,
+                                          dims=d, axis=a))
 
 
 @router.get("/datasets/{dataset_id}/effective-rate.png")
-def effective_rate_png(dataset_id: int, db: DbSession,
-                       family: str = Query("random_1d", max_length=40),
-                       dims: str = Query("cols", max_length=20),
-                       acceleration: float = Query(4.0)) -> Response:
-    report = _current(db, dataset_id)
-    _check_inputs(family, acceleration, dims)
-    curves = curves_for_report(report, family=family, dims=dims)
-    fig = figures.build_effective_curve(curves, marker=acceleration)
-    return Response(content=figures.to_png(fig), media_type="image/png",
-                    headers={"cache-control": "private, max-age=600"})
+def effective_rate_png(dataset_id: int, db: DbSession, settings: SettingsDep,
+                       family: str = Query("polynomial", max_length=40),
+                       acceleration: float = Query(4.0),
+                       dims: int = Query(1), axis: str = Query("cols", max_length=8),
+                       layout: str | None = Query(None, max_length=12)) -> Response:
+    ds = service.get_dataset(db, dataset_id)
+    rep = service.get_current_report(db, ds.id)
+    if rep is None:
+        raise NotFoundError("This dataset has no report yet.")
+    d, a = _layout_param(layout, dims, axis)
+    _check_inputs(family, acceleration, d, a)
+    path = _cache_dir(settings, rep.id) / f"effective-{family}-{d}-{a}-{acceleration:g}.png"
+
+    def make() -> bytes:
+        cpath = _cache_dir(settings, rep.id) / f"curve-{family}-{d}-{a}.json"
+        if cpath.is_file():
+            curves = json.loads(cpath.read_text(encoding="utf-8"))
+        else:
+            curves = curves_for_report(rep.data, family=family, dims=d, axis=a)
+            _write_atomic(cpath, json.dumps(curves).encode("utf-8"))
+        return figures.to_png(figures.build_effective_curve(curves, marker=acceleration))
+
+    return Response(content=_cached_png(path, make), media_type="image/png",
+                    headers=PNG_HEADERS)
 
 
 @router.get("/datasets/{dataset_id}/methods.txt")
@@ -304,6 +345,20 @@ def methods_for(db: Session, dataset: Any, report: dict[str, Any] | None) -> str
     except (ValidationError, ImportError, ValueError):
         eff = None
     return methods_statement(report, decision, effective=eff)
+
+
+def warm_cache(settings: Settings, report_id: int, report: dict[str, Any]) -> int:
+    """Render every available figure of a report into its cache now; return how many.
+
+    ``rawproof demo`` calls this so that the first visit to each page is as quick
+    as later ones.
+    """
+    n = 0
+    for spec in figures.available(report):
+        if _cached_png(_cache_dir(settings, report_id) / f"{spec.name}.png",
+                       lambda name=spec.name: figures.render(name, report)) is not None:
+            n += 1
+    return n
 
 
 # ---------------------------------------------------------------- template helper

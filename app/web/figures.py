@@ -244,8 +244,8 @@ def build_kspace_profiles(report: dict[str, Any]) -> Figure | None:
         asym = _num((pf.get("asymmetry_db") or {}).get(axis)
                     if isinstance(pf.get("asymmetry_db"), dict) else None)
         if asym is not None:
-            ax.text(0.98, 0.04, f"left/right asymmetry: {asym:.1f} dB", transform=ax.transAxes,
-                    ha="right", fontsize=8, color=INK)
+            ax.text(0.02, 0.96, f"left/right asymmetry: {asym:.1f} dB", transform=ax.transAxes,
+                    va="top", fontsize=8, color=INK)
         ax.set_xlabel(f"k-space index along {axis} (samples from centre)", fontsize=9)
         ax.set_ylabel("energy (dB)", fontsize=9)
         ax.set_title(f"Profile along {axis}", fontsize=10)
@@ -286,7 +286,7 @@ def build_background_noise(report: dict[str, Any]) -> Figure | None:
                 continue
             label = LAW_NAMES[law]
             if law == "noncentral_chi" and L is not None:
-                label += f" (L = {L:g})"
+                label += f" (L = {L:.1f})"
             st = stats.get(law) if isinstance(stats.get(law), dict) else {}
             p = _num(st.get("p_value"))
             if p is not None:
