@@ -161,7 +161,8 @@ def methods_statement(report: dict[str, Any], decision: dict[str, Any] | None = 
         A ``rawproof.report/1`` object.
     decision : dict, optional
         The lab's current decision: ``outcome`` (``fit_for_reconstruction``,
-        ``downstream_only`` or ``rejected``, as in app.store.models.OUTCOMES) and ``rationale``; ``caveats`` if any.
+        ``downstream_only`` or ``rejected``, as in app.store.models.OUTCOMES) and
+        ``rationale``; ``caveats`` if any.
     effective : dict, optional
         An effective-rate result from :mod:`app.sampling`: ``family``,
         ``acceleration`` (nominal) and ``effective_acceleration``.
