@@ -33,6 +33,7 @@ from __future__ import annotations
 from typing import Any
 
 import numpy as np
+from scipy import stats
 
 from app.io.volume import Volume
 from app.traces import noise_laws as nl
@@ -44,6 +45,8 @@ TRACE_ID = "coil_combination"
 KS_SAMPLES = 2000
 KS_ACCEPT = 0.08
 L_SPLIT = 1.5
+CONTAMINATION_RATIO = 1.15
+CONTAMINATION_SKEW = 0.1
 L_GAUSSIAN = 64.0
 NOISE_FREE = 1e-5
 MIN_SIGMA_STEPS = 1.0
@@ -119,7 +122,19 @@ def fit_magnitude_background(x: np.ndarray, *, step: float = 0.0) -> dict[str, A
         "rayleigh": nl.fit_rayleigh(tested),
         "noncentral_chi": nl.fit_central_chi(tested, m1=m1, m2=m2),
     }
+    estimator = "moments"
     chi = fits["noncentral_chi"]
+    spread = np.abs(nl.dither(x, step, np.random.default_rng(12))) if step > 0 else x
+    Lq, sq = nl.channels_from_quantiles(spread)
+    excess_skew = float(stats.skew(x)) - nl.chi_skewness(chi.channels) if chi.channels else 0.0
+    if (chi.channels is not None and np.isfinite(Lq) and Lq > CONTAMINATION_RATIO * chi.channels
+            and excess_skew > CONTAMINATION_SKEW):
+        # an upper tail heavier than the law allows (ringing, ghosts): the lower
+        # quantiles hold the noise law
+        fits["noncentral_chi"] = nl.fit_central_chi_params(tested, Lq, sq)
+        chi = fits["noncentral_chi"]
+        estimator = "quantiles"
+    fits["rayleigh"] = fits["rayleigh"] if estimator == "moments" else nl.fit_rayleigh(tested)
     L = chi.channels if chi.channels is not None else float("nan")
     ok = {k: f.statistic <= KS_ACCEPT for k, f in fits.items()}
     chosen = "unknown"
@@ -132,7 +147,8 @@ def fit_magnitude_background(x: np.ndarray, *, step: float = 0.0) -> dict[str, A
     sigma = {"noncentral_chi": chi.sigma, "rayleigh": fits["rayleigh"].sigma,
              "gaussian": fits["gaussian"].sigma}.get(chosen)
     return {"chosen": chosen, "fits": fits, "channels": L, "sigma": sigma, "m1": m1,
-            "m2": m2, "tested": tested}
+            "m2": m2, "tested": tested, "estimator": estimator,
+            "channels_quantiles": Lq, "excess_skewness": excess_skew}
 
 
 def _evidence_from_fits(x: np.ndarray, res: dict, lo: float, hi: float,
