@@ -11,6 +11,11 @@ Uncompressed cases: the same kind of images never JPEG-compressed, delivered as
 float32, as uint16, quantised to 8 bits, zero-filled 2x (float and 8-bit), and
 resampled with ``scipy.ndimage.zoom``.
 
+JPEG 2000 cases: the same kind of images through Pillow's JPEG 2000 encoder
+(OpenJPEG, irreversible 9/7, 10:1 and 20:1), re-saved as PNG: from the pixels
+alone they must never be called JPEG; the table shows how many the wavelet
+deadzone rule calls inconclusive.
+
 Prints detection rates by quality, the quality error, the share with the right
 block origin, and the false detections on uncompressed images.
 """
@@ -31,6 +36,7 @@ from app.traces.lossy_compression import analyse_lossy_compression
 from demo_data import synth
 
 QUALITIES = list(range(10, 96, 5))
+J2K_RATES = [10, 20]
 SHAPES = [(128, 128), (160, 192), (192, 160), (256, 256)]
 
 
@@ -61,12 +67,21 @@ def _png(img8: np.ndarray) -> np.ndarray:
     return np.asarray(Image.open(buf))
 
 
+def _jpeg2000(img8: np.ndarray, rate: int) -> np.ndarray:
+    buf = io.BytesIO()
+    Image.fromarray(img8, "L").save(buf, "JPEG2000", quality_mode="rates",
+                                    quality_layers=[rate], irreversible=True)
+    buf.seek(0)
+    return np.asarray(Image.open(buf))
+
+
 def _analyse(arr: np.ndarray) -> dict:
     vol = Volume.from_array(arr)
     return analyse_lossy_compression(vol, AnalysisContext(vol, workers=1)).to_dict()
 
 
-def run(per_quality: int, n_uncompressed: int, seed: int) -> tuple[list[dict], list[dict]]:
+def run(per_quality: int, n_uncompressed: int, seed: int, n_j2k: int = 0
+        ) -> tuple[list[dict], list[dict]]:
     rng = np.random.default_rng(seed)
     jpeg_rows = []
     for q in QUALITIES:
@@ -112,6 +127,11 @@ def run(per_quality: int, n_uncompressed: int, seed: int) -> tuple[list[dict], l
         t = _analyse(arr)
         unc_rows.append({"kind": kind, "detected": t["status"] == "present",
                          "status": t["status"]})
+    for i in range(n_j2k):
+        rate = J2K_RATES[i % len(J2K_RATES)]
+        t = _analyse(_png(_jpeg2000(_to8(_magnitude(rng), rng), rate)))
+        unc_rows.append({"kind": f"JPEG 2000 {rate}:1", "detected": t["status"] == "present",
+                         "status": t["status"]})
     return jpeg_rows, unc_rows
 
 
@@ -137,26 +157,31 @@ def report(jpeg_rows: list[dict], unc_rows: list[dict]) -> str:
                  f"{sum(r['detected'] for r in at95)}/{len(at95)} "
                  f"({100 * np.mean([r['detected'] for r in at95]):.1f}%)")
     lines.append("")
-    lines.append("Uncompressed cases (must not be called JPEG)")
+    lines.append("Uncompressed cases (must not be called JPEG); JPEG 2000 cases (Pillow/OpenJPEG, "
+                 "from pixels alone: inconclusive or absent, never JPEG)")
     lines.append(f"{'kind':>18} {'n':>4} {'false det.':>10} {'absent':>7} {'inconcl.':>8}")
     for kind in dict.fromkeys(r["kind"] for r in unc_rows):
         rows = [r for r in unc_rows if r["kind"] == kind]
         lines.append(f"{kind:>18} {len(rows):>4} {sum(r['detected'] for r in rows):>10} "
                      f"{sum(r['status'] == 'absent' for r in rows):>7} "
                      f"{sum(r['status'] == 'inconclusive' for r in rows):>8}")
-    fd = sum(r["detected"] for r in unc_rows)
-    lines.append(f"false detections: {fd}/{len(unc_rows)} ({100 * fd / len(unc_rows):.1f}%)")
+    unc = [r for r in unc_rows if not r["kind"].startswith("JPEG 2000")]
+    fd = sum(r["detected"] for r in unc)
+    lines.append(f"false detections on uncompressed: {fd}/{len(unc)} "
+                 f"({100 * fd / len(unc):.1f}%); not absent: "
+                 f"{sum(r['status'] != 'absent' for r in unc)}/{len(unc)}")
     return "\n".join(lines)
 
 
 def main(argv: list[str] | None = None) -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--per-quality", type=int, default=15)
+    ap.add_argument("--per-quality", type=int, default=12)
     ap.add_argument("--uncompressed", type=int, default=120)
+    ap.add_argument("--jpeg2000", type=int, default=20)
     ap.add_argument("--seed", type=int, default=20261201)
     args = ap.parse_args(argv)
     t0 = time.perf_counter()
-    jpeg_rows, unc_rows = run(args.per_quality, args.uncompressed, args.seed)
+    jpeg_rows, unc_rows = run(args.per_quality, args.uncompressed, args.seed, args.jpeg2000)
     print(report(jpeg_rows, unc_rows))
     n = len(jpeg_rows) + len(unc_rows)
     print(f"{n} cases in {time.perf_counter() - t0:.0f} s")

@@ -157,3 +157,56 @@ def test_step_unmeasurable_when_all_coefficients_zero() -> None:
     assert np.isnan(steps[7, 7]) and support[7, 7] == 0
     assert steps[0, 1] == 12 and fit[0, 1] > 0.95
     assert steps[0, 0] == 8
+
+
+def test_dwt97_taps_equal_t800_table_f4() -> None:
+    """ITU-T T.800 Table F.4 (analysis filter taps of the irreversible 9/7, values
+    from memory): low-pass 0.602949018236, 0.266864118443, -0.078223266529,
+    -0.016864118443, 0.026748757411 (taps 0..4); high-pass 1.115087052457,
+    -0.591271763114, -0.057543526229, 0.091271763114 (taps 0..3). The lifting
+    implementation's impulse responses equal them to 1e-6."""
+    low = [0.602949018236, 0.266864118443, -0.078223266529, -0.016864118443, 0.026748757411]
+    high = [1.115087052457, -0.591271763114, -0.057543526229, 0.091271763114]
+    for pos in (16, 17):  # an impulse on an even and on an odd sample
+        x = np.zeros((1, 32))
+        x[0, pos] = 1.0
+        lo, hi = jpeg_grid._lift97(x, -1)
+        # output sample i of the low band sits at 2i, of the high band at 2i + 1
+        for i, v in enumerate(lo[0]):
+            tap = abs(2 * i - pos)
+            assert abs(v - (low[tap] if tap < 5 else 0.0)) < 1e-6
+        for i, v in enumerate(hi[0]):
+            tap = abs(2 * i + 1 - pos)
+            assert abs(v - (high[tap] if tap < 4 else 0.0)) < 1e-6
+
+
+def test_dwt97_vanishing_moments() -> None:
+    """The CDF 9/7 analysis high-pass has four vanishing moments (Cohen, Daubechies
+    and Feauveau 1992): a cubic polynomial image has zero detail coefficients away
+    from the borders (1e-6 of its range)."""
+    y, x = np.mgrid[0:64, 0:64].astype(float)
+    img = 0.01 * x**3 - 0.2 * y**2 * x + 3 * y + 5
+    _, lh, hl, hh = jpeg_grid.dwt97_2d(img)
+    scale = np.ptp(img)
+    for band in (lh, hl, hh):
+        assert np.abs(band[4:-4, 4:-4]).max() < 1e-6 * scale
+
+
+def _jpeg2000(img: np.ndarray, rate: int) -> np.ndarray:
+    buf = io.BytesIO()
+    Image.fromarray(img, "L").save(buf, "JPEG2000", quality_mode="rates",
+                                   quality_layers=[rate], irreversible=True)
+    buf.seek(0)
+    return np.asarray(Image.open(buf))
+
+
+def test_wavelet_deadzone_of_pillow_jpeg2000() -> None:
+    """Truth: the same 8-bit image uncompressed and through Pillow's JPEG 2000 encoder
+    (OpenJPEG, irreversible, 10:1). Compressed: some subband has under 2 % of its
+    non-zero detail coefficients below 4 grey levels; uncompressed: every scored
+    subband has over 10 %."""
+    img = _mr8(2, (256, 256))
+    raw = jpeg_grid.wavelet_deadzone(img.astype(float))
+    j2k = jpeg_grid.wavelet_deadzone(_jpeg2000(img, 10).astype(float))
+    assert raw.min_gap_fraction is not None and raw.min_gap_fraction > 0.10
+    assert j2k.min_gap_fraction is not None and j2k.min_gap_fraction < 0.02

@@ -354,3 +354,32 @@ def test_large_volume_uses_stated_frame_subset() -> None:
     assert len(t["evidence"]["pixels"]["frames"]) == 8
     assert any("8 of 20 frames" in n for n in ctx.notes)
     assert t["status"] == "present" and abs(t["estimates"]["quality"] - 45) <= 5
+
+
+def test_jpeg2000_decoded_pixels_without_header_are_inconclusive() -> None:
+    """pydicom-data's MR2_UNCI.dcm holds the pixels of MR2_J2KI.dcm (JPEG 2000
+    irreversible, 18:1, per its Derivation Description) stored uncompressed; the
+    original is MR2_UNCR.dcm. Truth: from the pixels alone, the lossy one is not
+    called absent (the wavelet deadzone makes it inconclusive), the original is
+    absent; with UNCI's header as a reader gives it (Lossy Image Compression 01) the
+    trace is present, declared."""
+    unci = pydicom.dcmread(get_testdata_file("MR2_UNCI.dcm"))
+    uncr = pydicom.dcmread(get_testdata_file("MR2_UNCR.dcm"))
+    t = _trace(unci.pixel_array)
+    assert t["status"] == "inconclusive" and "deadzone" in t["summary"]
+    assert _trace(uncr.pixel_array)["status"] == "absent"
+    declared = _trace(Volume.from_array(unci.pixel_array, header=_reader_header(unci, None)))
+    assert declared["status"] == "present" and declared["estimates"]["method"] == "declared"
+
+
+def test_pillow_jpeg2000_never_called_jpeg() -> None:
+    """Truth: synthetic MR through Pillow's JPEG 2000 encoder (OpenJPEG, irreversible,
+    10:1), re-saved as PNG. No 8 x 8 grid: never present from the pixels; here the
+    deadzone rule makes it inconclusive."""
+    buf = io.BytesIO()
+    Image.fromarray(_to8(_mr_float(50, (256, 256))), "L").save(
+        buf, "JPEG2000", quality_mode="rates", quality_layers=[10], irreversible=True)
+    buf.seek(0)
+    t = _trace(_png(np.asarray(Image.open(buf))))
+    assert t["status"] == "inconclusive"
+    assert t["estimates"]["method"] is None

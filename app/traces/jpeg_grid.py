@@ -520,8 +520,12 @@ def estimate_steps(coefs: np.ndarray, *, max_step: int = 255
 _SEARCH_SIZE = 256
 
 
-def _central(x: np.ndarray, size: int) -> np.ndarray:
-    """Central ``size + 8`` square of each frame, cut at multiples of 8 (keeps the phase)."""
+def central_region(x: np.ndarray, size: int) -> np.ndarray:
+    """Central ``size + 8`` square of each frame, cut at multiples of 8.
+
+    Cutting at multiples of 8 keeps the block phase (and, being even, the wavelet
+    subband phase of the first three levels when ``size`` is a multiple of 8).
+    """
     out = x
     for axis in (1, 2):
         n = x.shape[axis]
@@ -560,8 +564,8 @@ def analyse_grid(levels: np.ndarray, *, low: float, high: float, workers: int = 
     if x.ndim == 2:
         x = x[None]
     sig_r, sig_c = blocking_signature(x)
-    origin, scores = find_block_origin(_central(x, _SEARCH_SIZE), low, high, workers=workers,
-                                       max_blocks=max_blocks)
+    origin, scores = find_block_origin(central_region(x, _SEARCH_SIZE), low, high,
+                                       workers=workers, max_blocks=max_blocks)
     coefs, blocks = block_dct(x, origin, workers=workers)
     ok = usable_blocks(blocks, low, high)
     coefs, blocks = coefs[ok], blocks[ok]
@@ -574,3 +578,122 @@ def analyse_grid(levels: np.ndarray, *, low: float, high: float, workers: int = 
         coefs = coefs[np.linspace(0, len(coefs) - 1, max_blocks).round().astype(int)]
     steps, support, fit, z = estimate_steps(coefs, max_step=max_step)
     return GridEstimate(origin, sig_r, sig_c, steps, support, fit, z, int(len(coefs)), scores)
+
+
+# ----- JPEG 2000: no block grid, but a deadzone in the wavelet subbands ----------------
+#: CDF 9/7 lifting constants of the JPEG 2000 irreversible transform (ITU-T T.800,
+#: Annex F, Table F.4; values written from memory, checked by the vanishing-moment
+#: test in tests/test_jpeg_grid.py).
+_ALPHA = -1.586134342059924
+_BETA = -0.052980118572961
+_GAMMA = 0.882911075530934
+_DELTA = 0.443506852043971
+_KAPPA = 1.230174104914001
+
+
+def _lift97(x: np.ndarray, axis: int) -> tuple[np.ndarray, np.ndarray]:
+    """One level of the 1D CDF 9/7 analysis along ``axis`` (whole-sample symmetric
+    extension), returning the low- and high-pass halves."""
+    y = np.moveaxis(np.asarray(x, dtype=np.float64), axis, -1).copy()
+    n = y.shape[-1]
+
+    def ext(i: np.ndarray) -> np.ndarray:
+        i = np.abs(i)
+        return np.where(i > n - 1, 2 * (n - 1) - i, i)
+
+    odd, even = np.arange(1, n, 2), np.arange(0, n, 2)
+    for idx, c in ((odd, _ALPHA), (even, _BETA), (odd, _GAMMA), (even, _DELTA)):
+        y[..., idx] += c * (y[..., ext(idx - 1)] + y[..., ext(idx + 1)])
+    lo = y[..., even] / _KAPPA
+    hi = y[..., odd] * _KAPPA
+    return np.moveaxis(lo, -1, axis), np.moveaxis(hi, -1, axis)
+
+
+def dwt97_2d(image: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """One level of the separable 2D CDF 9/7 wavelet transform over the last two axes.
+
+    Returns
+    -------
+    ll, lh, hl, hh : ndarray
+        Low-low, and the three detail subbands (rows high-pass in ``hl`` and ``hh``).
+
+    References
+    ----------
+    ITU-T T.800 | ISO/IEC 15444-1, Annex F (irreversible 9/7 lifting);
+    A. Cohen, I. Daubechies, J.-C. Feauveau, Comm. Pure Appl. Math. 45:485-560 (1992).
+    """
+    lo, hi = _lift97(image, -1)
+    ll, lh = _lift97(lo, -2)
+    hl, hh = _lift97(hi, -2)
+    return ll, lh, hl, hh
+
+
+@dataclass
+class DeadzoneEvidence:
+    """Small non-zero wavelet detail coefficients per subband (a deadzone shows none).
+
+    Attributes
+    ----------
+    bands : list of dict
+        ``{"level", "band", "n_nonzero", "zero_fraction", "gap_fraction"}`` per
+        detail subband with enough non-zero coefficients.
+    min_gap_fraction : float or None
+        The smallest ``gap_fraction`` over those subbands.
+    """
+
+    bands: list[dict]
+    min_gap_fraction: float | None
+
+
+def wavelet_deadzone(levels: np.ndarray, *, n_levels: int = 3, low: float = 1.0,
+                     high: float = 4.0, min_nonzero: int = 300) -> DeadzoneEvidence:
+    """Look for the deadzone that JPEG 2000's quantiser leaves in the wavelet subbands.
+
+    JPEG 2000 (irreversible path) quantises each 9/7 subband with a deadzone scalar
+    quantiser: coefficients below the (bit-plane truncated) step become zero and the
+    others are rebuilt at 1.5, 2.5, ... steps. Re-transforming the decoded grey
+    levels shows, in such a subband, a cluster at zero (rounding noise) and almost no
+    coefficients between ``low`` and ``high`` grey levels; an uncompressed image with
+    noise fills that range smoothly. ``gap_fraction`` is the share of the non-zero
+    coefficients (``|c| >= low``) below ``high``.
+
+    Parameters
+    ----------
+    levels : ndarray
+        ``(frames, rows, cols)`` integer grey levels (lattice indices).
+    n_levels : int
+        Decomposition levels examined.
+    low, high : float
+        The range (grey levels) that a deadzone leaves empty.
+    min_nonzero : int
+        Subbands with fewer non-zero coefficients are not scored.
+
+    Returns
+    -------
+    DeadzoneEvidence
+
+    References
+    ----------
+    ITU-T T.800 | ISO/IEC 15444-1, Annex E (deadzone scalar quantisation, E.1.1, and
+    reconstruction, E.1.1.2) and Annex F (9/7 transform). Common practice, no source:
+    reading the deadzone back from decoded pixels.
+    """
+    x = np.asarray(levels, dtype=np.float64)
+    if x.ndim == 2:
+        x = x[None]
+    bands = []
+    ll = x
+    for lev in range(1, n_levels + 1):
+        if min(ll.shape[-2:]) < 16:
+            break
+        ll, lh, hl, hh = dwt97_2d(ll)
+        for name, b in (("LH", lh), ("HL", hl), ("HH", hh)):
+            m = np.abs(b)
+            nz = m >= low
+            n = int(nz.sum())
+            if n >= min_nonzero:
+                bands.append({"level": lev, "band": name, "n_nonzero": n,
+                              "zero_fraction": float(np.mean(m < low)),
+                              "gap_fraction": float(np.mean(m[nz] < high))})
+    gaps = [b["gap_fraction"] for b in bands]
+    return DeadzoneEvidence(bands, float(min(gaps)) if gaps else None)

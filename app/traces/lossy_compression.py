@@ -49,6 +49,14 @@ MIN_MEASURED_ANY = 6
 MIN_BLOCKS = 16
 #: Largest root-mean-square relative table error still reported as an IJG quality.
 MAX_FIT_ERROR = 0.15
+#: A wavelet subband whose non-zero 9/7 detail coefficients fall below 4 grey levels
+#: this rarely shows a JPEG 2000 deadzone. Uncompressed MR (pydicom's files, the
+#: synthetic kinds of bench/accuracy_jpeg.py) showed at least 0.07; Pillow's
+#: JPEG 2000 encoder at 10:1 about 0.01 (prototype runs, 2026-12-01).
+MAX_GAP_FRACTION = 0.02
+#: Frames and central region side scanned for the deadzone.
+DEADZONE_FRAMES = 4
+DEADZONE_SIZE = 512
 #: Pixel and stored qualities further apart than this disagree.
 QUALITY_TOLERANCE = 5
 
@@ -103,6 +111,7 @@ class PixelFinding:
     lattice: jpeg_grid.Lattice | None = None
     bits: int | None = None
     frames: list[int] = field(default_factory=list)
+    deadzone: jpeg_grid.DeadzoneEvidence | None = None
 
 
 @dataclass
@@ -244,12 +253,24 @@ def pixel_finding(images: np.ndarray, *, workers: int = 1) -> PixelFinding:
             "clipping levels; too few to measure a quantiser.", grid=grid, lattice=lat, bits=bits)
     if grid.n_measured < MIN_MEASURED or (grid.n_measured_low < MIN_MEASURED_LOW
                                           and grid.n_measured < MIN_MEASURED_ANY):
+        dz = jpeg_grid.wavelet_deadzone(
+            jpeg_grid.central_region(levels[:DEADZONE_FRAMES], DEADZONE_SIZE))
+        if dz.min_gap_fraction is not None and dz.min_gap_fraction <= MAX_GAP_FRACTION:
+            worst = min(dz.bands, key=lambda b: b["gap_fraction"])
+            return PixelFinding(
+                "inconclusive", "No 8 x 8 JPEG grid, but a wavelet deadzone: in the level "
+                f"{worst['level']} {worst['band']} subband only "
+                f"{100 * worst['gap_fraction']:.1f} % of the non-zero 9/7 detail "
+                "coefficients are below 4 grey levels, as JPEG 2000 quantisation leaves; "
+                "the pixels alone cannot confirm it.",
+                grid=grid, lattice=lat, bits=bits, deadzone=dz)
         return PixelFinding(
             "absent", f"No JPEG quantiser in the DCT coefficients of {grid.n_blocks} blocks on "
             f"any 8 x 8 grid ({grid.n_measured} of 64 frequencies show a step above 1, "
             f"{grid.n_measured_low} of them low ones; JPEG needs {MIN_MEASURED} with "
-            f"{MIN_MEASURED_LOW} low ones, or {MIN_MEASURED_ANY}).",
-            grid=grid, lattice=lat, bits=bits)
+            f"{MIN_MEASURED_LOW} low ones, or {MIN_MEASURED_ANY}), and no JPEG 2000 "
+            "deadzone in the wavelet subbands.",
+            grid=grid, lattice=lat, bits=bits, deadzone=dz)
     q, err = trimmed_match(grid.steps, baseline=bits == 8)
     quality = q if err <= MAX_FIT_ERROR else None
     return PixelFinding(
@@ -361,6 +382,11 @@ def combine(pix: PixelFinding, head: HeaderFinding) -> Trace:
             support=g.support.astype(int).tolist(),
             origin_scores=[[_sig4(v) for v in row] for row in g.origin_scores],
             matched_quality=pix.matched_quality)
+    if pix.deadzone is not None:
+        evidence["pixels"]["wavelet_deadzone"] = {
+            "min_gap_fraction": _sig4(pix.deadzone.min_gap_fraction),
+            "bands": [{k: (_sig4(v) if isinstance(v, float) else v) for k, v in b.items()}
+                      for b in pix.deadzone.bands]}
     if pix.lattice is not None and pix.lattice.found:
         evidence["pixels"]["lattice"] = {
             "a": _sig4(pix.lattice.a), "b": _sig4(pix.lattice.b),
