@@ -278,7 +278,10 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
     evidence = _evidence_from_fits(x, res, 0.0, hi, bg.n_background)
     evidence.update({"background_method": bg.method, "quantisation_step": _r4(step),
                      "excluded_blocks": bg.excluded_blocks,
-                     "per_channel": per_channel, "n_coils": volume.n_coils})
+                     "per_channel": per_channel, "n_coils": volume.n_coils,
+                     "estimator": res["estimator"],
+                     "channels_quantiles": _r4(res["channels_quantiles"]),
+                     "excess_skewness": _r4(res["excess_skewness"])})
     chosen = res["chosen"]
     L = res["channels"]
     estimates = {"noise_model": chosen, "sigma": _r4(res["sigma"]),
@@ -292,12 +295,14 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
             f"{best.statistic:.3f} > {KS_ACCEPT}; moment estimate L = {L:.2g}).",
             estimates, evidence)
     conf = float(np.clip(1.0 - stat.statistic / (2 * KS_ACCEPT), 0.3, 0.97))
+    robust = ("; from the lower quantiles, the upper tail carries stray signal"
+              if res["estimator"] == "quantiles" else "")
     if chosen == "noncentral_chi":
         conf *= float(np.clip((L - 1.0) / 1.0, 0.3, 1.0))
         summary = (f"The background follows a central chi law with 2L = {2 * L:.1f} degrees "
                    f"of freedom (effective L = {L:.1f} channels, sigma {res['sigma']:.4g}; KS "
-                   f"distance {stat.statistic:.3f}): a root-sum-of-squares combination of "
-                   "several receive channels.")
+                   f"distance {stat.statistic:.3f}{robust}): a root-sum-of-squares "
+                   "combination of several receive channels.")
         return Trace(TRACE_ID, "present", conf, summary, estimates, evidence)
     if chosen == "rayleigh":
         conf *= float(np.clip((L_SPLIT + 0.5 - L) / 1.0, 0.3, 1.0))
