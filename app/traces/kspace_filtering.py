@@ -48,7 +48,7 @@ from app.traces.base import Trace, register
 
 TRACE_ID = "kspace_filtering"
 RATIO = 0.6
-MIN_GAIN_DB = 0.7
+MIN_GAIN_DB = 1.3
 MIN_ATTENUATION_DB = 3.0
 FERMI_WIDTH = 0.05
 SMOOTH = 5
