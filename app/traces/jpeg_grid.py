@@ -372,34 +372,50 @@ def _informative(x: np.ndarray, q: np.ndarray, tol: np.ndarray
 
 def _candidate_scores(s: np.ndarray, q: np.ndarray, *, dc: bool
                       ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """Informative count, share on the lattice, binomial z and mean |residual| per step."""
+    """Informative count, share on the lattice, binomial z and mean |residual| per step.
+
+    AC coefficients are scored as :func:`_informative` says (inlined here, in single
+    precision, for speed).
+    """
     tol = np.minimum(_TOL, q / 4)
     nq = np.zeros(q.size, dtype=int)
     frac = np.zeros(q.size)
     mres = np.zeros(q.size)
     z = np.zeros(q.size)
     chunk = max(1, 2_000_000 // max(s.size, 1))
+    a = np.abs(s).astype(np.float32)[None, :]
     for i in range(0, q.size, chunk):
-        qq = q[i:i + chunk, None]
-        tt = tol[i:i + chunk, None]
-        x = s[None, :]
+        qq = q[i:i + chunk, None].astype(np.float32)
+        tt = tol[i:i + chunk, None].astype(np.float32)
         if dc:
+            x = s[None, :]
             # the DC level shift is unknown after an affine rescale: fit the phase
             ph = np.angle(np.mean(np.exp(2j * np.pi * x / qq), axis=1, keepdims=True))
             x = x - ph * qq / (2 * np.pi)
+            dev = np.abs(x - qq * np.round(x / qq))
             inform = np.ones(x.shape, dtype=bool)
+            hit = dev <= tt
             p = np.broadcast_to(2 * tt / qq, x.shape)
         else:
-            inform, p = _informative(x, qq, tt)
-        r = x - qq * np.round(x / qq)
-        hit = (np.abs(r) <= tt) & inform
+            k = np.rint(a / qq)
+            centre = k * qq
+            dev = np.abs(a - centre)
+            d = np.minimum(centre - np.float32(_ROUNDING_MAX), qq / 2)
+            in_bin = (k >= 1) & (d > tt) & (dev <= d)
+            zero_outer = ((k == 0) & (qq / 2 > _ROUNDING_MAX)
+                          & (a >= np.maximum(qq / 4, np.float32(_ROUNDING_MAX))))
+            inform = in_bin | zero_outer
+            hit = in_bin & (dev <= tt)
+            p = np.where(in_bin, tt / np.where(d > 0, d, np.float32(1)), np.float32(0))
+            np.clip(p, 0, 1, out=p)
         n = inform.sum(axis=1)
         h = hit.sum(axis=1)
-        ep = p.sum(axis=1)
-        var = (p * (1 - p)).sum(axis=1)
+        ep = p.sum(axis=1, dtype=np.float64)
+        var = (p * (1 - p)).sum(axis=1, dtype=np.float64)
         nq[i:i + chunk] = n
         frac[i:i + chunk] = h / np.maximum(n, 1)
-        mres[i:i + chunk] = (np.abs(r) * inform).sum(axis=1) / np.maximum(n, 1)
+        res = np.where(inform, dev, 0).sum(axis=1, dtype=np.float64)
+        mres[i:i + chunk] = res / np.maximum(n, 1)
         z[i:i + chunk] = (h - ep) / np.sqrt(np.maximum(var, 1e-12))
     return nq, frac, z, mres
 
