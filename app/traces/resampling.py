@@ -65,7 +65,7 @@ KIRCHNER_PREDICTOR = np.array([[-0.25, 0.5, -0.25], [0.5, 0.0, 0.5], [-0.25, 0.5
 PREDICTOR_RADIUS = 2
 PEAK_RATIO = 8.0
 LOW_FREQ = 0.04
-MAX_FRAMES = 8
+MAX_FRAMES = 6
 MAX_SIDE = 256
 DEFAULT_ESTIMATES: dict[str, Any] = {"rows": {"factor": None}, "cols": {"factor": None}}
 
@@ -95,23 +95,19 @@ class ResamplingResult:
     notes: list[str] = field(default_factory=list)
 
 
-def _neighbours(x: np.ndarray, radius: int) -> np.ndarray:
-    """``(rows * cols, k)`` matrix of each sample's neighbours (centre left out)."""
-    xp = np.pad(x, radius, mode="reflect")
-    rows, cols = x.shape
-    cols_list = [xp[radius + dy:radius + dy + rows, radius + dx:radius + dx + cols].ravel()
-                 for dy in range(-radius, radius + 1) for dx in range(-radius, radius + 1)
-                 if (dy, dx) != (0, 0)]
-    return np.stack(cols_list, axis=-1)
+def _offsets(radius: int) -> list[tuple[int, int]]:
+    return [(dy, dx) for dy in range(-radius, radius + 1) for dx in range(-radius, radius + 1)
+            if (dy, dx) != (0, 0)]
 
 
 def fit_predictor(frames: list[np.ndarray], *, radius: int = PREDICTOR_RADIUS,
-                  max_samples: int = 200_000, seed: int = 0) -> np.ndarray:
+                  max_samples: int = 40_000, seed: int = 0) -> np.ndarray:
     """Least-squares linear predictor of each sample from its neighbours, over all frames.
 
     This is the maximisation step of Popescu and Farid's EM with uniform weights:
-    one global predictor, fitted where all neighbours are finite. It adapts to the
-    interpolation kernel (linear or cubic spline) better than a fixed predictor.
+    one global predictor, fitted on a random subset of samples whose neighbours are
+    all finite. It adapts to the interpolation kernel (linear or cubic spline)
+    better than a fixed predictor.
 
     Returns
     -------
@@ -123,24 +119,25 @@ def fit_predictor(frames: list[np.ndarray], *, radius: int = PREDICTOR_RADIUS,
     .. [1] Popescu and Farid, IEEE Trans. Signal Processing 53(2):758-767, 2005.
     """
     rng = np.random.default_rng(seed)
+    offs = _offsets(radius)
     xs, ys = [], []
     per = max(1, max_samples // max(1, len(frames)))
     for f in frames:
         x = np.asarray(f, dtype=np.float64)
         finite = np.isfinite(x)
         ok = ndimage.minimum_filter(finite.astype(np.uint8), size=2 * radius + 1,
-                                    mode="nearest").ravel() > 0
-        idx = np.flatnonzero(ok)
-        if len(idx) > per:
-            idx = rng.choice(idx, per, replace=False)
-        nb = _neighbours(np.where(finite, x, 0.0), radius)
-        xs.append(nb[idx])
-        ys.append(x.ravel()[idx])
+                                    mode="constant", cval=0)
+        iy, ix = np.nonzero(ok)
+        if len(iy) > per:
+            pick = rng.choice(len(iy), per, replace=False)
+            iy, ix = iy[pick], ix[pick]
+        xs.append(np.stack([x[iy + dy, ix + dx] for dy, dx in offs], axis=-1))
+        ys.append(x[iy, ix])
     X, y = np.concatenate(xs), np.concatenate(ys)
     k = (2 * radius + 1) ** 2
     if len(y) < 4 * k or not np.any(X):
         return _pad_kernel(KIRCHNER_PREDICTOR, radius)
-    coef, *_ = np.linalg.lstsq(X, y, rcond=None)
+    coef, *_ = np.linalg.lstsq(X.T @ X, X.T @ y, rcond=None)
     full = np.insert(coef, (k - 1) // 2, 0.0)
     return full.reshape(2 * radius + 1, 2 * radius + 1)
 
@@ -202,7 +199,7 @@ def _frames(volume: Volume, ctx: Any) -> tuple[list[np.ndarray], list[str]]:
 
 def _ratio(frames: list[np.ndarray], predictor: np.ndarray, workers: int) -> np.ndarray:
     """Mean p-map spectrum magnitude over its 7 x 7 local median, centred."""
-    stack = np.stack([pmap(f, predictor) for f in frames])
+    stack = np.stack([pmap(f, predictor) for f in frames]).astype(np.float32)
     stack -= stack.mean(axis=(1, 2), keepdims=True)
     mag = sfft.fftshift(np.abs(sfft.fft2(stack, workers=workers)).mean(axis=0))
     bg = ndimage.median_filter(mag, size=7, mode="wrap")

@@ -69,6 +69,9 @@ class Spectrum:
         For k-space input, whether the data had to be ``fftshift``-ed (DC at the corner).
     notes : list of str
         Sentences about what was measured (stated subsampling, skipped axes).
+    derived : dict
+        Results that analysers derive from this spectrum and share (for example the
+        zero-filling support, which k-space filtering and partial Fourier reuse).
     """
 
     shape: tuple[int, int]
@@ -83,6 +86,7 @@ class Spectrum:
     complex_input: bool = False
     kspace_shifted: bool | None = None
     notes: list[str] = field(default_factory=list)
+    derived: dict[str, Any] = field(default_factory=dict, repr=False)
 
 
 def to_db(power: Any) -> np.ndarray:

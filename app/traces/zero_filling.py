@@ -301,6 +301,8 @@ def detect(spec: sp.Spectrum) -> dict[str, AxisSupport]:
     ----------
     .. [1] Bernstein, Fain and Riederer, J. Magn. Reson. Imaging 14:270-280, 2001.
     """
+    if "zero_filling" in spec.derived:
+        return dict(spec.derived["zero_filling"])
     symmetric = not spec.complex_input and spec.domain == "image"
     out: dict[str, AxisSupport] = {}
     first = {}
@@ -320,6 +322,7 @@ def detect(spec: sp.Spectrum) -> dict[str, AxisSupport]:
             spec.log_profiles["slices"], spec.profiles["slices"], axis="slices",
             symmetric=symmetric,
         )
+    spec.derived["zero_filling"] = dict(out)
     return out
 
 
