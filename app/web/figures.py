@@ -204,8 +204,8 @@ def build_kspace_profiles(report: dict[str, Any]) -> Figure | None:
     _, profs = found
     zf, kf, pf = (_ev(report, t) for t in ("zero_filling", "kspace_filtering", "partial_fourier"))
     sizes = _axis_sizes(report, found[0])
-    fig = _new_figure(8.4, 3.4)
-    axes = fig.subplots(1, len(profs), squeeze=False)[0]
+    fig = _new_figure(6.4, 2.7 * len(profs))
+    axes = fig.subplots(len(profs), 1, squeeze=False)[:, 0]
     for ax, (axis, prof) in zip(axes, profs.items(), strict=True):
         n = len(prof)
         size = sizes.get(axis) or n
@@ -231,11 +231,17 @@ def build_kspace_profiles(report: dict[str, Any]) -> Figure | None:
         fits = kf.get("fits") if isinstance(kf.get("fits"), dict) else {}
         fit = fits.get(axis) if isinstance(fits.get(axis), dict) else {}
         curve = _num_list(fit.get("curve_db"))
-        if curve is not None and len(curve) == n:
-            name = fit.get("window") or "window"
-            par = _num(fit.get("param"))
-            label = f"fitted {name}" + (f" ({par:.3g})" if par is not None else "")
-            ax.plot(k, curve, color=GREEN, linestyle="-.", linewidth=1.4, label=label)
+        kfit = _num_list(fit.get("k"))
+        name = fit.get("window") or fit.get("best_family") or "window"
+        par = _num(fit.get("param"))
+        label = f"fitted {name} window" + (f" ({par:.3g})" if par is not None else "")
+        if curve is not None and kfit is not None and len(kfit) == len(curve):
+            # a fit against distance from DC (profile folded about the centre): both sides
+            kk = np.concatenate([-kfit[::-1], kfit])
+            ax.plot(kk, np.concatenate([curve[::-1], curve]), color=GREEN, linestyle="-.",
+                    linewidth=1.6, label=label)
+        elif curve is not None and len(curve) == n:
+            ax.plot(k, curve, color=GREEN, linestyle="-.", linewidth=1.6, label=label)
         pf_edges = pf.get("edges") if isinstance(pf.get("edges"), dict) else {}
         pe = _pair(pf_edges.get(axis))
         if pe is not None:
@@ -368,9 +374,14 @@ def build_block_signature(report: dict[str, Any]) -> Figure | None:
     est, matched = _num_grid(ev.get("estimated_table")), _num_grid(ev.get("matched_table"))
     if not sigs and est is None:
         return None
-    ncol = 1 + (est is not None) + (matched is not None)
-    fig = _new_figure(3.0 * ncol + 1.0, 3.3)
-    axs = fig.subplots(1, ncol, squeeze=False)[0]
+    n_tables = (est is not None) + (matched is not None)
+    fig = _new_figure(6.4, 6.4 if n_tables else 3.2)
+    if n_tables:
+        grid = fig.add_gridspec(2, n_tables, height_ratios=[1, 1.35])
+        axs = [fig.add_subplot(grid[0, :])] + [fig.add_subplot(grid[1, i])
+                                               for i in range(n_tables)]
+    else:
+        axs = [fig.add_subplot()]
     ax = axs[0]
     origin = _pair(ev.get("block_origin"))
     styles = {"rows": (BLUE, "-", "o"), "cols": (ORANGE, "--", "s")}
@@ -387,7 +398,7 @@ def build_block_signature(report: dict[str, Any]) -> Figure | None:
     ax.set_title("Blocking signature", fontsize=10)
     _style(ax)
     if sigs:
-        ax.legend(fontsize=8, loc="lower right")
+        ax.legend(fontsize=8, loc="upper right")
     tables = [(t, lbl) for t, lbl in ((est, "Estimated table"), (matched, None)) if t is not None]
     vmax = max(float(np.nanmax(t)) for t, _ in tables) if tables else 1.0
     head = ev.get("header") if isinstance(ev.get("header"), dict) else {}
@@ -400,7 +411,7 @@ def build_block_signature(report: dict[str, Any]) -> Figure | None:
         im = tax.imshow(tab, cmap=MAP, vmin=0, vmax=vmax, interpolation="nearest")
         for (r, c), v in np.ndenumerate(tab):
             if np.isfinite(v):
-                tax.text(c, r, f"{v:.0f}", ha="center", va="center", fontsize=6,
+                tax.text(c, r, f"{v:.0f}", ha="center", va="center", fontsize=7,
                          color="white" if v < 0.55 * vmax else "black")
             else:
                 tax.text(c, r, "·", ha="center", va="center", fontsize=7, color="#888888")
@@ -439,8 +450,8 @@ def build_periodicity(report: dict[str, Any]) -> Figure | None:
             series[axis] = (f, p, _num_list(d.get("peaks")))
     if not series:
         return None
-    fig = _new_figure(8.4, 3.2)
-    axs = fig.subplots(1, len(series), squeeze=False)[0]
+    fig = _new_figure(6.4, 2.5 * len(series))
+    axs = fig.subplots(len(series), 1, squeeze=False)[:, 0]
     for ax, (axis, (f, p, peaks)) in zip(axs, series.items(), strict=True):
         ax.plot(f, p, color=INK, linewidth=1.1, label="residual spectrum")
         if peaks is not None:
