@@ -109,7 +109,22 @@ def test_profiles_with_downsampled_profile_scale_to_samples() -> None:
     x = fig.axes[0].get_lines()[0].get_xdata()
     assert x[0] == -1024 and x[-1] == 1022
     labels = [ln.get_label() for ln in fig.axes[0].get_lines()]
-    assert "fitted hann" in labels
+    assert "fitted hann window" in labels
+
+
+def test_folded_window_fit_is_drawn_on_both_sides() -> None:
+    """A fit given against distance from DC (``k``, the kspace_filtering analyser's
+    folded profile) is drawn mirrored: at -k and +k with the same values."""
+    k = np.arange(3, 40, dtype=float)
+    curve = 100 - 0.02 * k ** 2
+    rep = {"input": {"shape": [96, 96]}, "traces": {"kspace_filtering": {"evidence": {
+        "profiles_db": {"rows": list(np.zeros(96))},
+        "fits": {"rows": {"window": "hann", "param": None, "k": k.tolist(),
+                          "curve_db": curve.tolist(), "error": 0.5}}}}}}
+    fig = figures.build_kspace_profiles(rep)
+    fit = next(ln for ln in fig.axes[0].get_lines() if ln.get_label() == "fitted hann window")
+    np.testing.assert_allclose(fit.get_xdata(), np.concatenate([-k[::-1], k]))
+    np.testing.assert_allclose(fit.get_ydata(), np.concatenate([curve[::-1], curve]))
 
 
 def test_background_densities_match_scipy_and_mark_choice() -> None:
