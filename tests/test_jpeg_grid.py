@@ -201,12 +201,14 @@ def _jpeg2000(img: np.ndarray, rate: int) -> np.ndarray:
 
 
 def test_wavelet_deadzone_of_pillow_jpeg2000() -> None:
-    """Truth: the same 8-bit image uncompressed and through Pillow's JPEG 2000 encoder
-    (OpenJPEG, irreversible, 10:1). Compressed: some subband has under 2 % of its
-    non-zero detail coefficients below 4 grey levels; uncompressed: every scored
-    subband has over 10 %."""
+    """Truth: the same 8-bit image uncompressed, rescaled to 12 bits (x 16, noise far
+    above the gap), and through Pillow's JPEG 2000 encoder (OpenJPEG, irreversible,
+    10:1). Compressed: some subband's density on [1, 4) is under 0.1 of that on
+    [4, 16); uncompressed, at either scale: every scored subband over 0.5."""
     img = _mr8(2, (256, 256))
     raw = jpeg_grid.wavelet_deadzone(img.astype(float))
+    wide = jpeg_grid.wavelet_deadzone(img.astype(float) * 16)
     j2k = jpeg_grid.wavelet_deadzone(_jpeg2000(img, 10).astype(float))
-    assert raw.min_gap_fraction is not None and raw.min_gap_fraction > 0.10
-    assert j2k.min_gap_fraction is not None and j2k.min_gap_fraction < 0.02
+    assert raw.min_gap_ratio is not None and raw.min_gap_ratio > 0.5
+    assert wide.min_gap_ratio is not None and wide.min_gap_ratio > 0.5
+    assert j2k.min_gap_ratio is not None and j2k.min_gap_ratio < 0.1

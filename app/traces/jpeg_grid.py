@@ -646,32 +646,34 @@ def dwt97_2d(image: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.
 
 @dataclass
 class DeadzoneEvidence:
-    """Small non-zero wavelet detail coefficients per subband (a deadzone shows none).
+    """How empty the range just above zero is in each wavelet detail subband.
 
     Attributes
     ----------
     bands : list of dict
-        ``{"level", "band", "n_nonzero", "zero_fraction", "gap_fraction"}`` per
-        detail subband with enough non-zero coefficients.
-    min_gap_fraction : float or None
-        The smallest ``gap_fraction`` over those subbands.
+        ``{"level", "band", "n_small", "n_above", "zero_fraction", "gap_ratio"}`` per
+        detail subband with enough coefficients above the gap.
+    min_gap_ratio : float or None
+        The smallest ``gap_ratio`` over those subbands.
     """
 
     bands: list[dict]
-    min_gap_fraction: float | None
+    min_gap_ratio: float | None
 
 
 def wavelet_deadzone(levels: np.ndarray, *, n_levels: int = 3, low: float = 1.0,
-                     high: float = 4.0, min_nonzero: int = 300) -> DeadzoneEvidence:
+                     high: float = 4.0, min_above: int = 100) -> DeadzoneEvidence:
     """Look for the deadzone that JPEG 2000's quantiser leaves in the wavelet subbands.
 
     JPEG 2000 (irreversible path) quantises each 9/7 subband with a deadzone scalar
     quantiser: coefficients below the (bit-plane truncated) step become zero and the
     others are rebuilt at 1.5, 2.5, ... steps. Re-transforming the decoded grey
     levels shows, in such a subband, a cluster at zero (rounding noise) and almost no
-    coefficients between ``low`` and ``high`` grey levels; an uncompressed image with
-    noise fills that range smoothly. ``gap_fraction`` is the share of the non-zero
-    coefficients (``|c| >= low``) below ``high``.
+    coefficients between ``low`` and ``high`` grey levels. The coefficient density of
+    an uncompressed image is unimodal at zero, so its density on ``[low, high)`` is
+    at least about that on ``[high, 4 high)``, whatever the noise level.
+    ``gap_ratio`` is the first density over the second (about 1 or more without
+    compression, near 0 in a deadzone).
 
     Parameters
     ----------
@@ -681,8 +683,8 @@ def wavelet_deadzone(levels: np.ndarray, *, n_levels: int = 3, low: float = 1.0,
         Decomposition levels examined.
     low, high : float
         The range (grey levels) that a deadzone leaves empty.
-    min_nonzero : int
-        Subbands with fewer non-zero coefficients are not scored.
+    min_above : int
+        Subbands with fewer coefficients on ``[high, 4 high)`` are not scored.
 
     Returns
     -------
@@ -705,11 +707,12 @@ def wavelet_deadzone(levels: np.ndarray, *, n_levels: int = 3, low: float = 1.0,
         ll, lh, hl, hh = dwt97_2d(ll)
         for name, b in (("LH", lh), ("HL", hl), ("HH", hh)):
             m = np.abs(b)
-            nz = m >= low
-            n = int(nz.sum())
-            if n >= min_nonzero:
-                bands.append({"level": lev, "band": name, "n_nonzero": n,
-                              "zero_fraction": float(np.mean(m < low)),
-                              "gap_fraction": float(np.mean(m[nz] < high))})
-    gaps = [b["gap_fraction"] for b in bands]
+            n_small = int(np.sum((m >= low) & (m < high)))
+            n_above = int(np.sum((m >= high) & (m < 4 * high)))
+            if n_above >= min_above:
+                ratio = (n_small / (high - low)) / (n_above / (3 * high))
+                bands.append({"level": lev, "band": name, "n_small": n_small,
+                              "n_above": n_above, "zero_fraction": float(np.mean(m < low)),
+                              "gap_ratio": float(ratio)})
+    gaps = [b["gap_ratio"] for b in bands]
     return DeadzoneEvidence(bands, float(min(gaps)) if gaps else None)

@@ -49,14 +49,16 @@ MIN_MEASURED_ANY = 6
 MIN_BLOCKS = 16
 #: Largest root-mean-square relative table error still reported as an IJG quality.
 MAX_FIT_ERROR = 0.15
-#: A wavelet subband whose non-zero 9/7 detail coefficients fall below 4 grey levels
-#: this rarely shows a JPEG 2000 deadzone. Uncompressed MR (pydicom's files, the
-#: synthetic kinds of bench/accuracy_jpeg.py) showed at least 0.07; Pillow's
-#: JPEG 2000 encoder at 10:1 about 0.01 (prototype runs, 2026-12-01).
-MAX_GAP_FRACTION = 0.02
+#: A wavelet subband whose 9/7 detail coefficient density on [1, 4) grey levels is
+#: below this share of its density on [4, 16) shows a JPEG 2000 deadzone.
+#: Uncompressed MR (pydicom's files, the synthetic kinds of bench/accuracy_jpeg.py at
+#: 8 and 12 bits) showed at least 0.9; Pillow's JPEG 2000 encoder at 10:1 about
+#: 0.01, pydicom-data's MR2_J2KI.dcm (18:1) 0.02 over the whole image and 0.13 over
+#: its central 512 x 512 (prototype runs, 2026-12-01).
+MAX_GAP_RATIO = 0.25
 #: Frames and central region side scanned for the deadzone.
 DEADZONE_FRAMES = 4
-DEADZONE_SIZE = 512
+DEADZONE_SIZE = 1024
 #: Pixel and stored qualities further apart than this disagree.
 QUALITY_TOLERANCE = 5
 
@@ -255,14 +257,14 @@ def pixel_finding(images: np.ndarray, *, workers: int = 1) -> PixelFinding:
                                           and grid.n_measured < MIN_MEASURED_ANY):
         dz = jpeg_grid.wavelet_deadzone(
             jpeg_grid.central_region(levels[:DEADZONE_FRAMES], DEADZONE_SIZE))
-        if dz.min_gap_fraction is not None and dz.min_gap_fraction <= MAX_GAP_FRACTION:
-            worst = min(dz.bands, key=lambda b: b["gap_fraction"])
+        if dz.min_gap_ratio is not None and dz.min_gap_ratio <= MAX_GAP_RATIO:
+            worst = min(dz.bands, key=lambda b: b["gap_ratio"])
             return PixelFinding(
                 "inconclusive", "No 8 x 8 JPEG grid, but a wavelet deadzone: in the level "
-                f"{worst['level']} {worst['band']} subband only "
-                f"{100 * worst['gap_fraction']:.1f} % of the non-zero 9/7 detail "
-                "coefficients are below 4 grey levels, as JPEG 2000 quantisation leaves; "
-                "the pixels alone cannot confirm it.",
+                f"{worst['level']} {worst['band']} subband the 9/7 detail coefficients "
+                "between 1 and 4 grey levels are "
+                f"{worst['gap_ratio']:.2f} times as dense as those between 4 and 16, as "
+                "JPEG 2000 quantisation leaves; the pixels alone cannot confirm it.",
                 grid=grid, lattice=lat, bits=bits, deadzone=dz)
         return PixelFinding(
             "absent", f"No JPEG quantiser in the DCT coefficients of {grid.n_blocks} blocks on "
@@ -384,7 +386,7 @@ def combine(pix: PixelFinding, head: HeaderFinding) -> Trace:
             matched_quality=pix.matched_quality)
     if pix.deadzone is not None:
         evidence["pixels"]["wavelet_deadzone"] = {
-            "min_gap_fraction": _sig4(pix.deadzone.min_gap_fraction),
+            "min_gap_ratio": _sig4(pix.deadzone.min_gap_ratio),
             "bands": [{k: (_sig4(v) if isinstance(v, float) else v) for k, v in b.items()}
                       for b in pix.deadzone.bands]}
     if pix.lattice is not None and pix.lattice.found:
