@@ -25,7 +25,6 @@ import shutil
 import socket
 import tempfile
 import threading
-import time
 import traceback
 import uuid
 from dataclasses import dataclass, field
@@ -174,12 +173,13 @@ def _prepare(settings: Settings, job: Job, session) -> _Active:  # noqa: ANN001
     return act
 
 
-def _wait_for_gate() -> None:
+def _wait_for_gate(stop: threading.Event) -> bool:
+    """False when the worker was stopped while waiting at the test gate."""
     gate = os.environ.get(GATE_ENV)
-    if not gate:
-        return
-    while not Path(gate).exists():
-        time.sleep(0.05)
+    while gate and not Path(gate).exists():
+        if stop.wait(0.05):
+            return False
+    return True
 
 
 def _finish(settings: Settings, owner: str, act: _Active, result: dict[str, Any]) -> str:
@@ -311,7 +311,8 @@ class Worker:
                         break
                     with self._lock:
                         self._active[act.job_id] = act
-                    _wait_for_gate()
+                    if not _wait_for_gate(self.stop):
+                        break
                     self._submit(act)
                 futures = {a.future: a for a in self._active.values() if a.future}
                 if not futures:
@@ -332,7 +333,19 @@ class Worker:
             self.stop.set()
             if self._pool is not None:
                 self._pool.shutdown(wait=False, cancel_futures=True)
+            self._release_unfinished()
         return finished
+
+    def _release_unfinished(self) -> None:
+        """On a clean stop, hand unfinished jobs back at once instead of waiting for leases."""
+        for act in list(self._active.values()):
+            try:
+                with database(self.settings).scope() as s:
+                    jobq.release_job(s, act.job_id, self.owner)
+            except Exception:  # noqa: BLE001 - the lease then simply expires
+                log.exception("could not release job %s", act.job_id)
+            shutil.rmtree(act.workdir, ignore_errors=True)
+        self._active.clear()
 
 
 def run_inline(settings: Settings, *, limit: int | None = None) -> int:

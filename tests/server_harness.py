@@ -15,8 +15,8 @@ module::
     @pytest.fixture(scope="module")
     def server(tmp_path_factory):
         with running_server(tmp_path_factory.mktemp("srv")) as srv:  # worker=False: none
-            srv.add_user("ada", "ada-password-1", admin=True)
-            srv.add_user("ben", "ben-password-1")
+            srv.add_users({"ada": "ada-password-1", "ben": "ben-password-1"},
+                          admins=("ada",))
             yield srv
 
     def test_something(server):
@@ -130,6 +130,20 @@ class Server:
 
     def add_user(self, name: str, password: str, *, admin: bool = False) -> None:
         self.cli("users", "add", name, "--password", password, *(["--admin"] if admin else []))
+
+    def add_users(self, passwords: dict[str, str], *, admins: tuple[str, ...] = ()) -> None:
+        """Several ``rawproof users add`` commands at once (they wait on SQLite's lock)."""
+        procs = []
+        for name, password in passwords.items():
+            cmd = [*RAWPROOF, "users", "--data", str(self.data_dir), "add", name,
+                   "--password", password, *(["--admin"] if name in admins else [])]
+            procs.append((name, subprocess.Popen(cmd, stdout=subprocess.PIPE,
+                                                 stderr=subprocess.PIPE, text=True,
+                                                 env=self.env, cwd=REPO)))
+        for name, proc in procs:
+            _out, err = proc.communicate(timeout=120)
+            if proc.returncode != 0:
+                raise AssertionError(f"users add {name} failed ({proc.returncode}): {err}")
 
     def client(self, **kwargs: Any) -> Member:
         """A client that is not signed in."""

@@ -33,8 +33,7 @@ PW = {"uma": "uma-password-1", "rei": "rei-password-1"}
 @pytest.fixture(scope="module")
 def server(tmp_path_factory):
     with running_server(tmp_path_factory.mktemp("browser")) as srv:
-        srv.add_user("uma", PW["uma"])
-        srv.add_user("rei", PW["rei"])
+        srv.add_users(PW)
         yield srv
 
 

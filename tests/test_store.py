@@ -232,3 +232,17 @@ def test_registry_search_filter_and_sort(settings: Settings) -> None:
     assert [r.id for r in filter_rows(rows, decision="none")] == [b]
     assert [r.id for r in filter_rows(rows, uploader="rei")] == [b]
     assert [r.id for r in filter_rows(rows, sort="name", descending=False)] == [b, a]
+
+
+def test_a_cleanly_stopped_worker_hands_its_job_back(settings: Settings) -> None:
+    """Released at stop: claimable at once by another worker, the attempt still counted."""
+    uma, _, _ = _people(settings)
+    _dataset(settings, uma, zero_filled_npy(17))
+    with session_scope(settings) as db:
+        job_id = jobq.claim_job(db, "stopping", lease=600).id
+    with session_scope(settings) as db:
+        assert jobq.release_job(db, job_id, "someone-else") is False
+        assert jobq.release_job(db, job_id, "stopping") is True
+    with session_scope(settings) as db:
+        again = jobq.claim_job(db, "next", lease=600)
+        assert (again.id, again.attempts) == (job_id, 2)

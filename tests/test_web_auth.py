@@ -28,9 +28,7 @@ PUBLIC = {"/login", "/healthz"}
 def server(tmp_path_factory):
     data = tmp_path_factory.mktemp("auth")
     with running_server(data, worker=False, env={"RAWPROOF_LOGIN_MAX_FAILURES": "3"}) as srv:
-        srv.add_user("ada", PW["ada"], admin=True)
-        for name in ("ben", "cat", "limited"):
-            srv.add_user(name, PW[name])
+        srv.add_users(PW, admins=("ada",))
         yield srv
 
 

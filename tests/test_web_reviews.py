@@ -23,9 +23,7 @@ PW = {"uma": "uma-password-1", "rei": "rei-password-1", "kit": "kit-password-1",
 @pytest.fixture(scope="module")
 def server(tmp_path_factory):
     with running_server(tmp_path_factory.mktemp("reviews"), worker=False) as srv:
-        srv.add_user("ada", PW["ada"], admin=True)
-        for name in ("uma", "rei", "kit"):
-            srv.add_user(name, PW[name])
+        srv.add_users(PW, admins=("ada",))
         yield srv
 
 

@@ -25,8 +25,7 @@ PW = {"uma": "uma-password-1", "rei": "rei-password-1"}
 def server(tmp_path_factory):
     with running_server(tmp_path_factory.mktemp("uploads"), worker=False,
                         extra_args=["--max-upload-bytes", str(LIMIT)]) as srv:
-        for name, pw in PW.items():
-            srv.add_user(name, pw)
+        srv.add_users(PW)
         yield srv
 
 

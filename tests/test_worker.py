@@ -27,8 +27,7 @@ PW = {"uma": "uma-password-1", "rei": "rei-password-1"}
 @pytest.fixture(scope="module")
 def server(tmp_path_factory):
     with running_server(tmp_path_factory.mktemp("worker"), worker=False) as srv:
-        for name, pw in PW.items():
-            srv.add_user(name, pw)
+        srv.add_users(PW)
         yield srv
 
 
@@ -72,6 +71,26 @@ def test_killed_worker_job_is_finished_by_the_next_with_one_report(server, uma) 
     files = job["progress"]["files"]
     assert [f["name"] for f in files] == ["scan"]
     assert files[0]["done"] == files[0]["total"] == len(report["traces"])
+
+
+def test_stopped_worker_hands_its_job_back_at_once(server, uma) -> None:
+    """SIGTERM (a clean stop) releases the claimed job instead of leaving its lease to expire."""
+    ds = uma.upload_files("Stop test", [("scan.npy", zero_filled_npy(74))])["dataset_id"]
+    gate = server.data_dir / "gate-never-opens"
+    proc = start_worker(server.data_dir, "--lease-seconds", "600", env={GATE_ENV: str(gate)},
+                        log_name="worker-stop.log")
+    try:
+        deadline = time.monotonic() + 90
+        while _job(uma, ds)["state"] != "running":
+            assert proc.poll() is None, (server.data_dir / "worker-stop.log").read_text()
+            assert time.monotonic() < deadline, "the worker never claimed the job"
+            time.sleep(0.1)
+        proc.send_signal(signal.SIGTERM)
+        assert proc.wait(timeout=30) == 0
+    finally:
+        stop_process_group(proc, signal.SIGKILL)
+    job = _job(uma, ds)
+    assert (job["state"], job["attempts"]) == ("queued", 1)
 
 
 @pytest.fixture(scope="module")

@@ -129,6 +129,18 @@ def fail_job(session: Session, job_id: int, owner: str, error: str, *, permanent
     return True
 
 
+def release_job(session: Session, job_id: int, owner: str) -> bool:
+    """Give a claimed job back to the queue (a worker stopping cleanly); the attempt counts."""
+    job = _held(session, job_id, owner)
+    if job is None:
+        return False
+    job.state = "queued"
+    job.lease_owner = None
+    job.lease_expires_at = None
+    audit(session, "job.release", dataset_id=job.dataset_id, job_id=job.id, owner=owner)
+    return True
+
+
 def _set_failed(session: Session, job: Job, error: str) -> None:
     job.state = "failed"
     job.error = error[:20_000]

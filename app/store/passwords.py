@@ -11,14 +11,19 @@ from __future__ import annotations
 import hashlib
 import hmac
 import secrets
+from functools import lru_cache
 
 from argon2 import PasswordHasher
 from argon2.exceptions import InvalidHashError, VerificationError, VerifyMismatchError
 
 _HASHER = PasswordHasher()
-# Verified against when the user name is unknown, so that a wrong name costs as
-# much time as a wrong password.
-_DUMMY_HASH = _HASHER.hash("rawproof-dummy-password")
+
+
+@lru_cache(maxsize=1)
+def _dummy_hash() -> str:
+    """Verified against when the user name is unknown, so that a wrong name costs as
+    much time as a wrong password (made on first use, not at import)."""
+    return _HASHER.hash("rawproof-dummy-password")
 
 
 def hash_password(password: str) -> str:
@@ -29,7 +34,7 @@ def hash_password(password: str) -> str:
 def verify_password(stored_hash: str | None, password: str) -> bool:
     """True when ``password`` matches ``stored_hash``; constant work for a missing user."""
     try:
-        return _HASHER.verify(stored_hash or _DUMMY_HASH, password) and stored_hash is not None
+        return _HASHER.verify(stored_hash or _dummy_hash(), password) and stored_hash is not None
     except (VerifyMismatchError, VerificationError, InvalidHashError):
         return False
 
