@@ -270,6 +270,8 @@ def test_jpeg_lossy_dcm_header_only() -> None:
     assert t["status"] == "present"
     assert t["estimates"] == {"method": "declared", "quality": stored_q, "block_origin": None}
     assert t["evidence"]["header"]["stored_table"] == table.tolist()
+    baseline = bool(table.max() <= 255)
+    assert t["evidence"]["matched_table"] == scaled_table(stored_q, baseline=baseline).tolist()
     declared = {"lossy_compression": True, "transfer_syntax": JPEG_EXTENDED,
                 "lossy_method": "ISO_10918_1", "stored_jpeg_quality": stored_q,
                 "stored_jpeg_table": table.tolist()}

@@ -196,6 +196,10 @@ def _frames(volume: Volume, ctx: AnalysisContext) -> np.ndarray:
     return idx
 
 
+_COMPLEX_REASON = ("The values are complex: a JPEG decoder returns real grey levels, so "
+                   "these did not come from one.")
+
+
 def pixel_finding(images: np.ndarray, *, workers: int = 1) -> PixelFinding:
     """Look for JPEG block-DCT quantisation in stored grey levels.
 
@@ -216,8 +220,7 @@ def pixel_finding(images: np.ndarray, *, workers: int = 1) -> PixelFinding:
     """
     x = np.asarray(images)
     if np.iscomplexobj(x):
-        return PixelFinding("absent", "The values are complex: a JPEG decoder returns real "
-                            "grey levels, so these did not come from one.")
+        return PixelFinding("absent", _COMPLEX_REASON)
     if x.ndim == 2:
         x = x[None]
     if x.shape[-1] < 16 or x.shape[-2] < 16:
@@ -343,6 +346,16 @@ def header_finding(volume: Volume, declared: dict[str, Any] | None) -> HeaderFin
         wavelet=ts in _WAVELET_SYNTAXES)
 
 
+def _matched_table(pix: PixelFinding, head: HeaderFinding) -> list | None:
+    """Annex K scaled to the pixels' matched quality, else to the stored table's."""
+    if pix.status == "present" and pix.matched_quality is not None:
+        return _table_list(scaled_table(pix.matched_quality, baseline=pix.bits == 8))
+    if head.stored_quality is not None:
+        baseline = head.stored_table is None or bool(head.stored_table.max() <= 255)
+        return _table_list(scaled_table(head.stored_quality, baseline=baseline))
+    return None
+
+
 def combine(pix: PixelFinding, head: HeaderFinding) -> Trace:
     """One trace from the pixel and header findings, flagging where they disagree.
 
@@ -362,9 +375,7 @@ def combine(pix: PixelFinding, head: HeaderFinding) -> Trace:
             "cols": [_sig4(v) for v in g.signature_cols] if g else None,
         },
         "estimated_table": _table_list(g.steps) if g and pix.status == "present" else None,
-        "matched_table": (_table_list(scaled_table(pix.matched_quality,
-                                                   baseline=pix.bits == 8))
-                          if pix.matched_quality is not None else None),
+        "matched_table": _matched_table(pix, head),
         "fit_error": _sig4(pix.fit_error),
         "block_origin": list(g.origin) if g and pix.status == "present" else None,
         "header": {
@@ -474,7 +485,7 @@ def analyse_lossy_compression(volume: Volume, ctx: AnalysisContext) -> Trace:
         pix = PixelFinding("absent", "The data are k-space samples, not decoded grey levels: "
                            "no JPEG stage sits between the scanner and these values.")
     elif volume.value_type == "complex":
-        pix = pixel_finding(np.zeros((1, 1, 1), dtype=np.complex64))
+        pix = PixelFinding("absent", _COMPLEX_REASON)
     else:
         idx = _frames(volume, ctx)
         parts = []
