@@ -27,7 +27,7 @@ import tempfile
 import threading
 import traceback
 import uuid
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -146,9 +146,8 @@ class _Active:
     job_id: int
     dataset_id: int
     workdir: Path
+    path: str
     future: cf.Future | None = None
-    lost: bool = False
-    extra: dict[str, Any] = field(default_factory=dict)
 
     @property
     def progress_file(self) -> Path:
@@ -168,9 +167,7 @@ def _prepare(settings: Settings, job: Job, session) -> _Active:  # noqa: ANN001
     workdir = Path(tempfile.mkdtemp(prefix=f"job-{job.id}-", dir=filestore.tmp_dir(settings)))
     items = [(df.relative_name, df.file.sha256) for df in ds.files]
     target = filestore.assemble_folder(settings, items, workdir / "files")
-    act = _Active(job.id, job.dataset_id, workdir)
-    act.extra["path"] = str(target)
-    return act
+    return _Active(job.id, job.dataset_id, workdir, str(target))
 
 
 def _wait_for_gate(stop: threading.Event) -> bool:
@@ -251,8 +248,8 @@ class Worker:
                     with db.scope() as s:
                         alive = jobq.heartbeat(s, act.job_id, self.owner, lease=self.lease,
                                                progress=summarise_progress(act.progress_file))
-                    if not alive:
-                        act.lost = True
+                    if not alive:  # another worker took it; finish_job will store nothing
+                        log.warning("lost the lease of job %s", act.job_id)
                 except Exception:  # noqa: BLE001 - a missed beat is retried next time
                     log.exception("heartbeat failed for job %s", act.job_id)
 
@@ -279,7 +276,7 @@ class Worker:
 
     def _submit(self, act: _Active) -> None:
         act.future = self._pool_get().submit(
-            analyse_job, act.extra["path"], str(act.progress_file), str(act.previews_out),
+            analyse_job, act.path, str(act.progress_file), str(act.previews_out),
             self.settings.limits, self.fft_workers)
 
     def _collect(self, act: _Active) -> None:
@@ -359,7 +356,7 @@ def run_inline(settings: Settings, *, limit: int | None = None) -> int:
             if job is None:
                 break
             act = _prepare(settings, job, s)
-        result = analyse_job(act.extra["path"], str(act.progress_file), str(act.previews_out),
+        result = analyse_job(act.path, str(act.progress_file), str(act.previews_out),
                              settings.limits, 2)
         _finish(settings, owner, act, result)
         shutil.rmtree(act.workdir, ignore_errors=True)

@@ -15,7 +15,7 @@ from datetime import timedelta
 from pathlib import Path
 from typing import Any
 
-from sqlalchemy import func, select, update
+from sqlalchemy import select, update
 from sqlalchemy.orm import Session
 
 from app.config import Settings
@@ -23,7 +23,6 @@ from app.store import files as filestore
 from app.store.errors import (
     DecisionConflictError,
     NotFoundError,
-    PermissionDeniedError,
     SelfDecisionError,
     ValidationError,
 )
@@ -519,13 +518,3 @@ def _conflict_message(session: Session, dataset: Dataset) -> str:
         f"{cur.created_at:%Y-%m-%d %H:%M} UTC while you were reviewing. Read it, then "
         "decide again if you still disagree."
     )
-
-
-def check_can_decide(user: User, dataset: Dataset) -> None:
-    if user.id == dataset.uploader_id:
-        raise PermissionDeniedError(
-            "You uploaded this dataset, so another member must record its decision.")
-
-
-def count_datasets(session: Session) -> int:
-    return int(session.scalar(select(func.count(Dataset.id))) or 0)

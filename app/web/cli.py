@@ -133,6 +133,11 @@ def _run_worker(args: Any) -> int:
     rc = _migrate(settings)
     if rc is not None:
         return rc
+    if args.once:
+        from app.worker import run_inline
+
+        run_inline(settings)
+        return EXIT_OK
     worker = Worker(settings, concurrency=args.concurrency, lease=args.lease_seconds,
                     poll=args.poll_seconds, parent_pid=args.parent_pid)
 
@@ -141,11 +146,6 @@ def _run_worker(args: Any) -> int:
 
     signal.signal(signal.SIGTERM, _stop)
     signal.signal(signal.SIGINT, _stop)
-    if args.once:
-        from app.worker import run_inline
-
-        run_inline(settings)
-        return EXIT_OK
     worker.run()
     return EXIT_OK
 
