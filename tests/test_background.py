@@ -179,3 +179,23 @@ def test_lattice_step() -> None:
     assert bgmod.lattice_step(f) == pytest.approx(1000 / 255, rel=1e-5)
     rng = np.random.default_rng(0)
     assert bgmod.lattice_step(rng.random(5000).astype(np.float32)) is None
+
+
+def test_blank_frames_are_left_out() -> None:
+    """3 all-zero padding frames among 6 noisy RSS frames (L = 4): left out, with a note.
+
+    Truth: the noisy frames' air is central chi with 2L = 8 (Constantinides 1997);
+    zeros from blank frames would otherwise drag the moment estimate of L.
+    """
+    from app.traces import background_masking, coil_combination
+
+    img = synth.rss(synth.acquire((96, 96), n_coils=4, n_slices=6, sigma=0.01, seed=4), axis=1)
+    stack = np.concatenate([np.zeros((3, 96, 96), np.float32), img])
+    vol = Volume.from_array(stack)
+    ctx = AnalysisContext(vol)
+    bg = bgmod.background_of(vol, ctx)
+    assert any("3 blank frame(s)" in n for n in ctx.notes)
+    assert not bg.masks[:3].any()
+    cc = coil_combination.analyse(vol, ctx)
+    assert cc.status == "present" and abs(cc.estimates["effective_channels"] - 4) <= 1.0
+    assert background_masking.analyse(vol, ctx).status == "absent"

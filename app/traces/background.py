@@ -380,6 +380,23 @@ def _magnitude(block: np.ndarray, multi: bool) -> np.ndarray:
     return np.abs(block).astype(np.float64)
 
 
+@dataclass
+class _Accumulator:
+    """Per-volume sums of the frames examined (blank frames are kept apart)."""
+
+    frames: list[int] = field(default_factory=list)
+    methods: set[str] = field(default_factory=set)
+    excluded: int = 0
+    n_px: int = 0
+    n_nan: int = 0
+    n_bg: int = 0
+    peaks: list[float] = field(default_factory=list)
+    obj_levels: list[float] = field(default_factory=list)
+    mags: list[np.ndarray] = field(default_factory=list)
+    vals: list[np.ndarray] = field(default_factory=list)
+    stored: list[np.ndarray] = field(default_factory=list)
+
+
 def find_background(volume: Volume, *, frames: Any = None,
                     max_frames: int = MAX_FRAMES) -> Background:
     """Find the background of a Volume on a bounded, evenly spaced subset of frames.
@@ -411,10 +428,8 @@ def find_background(volume: Volume, *, frames: Any = None,
     if volume.domain == "kspace":
         notes.append("noise and background measured on the inverse FFT of the k-space")
     multi = volume.coil_axis is not None
-    masks, mags, vals, stored_parts = [], [], [], []
-    obj_levels, peaks = [], []
-    n_bg = n_px = n_nan = excluded = 0
-    methods = set()
+    acc = {True: _Accumulator(), False: _Accumulator()}
+    masks = []
     single = not multi and volume.domain == "image"
     stored_iter = volume.iter_slices(8, scaled=False, indices=idx) if single else None
     for _, block in image_blocks(volume, idx):
@@ -422,33 +437,45 @@ def find_background(volume: Volume, *, frames: Any = None,
         sblock = next(stored_iter)[1] if stored_iter is not None else None
         for j in range(mag.shape[0]):
             m = mag[j]
-            mask, method, exc, t = frame_background(m)
-            methods.add(method)
-            excluded += exc
-            masks.append(mask)
             fin = np.isfinite(m)
-            n_px += m.size
-            n_nan += int((~fin).sum())
+            blank = not fin.any() or float(m[fin].min()) == float(m[fin].max())
+            mask, method, exc, t = frame_background(m)
+            masks.append(mask)
+            a = acc[blank]
+            a.frames.append(len(masks) - 1)
+            a.methods.add(method)
+            a.excluded += exc
+            a.n_px += m.size
+            a.n_nan += int((~fin).sum())
             if fin.any():
-                peaks.append(float(np.percentile(m[fin], 99.5)))
+                a.peaks.append(float(np.percentile(m[fin], 99.5)))
                 obj = m[fin & ~mask]
                 above = obj[obj >= t]
-                obj_levels.append(float(np.median(above)) if above.size else
-                                  float(np.median(obj)) if obj.size else 0.0)
+                a.obj_levels.append(float(np.median(above)) if above.size else
+                                    float(np.median(obj)) if obj.size else 0.0)
             pos = np.flatnonzero(mask)
-            n_bg += pos.size
+            a.n_bg += pos.size
             if pos.size > MAX_SAMPLES_PER_FRAME:
                 pos = pos[np.linspace(0, pos.size - 1, MAX_SAMPLES_PER_FRAME).astype(np.int64)]
-            mags.append(m.ravel()[pos])
+            a.mags.append(m.ravel()[pos])
             if multi:
-                vals.append(block[j].reshape(block.shape[1], -1)[:, pos])
+                a.vals.append(block[j].reshape(block.shape[1], -1)[:, pos])
             else:
-                vals.append(block[j].ravel()[pos])
+                a.vals.append(block[j].ravel()[pos])
                 if sblock is not None:
-                    stored_parts.append(sblock[j].ravel()[pos])
-    magnitude = np.concatenate(mags) if mags else np.zeros(0)
-    values = (np.concatenate(vals, axis=-1) if vals else None)
-    stored = np.concatenate(stored_parts) if stored_parts else None
+                    a.stored.append(sblock[j].ravel()[pos])
+    use = acc[False] if acc[False].frames else acc[True]
+    if acc[False].frames and acc[True].frames:
+        notes.append(f"{len(acc[True].frames)} blank frame(s) (one value throughout) left out "
+                     "of the background")
+        for k in acc[True].frames:
+            masks[k] = np.zeros_like(masks[k])
+    methods, excluded = use.methods, use.excluded
+    n_bg, n_px, n_nan = use.n_bg, use.n_px, use.n_nan
+    peaks, obj_levels = use.peaks, use.obj_levels
+    magnitude = np.concatenate(use.mags) if use.mags else np.zeros(0)
+    values = (np.concatenate(use.vals, axis=-1) if use.vals else None)
+    stored = np.concatenate(use.stored) if use.stored else None
     reason = None
     if n_bg < MIN_SAMPLES:
         reason = (f"only {n_bg} background samples found (at least {MIN_SAMPLES} needed): "
