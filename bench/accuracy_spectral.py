@@ -21,7 +21,9 @@ magnitudes) is the negative set of every trace; each trace has its own positives
   scipy.ndimage.rotate by 5-45 degrees, orders 1 and 3, of RSS images. Estimate
   correct (zooms only) when each axis's factor is within 2 %.
 
-The table it prints is the one in the README.
+The thresholds of the analysers were chosen on cases drawn with seed 2026; the
+table is printed for seed 7, cases none of them was tuned on. The table it prints
+is the one in the README.
 """
 
 from __future__ import annotations
@@ -45,7 +47,7 @@ from demo_data import synth
 
 N_RAW = 100
 N_POS = 100
-SEED = 2026
+SEED = 7
 
 
 @dataclass
@@ -123,7 +125,7 @@ def run_raw(tallies: dict[str, Tally]) -> None:
         tallies["resampling"].negative(_resampling_call(_frames(vol)).status == "present")
 
 
-def run_zero_filling(t: Tally) -> None:
+def run_zero_filling(t: Tally, resampled_zf: list[bool]) -> None:
     for i in range(N_POS):
         rng = _case_rng(i, 1)
         img, meta = _acquire(rng)
@@ -134,8 +136,11 @@ def run_zero_filling(t: Tally) -> None:
         acq = meta["shape"]
         out = (int(round(acq[0] * pad[0])), int(round(acq[1] * pad[1])))
         zfimg = synth.to_image(synth.zero_fill(synth.to_kspace(img), out))
-        res = _analyse(_volume(zfimg, complex_out=False))
+        vol = _volume(zfimg, complex_out=False)
+        res = _analyse(vol)
         tr = res["zf"]
+        if i % 4 == 0:
+            resampled_zf.append(_resampling_call(_frames(vol)).status == "present")
         ok = True
         for k, ax in enumerate(("rows", "cols")):
             true_pad = out[k] / acq[k]
@@ -197,7 +202,7 @@ def run_partial_fourier(t: Tally) -> None:
         ax = ("rows", "cols")[axis]
         ok = abs(tr.estimates[ax]["fraction"] - true_frac) <= 0.02
         t.positive(tr.status == "present", "complex" if complex_out else "RSS/magnitude", ok)
-        if not complex_out:
+        if not complex_out and pad == 1.0:
             t.extra.append(float(res["zf"].status == "present"))
 
 
@@ -229,7 +234,7 @@ def _rate(a: int, b: int) -> str:
     return f"{a / b:6.1%} ({a}/{b})" if b else "   n/a"
 
 
-def format_table(tallies: dict[str, Tally], seconds: float) -> str:
+def format_table(tallies: dict[str, Tally], resampled_zf: list[bool], seconds: float) -> str:
     lines = [
         "Spectral traces on synthetic cases (bench/accuracy_spectral.py, seed "
         f"{SEED}; {N_RAW} shared raw-like negatives, {N_POS} positives per trace)",
@@ -252,19 +257,26 @@ def format_table(tallies: dict[str, Tally], seconds: float) -> str:
                      f"within 3 samples {np.mean(e <= 3):.1%}")
     pt = tallies["partial_fourier"]
     if pt.extra:
-        lines.append(f"zero_filling called present on partial-Fourier RSS images "
-                     f"(no padding applied in half of them): {np.mean(pt.extra):.1%}")
+        lines.append(f"zero_filling called present on unpadded partial-Fourier RSS images: "
+                     f"{np.mean(pt.extra):.1%} ({int(np.sum(pt.extra))}/{len(pt.extra)})")
+    if resampled_zf:
+        lines.append(f"resampling called present on zero-filled RSS images: "
+                     f"{np.mean(resampled_zf):.1%} ({int(np.sum(resampled_zf))}/"
+                     f"{len(resampled_zf)})")
+    lines.append("partial_fourier on RSS/magnitude images without a strong step is "
+                 "inconclusive (not counted as a positive call)")
     lines.append(f"run time {seconds:.0f} s")
     return "\n".join(lines)
 
 
 def main() -> int:
     t0 = time.perf_counter()
+    resampled_zf: list[bool] = []
     tallies = {name: Tally() for name in
                ("zero_filling", "kspace_filtering", "partial_fourier", "resampling")}
     steps: list[tuple[str, Callable[[], None]]] = [
         ("raw-like", lambda: run_raw(tallies)),
-        ("zero_filling", lambda: run_zero_filling(tallies["zero_filling"])),
+        ("zero_filling", lambda: run_zero_filling(tallies["zero_filling"], resampled_zf)),
         ("kspace_filtering", lambda: run_kspace_filtering(tallies["kspace_filtering"])),
         ("partial_fourier", lambda: run_partial_fourier(tallies["partial_fourier"])),
         ("resampling", lambda: run_resampling(tallies["resampling"])),
@@ -272,7 +284,7 @@ def main() -> int:
     for name, step in steps:
         print(f"bench: {name} ...", file=sys.stderr, flush=True)
         step()
-    print(format_table(tallies, time.perf_counter() - t0))
+    print(format_table(tallies, resampled_zf, time.perf_counter() - t0))
     return 0
 
 

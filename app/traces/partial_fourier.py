@@ -6,10 +6,12 @@ up to a small distance ``k_c`` past the centre; the acquired fraction is
 
 What the pixels show:
 
-* Complex images and k-space (phase kept): the missing side is empty, so the
-  support of the power spectrum is asymmetric about DC. Each side's edge is found
-  on its own (the step detector of :mod:`app.traces.zero_filling`), and the
-  fraction is the acquired extent over twice the longer side.
+* Complex images and k-space (phase kept): the missing side holds exact zeros
+  (more than ``EMPTY_DB`` below the strongest line), so the support of the power
+  spectrum is asymmetric about DC. Each side's extent is found on its own, and the
+  fraction is the acquired extent over twice the longer side. A mere step in level
+  is not taken as a missing side: the spectrum of a complex image need not be
+  symmetric about DC.
 * Magnitude images (real): a real image's power spectrum is symmetric, so the
   missing side cannot show as asymmetry. But ``|x| ~ Re(x e^{-i phi})`` doubles the
   spectrum into ``(F(k) + F*(-k)) / 2``: inside ``|k| < k_c`` both terms add, beyond
@@ -109,10 +111,10 @@ def _complex_axis(spec: sp.Spectrum, i: int, ax: str, other: float) -> AxisFract
     prof_band = np.median(lines, axis=1)
     e_pos = _empty_extent(prof_band[c:])
     e_neg = _empty_extent(prof_band[c::-1])
-    x_pos = e_pos if e_pos is not None else support.x_pos
-    x_neg = e_neg if e_neg is not None else support.x_neg
-    x_pos = x_pos if x_pos is not None else n - c - 0.5
-    x_neg = x_neg if x_neg is not None else c + 0.5
+    # only exact zeros mark a missing side: a step in the level is not enough, since
+    # the spectrum of a complex image need not be symmetric about DC
+    x_pos = e_pos if e_pos is not None else n - c - 0.5
+    x_neg = e_neg if e_neg is not None else c + 0.5
     longer = max(x_pos, x_neg)
     frac = float(min(1.0, (x_pos + x_neg) / (2.0 * longer)))
     # level of the positive minus the negative side where only one side can be acquired

@@ -21,9 +21,10 @@ Kirchner's variant:
 3. the magnitude of the 2D DFT of ``p`` averaged over a bounded, stated subset of
    frames, divided by its local median (7 x 7) so that a peak stands out from the
    image's own spectrum;
-4. a peak of that ratio above ``PEAK_RATIO`` away from the lowest frequencies calls
-   resampling. A peak on the ``f_rows = 0`` line at ``f`` cycles/sample means the
-   columns were scaled: the interpolation phase ``frac(n / s)`` repeats with
+4. a peak of that ratio above ``PEAK_RATIO`` on the frequency axes, or above
+   ``OFF_AXIS_RATIO`` off them, away from the lowest frequencies, calls resampling.
+   A peak on the ``f_rows = 0`` line at ``f`` cycles/sample means the columns were
+   scaled: the interpolation phase ``frac(n / s)`` repeats with
    frequency ``|1/s - round(1/s)|``, so ``s = 1 / (1 - f)`` for ``1 < s <= 2`` (reported;
    ``1 / f`` is the alias for ``s >= 2``, listed in the evidence: the two cannot be told
    apart, as Popescu and Farid note). Peaks off both axes (rotation, oblique
@@ -33,7 +34,8 @@ Zero-filling is interpolation too (by sinc, shift-invariant): it leaves no perio
 predictor residual, and is left to the ``zero_filling`` trace. It does leave a weak
 line of raised p-map spectrum at twice its band edge (the residual of a band-limited
 image is narrow-band near the band edge, and its square doubles that frequency),
-which is why ``PEAK_RATIO`` is set well above what raw images show. NaN samples (outside
+which is why ``PEAK_RATIO`` (on the axes, where those lines cross) is set well
+above what raw images show. NaN samples (outside
 a resliced field of view) are excluded from the p-map.
 
 References
@@ -64,6 +66,7 @@ KIRCHNER_PREDICTOR = np.array([[-0.25, 0.5, -0.25], [0.5, 0.0, 0.5], [-0.25, 0.5
 #: neighbourhood radius of the fitted predictor (5 x 5)
 PREDICTOR_RADIUS = 2
 PEAK_RATIO = 8.0
+OFF_AXIS_RATIO = 5.0
 LOW_FREQ = 0.04
 MAX_FRAMES = 6
 MAX_SIDE = 256
@@ -222,8 +225,12 @@ def detect(frames: list[np.ndarray], *, workers: int = 2) -> ResamplingResult:
     far = np.sqrt(fy[:, None] ** 2 + fx[None, :] ** 2) >= LOW_FREQ
     r = np.where(far, ratio, 0.0)
     peak_ratio = float(r.max())
-    # local maxima above the threshold, one half-plane (the spectrum is symmetric)
-    locmax = (r == ndimage.maximum_filter(r, size=3, mode="wrap")) & (r >= PEAK_RATIO)
+    # local maxima above the threshold, one half-plane (the spectrum is symmetric);
+    # off the axes a lower threshold holds (band-limited images raise only axis lines)
+    on_axis = (np.abs(np.arange(rows) - rows // 2)[:, None] <= 1) | (
+        np.abs(np.arange(cols) - cols // 2)[None, :] <= 1)
+    threshold = np.where(on_axis, PEAK_RATIO, OFF_AXIS_RATIO)
+    locmax = (r == ndimage.maximum_filter(r, size=3, mode="wrap")) & (r >= threshold)
     # the half-plane f_rows > 0 (plus its edge lines, Nyquist included)
     locmax &= ((fy[:, None] > 0) | (fy[:, None] == -0.5)
                | ((fy[:, None] == 0) & ((fx[None, :] > 0) | (fx[None, :] == -0.5))))
