@@ -117,3 +117,24 @@ def test_upload_analyse_comment_decide_and_find_it_in_the_registry(server, brows
     page.screenshot(path=str(ARTIFACTS / "browser-05-registry.png"), full_page=True)
     context.close()
     assert violations == []
+
+
+def test_folder_picker_keeps_the_relative_names(server, browser, tmp_path):
+    """The folder picker (``webkitdirectory``) sends each file's path inside the folder."""
+    folder = tmp_path / "series_a"
+    (folder / "echo1").mkdir(parents=True)
+    (folder / "echo1" / "slices.npy").write_bytes(zero_filled_npy(82))
+    (folder / "readme.txt").write_text("invented acquisition notes\n")
+    context = browser.new_context()
+    page = context.new_page()
+    _sign_in(page, server.base_url, "rei")
+    page.goto(f"{server.base_url}/upload")
+    page.fill("#f-name", "Folder picked set")
+    page.fill("#f-source", "lab share (invented)")
+    page.set_input_files("#f-folder", str(folder))
+    assert "2 files" in page.inner_text("#file-summary")
+    page.click("#upload-submit")
+    page.wait_for_url(f"{server.base_url}/datasets/*")
+    names = page.locator("table.files-table tbody td:first-child").all_inner_texts()
+    assert sorted(names) == ["series_a/echo1/slices.npy", "series_a/readme.txt"]
+    context.close()
