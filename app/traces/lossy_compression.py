@@ -437,7 +437,7 @@ def combine(pix: PixelFinding, head: HeaderFinding) -> Trace:
         elif head.wavelet:
             summary += " JPEG 2000 leaves no 8 x 8 block grid to measure in the pixels."
         else:
-            summary += f" From the pixels: {pix.reason}"
+            summary += f" From the pixels: {pix.reason[0].lower()}{pix.reason[1:]}"
         estimates = {"method": "declared", "quality": q, "block_origin": None}
         status, conf = "present", 0.9
     else:
@@ -488,11 +488,16 @@ def analyse_lossy_compression(volume: Volume, ctx: AnalysisContext) -> Trace:
         pix = PixelFinding("absent", _COMPLEX_REASON)
     else:
         idx = _frames(volume, ctx)
-        parts = []
-        for _, block in volume.iter_slices(ctx.batch, scaled=False, indices=idx):
-            b = np.asarray(block)
-            parts.append(b.reshape(-1, *b.shape[-2:]))
-        images = np.concatenate(parts, axis=0)
-        pix = pixel_finding(images, workers=ctx.workers)
-        pix.frames = [int(i) for i in idx]
+        try:
+            parts = []
+            for _, block in volume.iter_slices(ctx.batch, scaled=False, indices=idx):
+                b = np.asarray(block)
+                parts.append(b.reshape(-1, *b.shape[-2:]))
+            images = np.concatenate(parts, axis=0)
+        except Exception as exc:  # noqa: BLE001 - undecodable pixels leave the header to speak
+            said = " ".join(str(exc).split())[:300]
+            pix = PixelFinding("inconclusive", f"The pixels could not be read ({said}).")
+        else:
+            pix = pixel_finding(images, workers=ctx.workers)
+            pix.frames = [int(i) for i in idx]
     return combine(pix, head)
