@@ -157,3 +157,13 @@ def test_scripts_upload_with_a_token_and_no_csrf(server) -> None:
     assert r.status_code == 201
     assert api.get(r.json()["url"].replace("/datasets/", "/api/datasets/")).json()[
         "uploader"] == "rei"
+
+
+def test_a_plain_form_post_is_redirected_to_the_new_dataset(server, uma) -> None:
+    """Without JavaScript the browser posts the form itself and follows a 303 (RFC 9110)."""
+    r = uma.post("/upload", data={"csrf_token": uma.csrf("/upload"), "name": "No-JS set",
+                                  "source": "a printed catalogue"},
+                 files={"files": ("plain.npy", zero_filled_npy(64))})
+    assert r.status_code == 303
+    page = uma.get(r.headers["location"])
+    assert page.status_code == 200 and "No-JS set" in page.text and "plain.npy" in page.text

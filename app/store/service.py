@@ -164,7 +164,11 @@ def set_admin(session: Session, user: User, admin: bool, *, actor: User | None) 
 # ---------------------------------------------------------------- sessions and tokens
 
 def create_web_session(session: Session, user: User, *, ttl: timedelta) -> tuple[WebSession, str]:
-    """A new browser session; returns the row and the cookie value (shown once)."""
+    """A new browser session; returns the row and the cookie value (shown once).
+
+    Expired sessions of every member are deleted on the way.
+    """
+    session.query(WebSession).filter(WebSession.expires_at <= utcnow()).delete()
     token = new_token()
     row = WebSession(
         id=token_digest(token),
