@@ -10,7 +10,9 @@ Pure functions (arrays in, dataclasses out). The analyser in
    each axis, and :func:`find_block_origin` locates the 8 x 8 grid (the data may
    have been cropped after compression);
 3. :func:`estimate_steps` estimates the quantisation step of each of the 64 DCT
-   frequencies from the periodicity of its coefficient histogram.
+   frequencies from the periodicity of its coefficient histogram;
+4. where no 8 x 8 grid is found, :func:`wavelet_deadzone` looks for the deadzone a
+   JPEG 2000 quantiser leaves in the 9/7 wavelet subbands (:func:`dwt97_2d`).
 
 References
 ----------
@@ -19,6 +21,8 @@ detection and quantizer estimation", IEEE Trans. Image Processing 12(2):230-235,
 2003.
 ITU-T Recommendation T.81 (1992) | ISO/IEC 10918-1, A.3.3 (the 8 x 8 forward DCT
 with the level shift of A.3.1, equal to the orthonormal 2D DCT-II).
+ITU-T Recommendation T.800 | ISO/IEC 15444-1, Annexes E and F (JPEG 2000 deadzone
+quantisation and the 9/7 wavelet transform).
 """
 
 from __future__ import annotations
@@ -498,12 +502,18 @@ def estimate_steps(coefs: np.ndarray, *, max_step: int = 255
     For each frequency, the coefficients of the decoded blocks lie near integer
     multiples of the step (blurred by about +-1 from rounding the decoded pixels).
     Every candidate step ``q = 2 .. max_step`` is scored by the share of informative
-    (non-zero) coefficients within one unit of a multiple of ``q``, against the
-    share expected by chance (``2 * tol / q``); the largest ``q`` with a share of at
-    least 0.85 and a binomial z score of at least 6 is the estimate (divisors of the
-    true step also fit; multiples of it do not, since odd multiples fall between).
-    The DC term is measured with its phase fitted, so an unknown level shift does not
-    matter.
+    coefficients within one unit of a multiple of ``q`` (coefficients above the
+    largest rounding pattern, 4, in whole or symmetrically cut lattice bins; see
+    :func:`_informative`), against the share expected by chance; the largest ``q``
+    with a share of at least 0.85 and a z score of at least 6 is the estimate,
+    refined to the best-fitting step just below it (the tolerance lets neighbours
+    fit too), and replaced by a divisor only where the divisor explains
+    coefficients the coarser step cannot (divisors of the true step also fit;
+    multiples of it do not, since odd multiples fall between). The DC term is
+    measured with its phase fitted, so an unknown level shift does not matter.
+    Steps are NaN where too few coefficients are informative ("too large to
+    measure": all fall in the zero bin) and 1 where at least 80 coefficients above
+    the rounding floor fit no step above 1 ("too small to measure").
 
     Parameters
     ----------
