@@ -311,19 +311,25 @@ def effective_rate_png(dataset_id: int, db: DbSession, settings: SettingsDep,
         raise NotFoundError("This dataset has no report yet.")
     d, a = _layout_param(layout, dims, axis)
     _check_inputs(family, acceleration, d, a)
-    path = _cache_dir(settings, rep.id) / f"effective-{family}-{d}-{a}-{acceleration:g}.png"
+    return Response(content=_chart_png(settings, rep.id, rep.data, family, d, a, acceleration),
+                    media_type="image/png", headers=PNG_HEADERS)
+
+
+def _chart_png(settings: Settings, report_id: int, report: dict[str, Any], family: str,
+               d: int, a: str, acceleration: float) -> bytes:
+    """The calculator's chart, cached per report, family, layout and marked R."""
+    path = _cache_dir(settings, report_id) / f"effective-{family}-{d}-{a}-{acceleration:g}.png"
 
     def make() -> bytes:
-        cpath = _cache_dir(settings, rep.id) / f"curve-{family}-{d}-{a}.json"
+        cpath = _cache_dir(settings, report_id) / f"curve-{family}-{d}-{a}.json"
         if cpath.is_file():
             curves = json.loads(cpath.read_text(encoding="utf-8"))
         else:
-            curves = curves_for_report(rep.data, family=family, dims=d, axis=a)
+            curves = curves_for_report(report, family=family, dims=d, axis=a)
             _write_atomic(cpath, json.dumps(curves).encode("utf-8"))
         return figures.to_png(figures.build_effective_curve(curves, marker=acceleration))
 
-    return Response(content=_cached_png(path, make), media_type="image/png",
-                    headers=PNG_HEADERS)
+    return _cached_png(path, make)
 
 
 @router.get("/datasets/{dataset_id}/methods.txt")
@@ -348,16 +354,33 @@ def methods_for(db: Session, dataset: Any, report: dict[str, Any] | None) -> str
 
 
 def warm_cache(settings: Settings, report_id: int, report: dict[str, Any]) -> int:
-    """Render every available figure of a report into its cache now; return how many.
+    """Render a report's figures, previews and default calculator chart into the cache now.
 
     ``rawproof demo`` calls this so that the first visit to each page is as quick
-    as later ones.
+    as later ones. Returns the number of PNGs written or found.
     """
     n = 0
+    cache = _cache_dir(settings, report_id)
     for spec in figures.available(report):
-        if _cached_png(_cache_dir(settings, report_id) / f"{spec.name}.png",
+        if _cached_png(cache / f"{spec.name}.png",
                        lambda name=spec.name: figures.render(name, report)) is not None:
             n += 1
+    for g in preview_index(settings, report_id):
+        for kind in PREVIEW_KINDS:
+            for i in range(g["n"]):
+                _cached_png(cache / f"preview-{g['group']}-{kind}-{i}.png",
+                            lambda g=g, kind=kind, i=i: figures.preview_png(
+                                _preview_array(settings, report_id, g["group"], kind, i)))
+                n += 1
+    try:
+        opts = calculator_options(report)
+    except ValidationError:
+        opts = None
+    if opts is not None:
+        dflt = opts["default"]
+        _chart_png(settings, report_id, report, dflt["family"], dflt["dims"], dflt["axis"],
+                   dflt["acceleration"])
+        n += 1
     return n
 
 
