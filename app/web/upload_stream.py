@@ -13,6 +13,7 @@ from collections.abc import AsyncIterator, Callable
 from dataclasses import dataclass, field
 
 from python_multipart.multipart import MultipartParser, parse_options_header
+from starlette.concurrency import run_in_threadpool
 
 from app.config import Settings
 from app.store.errors import ValidationError
@@ -159,7 +160,8 @@ class UploadStream:
         names = self.result.fields.get("relpath", [])
         for i, (filename, writer) in enumerate(self._writers):
             rel = names[i] if i < len(names) and names[i].strip() else filename
-            self.result.files.append((rel, writer.commit()))
+            # fsync and rename off the event loop
+            self.result.files.append((rel, await run_in_threadpool(writer.commit)))
         return self.result
 
     def abort(self) -> None:
