@@ -17,7 +17,8 @@ alone they must never be called JPEG; the table shows how many the wavelet
 deadzone rule calls inconclusive.
 
 Prints detection rates by quality, the quality error, the share with the right
-block origin, and the false detections on uncompressed images.
+block origin, the table entries measured per case (steps above 1) and the share
+of them equal to libjpeg's table, and the false detections on uncompressed images.
 """
 
 from __future__ import annotations
@@ -32,6 +33,7 @@ from scipy import ndimage
 
 from app.io.volume import Volume
 from app.traces.context import AnalysisContext
+from app.traces.jpeg_tables import scaled_table
 from app.traces.lossy_compression import analyse_lossy_compression
 from demo_data import synth
 
@@ -80,6 +82,15 @@ def _analyse(arr: np.ndarray) -> dict:
     return analyse_lossy_compression(vol, AnalysisContext(vol, workers=1)).to_dict()
 
 
+def _entries_ok(table: list | None, quality: int) -> tuple[int, int]:
+    """(measured entries > 1, of which equal to libjpeg's table at ``quality``)."""
+    if table is None:
+        return 0, 0
+    est = np.array([[np.nan if v is None else v for v in row] for row in table], dtype=float)
+    m = np.isfinite(est) & (est > 1)
+    return int(m.sum()), int(np.sum(est[m] == scaled_table(quality)[m]))
+
+
 def run(per_quality: int, n_uncompressed: int, seed: int, n_j2k: int = 0
         ) -> tuple[list[dict], list[dict]]:
     rng = np.random.default_rng(seed)
@@ -104,6 +115,7 @@ def run(per_quality: int, n_uncompressed: int, seed: int, n_j2k: int = 0
             jpeg_rows.append({
                 "quality": q, "way": way, "detected": t["status"] == "present",
                 "q_est": est["quality"], "origin_ok": est["block_origin"] == origin,
+                "entries": _entries_ok(t["evidence"].get("estimated_table"), q),
             })
     kinds = ["float32", "uint16", "8-bit", "zero-filled float", "zero-filled 8-bit", "zoom 8-bit"]
     unc_rows = []
@@ -135,11 +147,17 @@ def run(per_quality: int, n_uncompressed: int, seed: int, n_j2k: int = 0
     return jpeg_rows, unc_rows
 
 
+def _entries_cell(rows: list[dict]) -> str:
+    n = sum(r["entries"][0] for r in rows)
+    ok = sum(r["entries"][1] for r in rows)
+    return f"{n / max(len(rows), 1):.1f}/{100 * ok / max(n, 1):.1f}%"
+
+
 def report(jpeg_rows: list[dict], unc_rows: list[dict]) -> str:
     lines = ["JPEG cases (Pillow/libjpeg, greyscale; delivered as PNG, cropped PNG, "
              "uint16 rescale)",
              f"{'quality':>7} {'n':>4} {'detected':>9} {'q_found':>8} {'|dq| mean':>9} "
-             f"{'|dq| max':>8} {'origin ok':>9}"]
+             f"{'|dq| max':>8} {'origin ok':>9} {'entries measured/ok':>20}"]
     for q in QUALITIES:
         rows = [r for r in jpeg_rows if r["quality"] == q]
         det = [r for r in rows if r["detected"]]
@@ -149,7 +167,8 @@ def report(jpeg_rows: list[dict], unc_rows: list[dict]) -> str:
             f"{q:>7} {len(rows):>4} {100 * len(det) / len(rows):>8.1f}% "
             f"{len(qs):>8} {np.mean(err) if err else float('nan'):>9.2f} "
             f"{max(err) if err else float('nan'):>8} "
-            f"{100 * np.mean([r['origin_ok'] for r in det]) if det else float('nan'):>8.1f}%")
+            f"{100 * np.mean([r['origin_ok'] for r in det]) if det else float('nan'):>8.1f}% "
+            f"{_entries_cell(det):>20}")
     le90 = [r for r in jpeg_rows if r["quality"] <= 90]
     at95 = [r for r in jpeg_rows if r["quality"] == 95]
     lines.append(f"detected at quality <= 90: {sum(r['detected'] for r in le90)}/{len(le90)} "
