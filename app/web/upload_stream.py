@@ -158,10 +158,14 @@ class UploadStream:
                 await _drain(stream)
             raise
         names = self.result.fields.get("relpath", [])
-        for i, (filename, writer) in enumerate(self._writers):
-            rel = names[i] if i < len(names) and names[i].strip() else filename
-            # fsync and rename off the event loop
-            self.result.files.append((rel, await run_in_threadpool(writer.commit)))
+        try:
+            for i, (filename, writer) in enumerate(self._writers):
+                rel = names[i] if i < len(names) and names[i].strip() else filename
+                # fsync and rename off the event loop
+                self.result.files.append((rel, await run_in_threadpool(writer.commit)))
+        except BaseException:
+            self.abort()  # removes what was not committed yet
+            raise
         return self.result
 
     def abort(self) -> None:
