@@ -250,3 +250,17 @@ def test_preview_png_roundtrip() -> None:
     np.testing.assert_array_equal(_decode(figures.preview_png(a)), a)
     with pytest.raises(ValueError):
         figures.preview_png(np.zeros(5, dtype=np.uint8))
+
+
+def test_effective_curve_marks_the_calculators_value() -> None:
+    """The chart draws the dataset curve, the raw curve and the calculator's own R_eff
+    at the chosen R (not a value read off the coarser curve)."""
+    curves = {"nominal": [2, 4, 8], "dataset": [1.2, 2.3, 4.1], "raw": [2, 4, 8],
+              "family": "polynomial", "dims": "cols"}
+    fig = figures.build_effective_curve(curves, marker=4.0, marker_effective=2.42)
+    lines = {ln.get_label(): ln for ln in fig.axes[0].get_lines()}
+    np.testing.assert_allclose(lines["this dataset's acquired support"].get_ydata(),
+                               [1.2, 2.3, 4.1])
+    np.testing.assert_allclose(lines["raw acquisition (full grid)"].get_ydata(), [2, 4, 8])
+    mark = lines["R = 4: R_eff = 2.42"]
+    assert mark.get_xdata()[0] == 4.0 and mark.get_ydata()[0] == pytest.approx(2.42)

@@ -327,7 +327,10 @@ def _chart_png(settings: Settings, report_id: int, report: dict[str, Any], famil
         else:
             curves = curves_for_report(report, family=family, dims=d, axis=a)
             _write_atomic(cpath, json.dumps(curves).encode("utf-8"))
-        return figures.to_png(figures.build_effective_curve(curves, marker=acceleration))
+        here = effective_summary(report, family=family, acceleration=acceleration, dims=d,
+                                 axis=a)["effective_acceleration"]
+        return figures.to_png(figures.build_effective_curve(curves, marker=acceleration,
+                                                            marker_effective=here))
 
     return _cached_png(path, make)
 

@@ -468,7 +468,8 @@ def build_periodicity(report: dict[str, Any]) -> Figure | None:
     return fig
 
 
-def build_effective_curve(curves: dict[str, Any], *, marker: float | None = None) -> Figure:
+def build_effective_curve(curves: dict[str, Any], *, marker: float | None = None,
+                          marker_effective: float | None = None) -> Figure:
     """Effective against nominal acceleration: this dataset's support next to a raw grid.
 
     Parameters
@@ -479,6 +480,9 @@ def build_effective_curve(curves: dict[str, Any], *, marker: float | None = None
         and ``dims`` (labels).
     marker : float, optional
         A nominal R to mark on the dataset's curve (the calculator's choice).
+    marker_effective : float, optional
+        The calculator's own R_eff at ``marker`` (drawn there instead of a value
+        read off the curve, so the chart and the number beside it agree).
 
     References
     ----------
@@ -499,12 +503,14 @@ def build_effective_curve(curves: dict[str, Any], *, marker: float | None = None
         if ds.size == nominal.size:
             ax.plot(nominal, ds, color=ORANGE, linestyle="-", marker="o", markersize=4,
                     linewidth=2.0, label="this dataset's acquired support")
-            if marker is not None and nominal.min() <= marker <= nominal.max():
-                y = float(np.interp(marker, nominal, ds))
+            if marker is not None and (marker_effective is not None
+                                       or nominal.min() <= marker <= nominal.max()):
+                y = (float(marker_effective) if marker_effective is not None
+                     else float(np.interp(marker, nominal, ds)))
                 ax.plot([marker], [y], linestyle="none", marker="D", markersize=9,
                         markerfacecolor="white", markeredgecolor=INK, markeredgewidth=1.6,
                         label=f"R = {marker:g}: R_eff = {y:.2f}")
-        ax.set_xlim(left=1)
+        ax.set_xlim(left=1, right=max(float(nominal.max()), marker or 0) + 0.5)
         ax.set_ylim(bottom=0)
     fam = str(curves.get("family") or "").replace("_", " ")
     dims = str(curves.get("dims") or "")
