@@ -432,10 +432,22 @@ def k_masked_noisy_edge(rng: np.random.Generator) -> Case:
                        background_masking="present"))
 
 
+def k_offset_floor(rng: np.random.Generator) -> Case:
+    """One channel's magnitude lifted by a constant: no noise law holds, so inconclusive.
+
+    A vendor offset makes the air look like a chi law with many channels; the
+    truth is one channel, so the only acceptable answer is not to claim a law.
+    """
+    p = _params(rng)
+    mag = np.abs(_acq(p, 1)[:, 0]) + float(rng.uniform(1.0, 6.0)) * p["sigma"]
+    return Case("magnitude 1 channel + offset floor", Volume.from_array(mag),
+                _truth(magnitude_only="present", coil_combination="inconclusive"))
+
+
 KINDS: list[Callable[[np.random.Generator], Case]] = [
     k_low_snr, k_gibbs, k_unequal_noise, k_many_slices, k_zero_filled_single,
     k_ghost_single, k_uint16_rayleigh_small, k_clip_small, k_windowed_uint8,
-    k_masked_noisy_edge, k_fake_kspace, k_fake_kspace_masked,
+    k_masked_noisy_edge, k_fake_kspace, k_fake_kspace_masked, k_offset_floor,
     k_complex_single, k_complex_multicoil, k_complex_kspace, k_magnitude_single,
     k_rss, k_rss, k_rss_uint16, k_rss_small_sigma, k_single_uint16, k_zero_filled,
     k_correlated, k_ghosting, k_real_signed, k_complex_zero_imag, k_masked,

@@ -257,3 +257,20 @@ def test_kspace_made_from_rss_images_shows_the_chi_law() -> None:
     assert t.status == "present" and t.estimates["noise_model"] == "noncentral_chi"
     assert abs(t.estimates["effective_channels"] - 8) <= 1.6
     assert t.estimates["sigma"] == pytest.approx(0.01, rel=0.1)
+
+
+@pytest.mark.parametrize("offset", [0.02, 0.05])
+def test_offset_floor_is_not_called_a_combination(offset: float) -> None:
+    """Rayleigh air (one channel, sigma 0.01) lifted by a constant: no law claimed.
+
+    Truth: one channel; the offset leaves no values near zero, which no pure
+    noise floor does (the Rayleigh and chi laws reach 0: Gudbjartsson and Patz
+    1995, Constantinides 1997). Without the lower-tail check the moments read
+    it as a chi law with 7 to 30 channels.
+    """
+    mag = synth.rss(synth.acquire((128, 128), n_coils=1, n_slices=2, sigma=0.01, seed=17),
+                    axis=1) + offset
+    t = _run(mag)
+    assert t.status == "inconclusive"
+    assert t.evidence["lower_tail_ratio"] > 3
+    assert "offset" in t.summary

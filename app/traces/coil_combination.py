@@ -48,6 +48,7 @@ KS_SAMPLES = 2000
 # the choice between the laws rests on the estimated L.
 KS_ACCEPT = 0.08
 L_SPLIT = 1.5
+TAIL_RATIO = 3.0
 CONTAMINATION_RATIO = 1.15
 CONTAMINATION_SKEW = 0.1
 L_GAUSSIAN = 64.0
@@ -147,11 +148,39 @@ def fit_magnitude_background(x: np.ndarray, *, step: float = 0.0) -> dict[str, A
         chosen = "rayleigh"
     elif np.isfinite(L) and L > L_GAUSSIAN and ok["gaussian"]:
         chosen = "gaussian"
+    tail = float("nan")
+    if chosen in ("noncentral_chi", "rayleigh"):
+        tail = lower_tail_ratio(spread, fits[chosen])
+        if tail > TAIL_RATIO:
+            chosen = "unknown"
     sigma = {"noncentral_chi": chi.sigma, "rayleigh": fits["rayleigh"].sigma,
              "gaussian": fits["gaussian"].sigma}.get(chosen)
     return {"chosen": chosen, "fits": fits, "channels": L, "sigma": sigma, "m1": m1,
             "m2": m2, "tested": tested, "estimator": estimator,
-            "channels_quantiles": Lq, "excess_skewness": excess_skew}
+            "channels_quantiles": Lq, "excess_skewness": excess_skew, "lower_tail_ratio": tail}
+
+
+def lower_tail_ratio(x: np.ndarray, fit: nl.LawFit) -> float:
+    """How much more of the fitted law lies below the sample's low quantile than should.
+
+    ``F(q_p) / p`` for the sample quantile ``q_p`` at ``p = max(0.005, 20 / n)``:
+    about 1 when the law holds down to zero. A pure noise floor reaches zero
+    (the chi laws have support from 0); a background lifted by a constant offset
+    holds too few low values, so the ratio grows (about 5 for Rayleigh noise on
+    an offset). Ringing and ghosts add to the upper tail, not here.
+
+    References
+    ----------
+    Gudbjartsson and Patz, MRM 1995; Constantinides, Atalar and McVeigh, MRM
+    1997 (support of the background laws); the check itself is common practice,
+    no source.
+    """
+    x = np.asarray(x, dtype=np.float64).ravel()
+    if x.size == 0 or fit.sigma <= 0:
+        return float("nan")
+    p = max(0.005, 20.0 / x.size)
+    q = float(np.quantile(x, p))
+    return float(fit.frozen().cdf(q) / p)
 
 
 def _evidence_from_fits(x: np.ndarray, res: dict, lo: float, hi: float,
@@ -284,19 +313,25 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
                      "per_channel": per_channel, "n_coils": volume.n_coils,
                      "estimator": res["estimator"],
                      "channels_quantiles": _r4(res["channels_quantiles"]),
-                     "excess_skewness": _r4(res["excess_skewness"])})
+                     "excess_skewness": _r4(res["excess_skewness"]),
+                     "lower_tail_ratio": _r4(res["lower_tail_ratio"])})
     chosen = res["chosen"]
     L = res["channels"]
     estimates = {"noise_model": chosen, "sigma": _r4(res["sigma"]),
                  "effective_channels": evidence["effective_channels"]}
     stat = res["fits"].get(chosen)
     if chosen == "unknown":
-        best = min(res["fits"].values(), key=lambda f: f.statistic)
-        return Trace(
-            TRACE_ID, "inconclusive", 0.2,
-            f"The background fits no candidate noise law (best: {best.law}, KS distance "
-            f"{best.statistic:.3f} > {KS_ACCEPT}; estimated L = {L:.2g}).",
-            estimates, evidence)
+        tail = res["lower_tail_ratio"]
+        if np.isfinite(tail) and tail > TAIL_RATIO:
+            why = (f"the air holds {tail:.1f} times too few values near zero for a pure noise "
+                   "floor (an offset added to the background?)")
+        else:
+            best = min(res["fits"].values(), key=lambda f: f.statistic)
+            why = (f"best: {best.law}, KS distance {best.statistic:.3f} > {KS_ACCEPT}; "
+                   f"estimated L = {L:.2g}")
+        return Trace(TRACE_ID, "inconclusive", 0.2,
+                     f"The background fits no candidate noise law ({why}).", estimates,
+                     evidence)
     conf = float(np.clip(1.0 - stat.statistic / (2 * KS_ACCEPT), 0.3, 0.97))
     robust = ("; from the lower quantiles, the upper tail carries stray signal"
               if res["estimator"] == "quantiles" else "")
