@@ -127,13 +127,17 @@ def classify_values(volume: Volume, bg: Background) -> ValueKind:
         re = np.where(fin, block.real, 0.0)
         if fin.any():
             peak = max(peak, float(np.max(np.abs(re))))
-        reals.append((re, fin))
+        if kspace:
+            reals.append(re)
+        else:
+            n_neg += int(np.sum(re < 0))
         n_fin += int(fin.sum())
     if n_fin == 0:
         return ValueKind("unknown", 0.0, None, None, None)
     # values from an inverse FFT carry round-off: negatives count beyond 1e-5 of the peak
     tol = NEG_TOL_FFT * peak if kspace else 0.0
-    n_neg = sum(int(np.sum((re < -tol) & fin)) for re, fin in reals)
+    if kspace:
+        n_neg = sum(int(np.sum(re < -tol)) for re in reals)
     imag_fraction = imag_e / total_e if is_complex and total_e > 0 else (0.0 if is_complex
                                                                         else None)
     neg_fraction = n_neg / n_fin
