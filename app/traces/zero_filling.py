@@ -43,6 +43,11 @@ from app.traces.base import Trace, register
 TRACE_ID = "zero_filling"
 #: a step of at least this many dB (median over the band) marks an edge
 STEP_THRESHOLD_DB = 4.5
+#: band of the other axis assumed before it is measured (fraction of its size)
+DEFAULT_BAND_SUPPORT = 0.4
+#: an edge at half the distance of the best one is the true edge (the best one the end
+#: of the magnitude echo) when its score reaches this fraction of the best score
+HALF_RULE_RATIO = 0.6
 #: the edge is where the profile has fallen this fraction of the drop
 CROSSING_LEVEL = 0.35
 #: support fractions below this are not searched (padding above 5x)
@@ -209,7 +214,7 @@ def _side_edge(
     lo, hi = max(0, half - 3), min(len(score), half + 3)
     if hi > lo and np.any(np.isfinite(score[lo:hi])):
         j = lo + int(np.nanargmax(score[lo:hi]))
-        if score[j] >= STEP_THRESHOLD_DB:
+        if score[j] >= max(STEP_THRESHOLD_DB, HALF_RULE_RATIO * best):
             d = j
     # the echo just outside a magnitude image's region is strongest near the edge, so
     # the crossing level sits nearer the in-band level than the mid-point
@@ -305,18 +310,25 @@ def detect(spec: sp.Spectrum) -> dict[str, AxisSupport]:
         return dict(spec.derived["zero_filling"])
     symmetric = not spec.complex_input and spec.domain == "image"
     out: dict[str, AxisSupport] = {}
-    first = {}
-    for i, ax in enumerate(("rows", "cols")):
-        first[ax] = axis_support(
-            band_lines(spec.mean_log, i), spec.profiles[ax], axis=ax, symmetric=symmetric
-        )
-    # second pass: the band of the other axis now sits inside its measured region
-    for i, ax in enumerate(("rows", "cols")):
-        other = first["cols" if ax == "rows" else "rows"].support_fraction
-        out[ax] = axis_support(
-            band_lines(spec.mean_log, i, other), spec.profiles[ax], axis=ax,
-            symmetric=symmetric,
-        )
+    # the band of the other axis must sit inside that axis's acquired region, which
+    # is not known yet: a first pass assumes a band that fits padding up to 2.5x, a
+    # second uses what the first found (the whole axis where nothing was: a wide band
+    # keeps the object's rings out), a third retries an axis still without an edge
+    # inside a narrower region found on the other axis
+    def run(i: int, ax: str, other_support: float) -> AxisSupport:
+        return axis_support(band_lines(spec.mean_log, i, other_support), spec.profiles[ax],
+                            axis=ax, symmetric=symmetric)
+
+    names = ("rows", "cols")
+    first = {ax: run(i, ax, DEFAULT_BAND_SUPPORT) for i, ax in enumerate(names)}
+    for i, ax in enumerate(names):
+        out[ax] = run(i, ax, first[names[1 - i]].support_fraction)
+    for i, ax in enumerate(names):
+        other = out[names[1 - i]]
+        if not out[ax].found and other.found and other.support_fraction < DEFAULT_BAND_SUPPORT:
+            retry = run(i, ax, other.support_fraction)
+            if retry.found:
+                out[ax] = retry
     if "slices" in spec.log_profiles:
         out["slices"] = axis_support(
             spec.log_profiles["slices"], spec.profiles["slices"], axis="slices",
