@@ -83,9 +83,9 @@ async def upload(request: Request, user: StreamingUser, settings: SettingsDep):
                           max_bytes=settings.max_upload_bytes, before_first_file=check)
     try:
         parsed = await parser.consume(request.stream())
+        check(parsed.fields)  # again, for a form that carried no file at all
     except StoreError as exc:
         return _error(request, settings, exc.status_code, exc, parser.result.fields)
-    check(parsed.fields)
     fields = {k: parsed.first(k) for k in FORM_FIELDS}
     try:
         ds_id, dups = await run_in_threadpool(
