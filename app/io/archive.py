@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import stat
 import zipfile
+import zlib
 from pathlib import Path, PurePosixPath
 
 from app.config import Limits
@@ -116,9 +117,9 @@ def extract_zip(archive: Path, target: Path, limits: Limits) -> list[str]:
         for info, rel in plan:
             where = f"{archive.name}:{info.filename}"
             dest = target.joinpath(*rel.parts)
-            dest.parent.mkdir(parents=True, exist_ok=True)
             count = 0
             try:
+                dest.parent.mkdir(parents=True, exist_ok=True)
                 with zf.open(info) as src, open(dest, "wb") as out:
                     while True:
                         chunk = src.read(_CHUNK)
@@ -131,7 +132,8 @@ def extract_zip(archive: Path, target: Path, limits: Limits) -> list[str]:
                             raise InputError("zip_bomb", f"{where} expands beyond its declared "
                                              "size or the limits; extraction stopped.", where)
                         out.write(chunk)
-            except (zipfile.BadZipFile, OSError, EOFError, RuntimeError) as exc:
+            except (zipfile.BadZipFile, OSError, EOFError, RuntimeError, zlib.error,
+                    NotImplementedError, ValueError) as exc:
                 raise InputError("unreadable", f"{where} could not be extracted: {one_line(exc)}",
                                  where) from exc
     return warnings

@@ -13,7 +13,9 @@ NumPy Enhancement Proposal 1, "A simple file format for NumPy arrays" (NEP 1).
 from __future__ import annotations
 
 import json
+import tokenize
 import zipfile
+import zlib
 from pathlib import Path
 from typing import Any
 
@@ -24,6 +26,7 @@ from app.io.options import (
     ReadOptions,
     array_axes,
     check_array_bytes,
+    declared_bytes,
     is_complex_pairs,
     one_line,
 )
@@ -74,6 +77,9 @@ def _check_shape(shape: tuple[int, ...], path: Path, key: str = "") -> None:
     if len(shape) < 2:
         raise InputError("not_an_image", f"{where} has shape {list(shape)}; an image needs at "
                          "least two dimensions (rows, cols).", str(path))
+    if min(shape) < 0:
+        raise InputError("bad_header", f"{where} declares a negative size in shape "
+                         f"{list(shape)}.", str(path))
     if min(shape) == 0:
         raise InputError("empty", f"{where} has shape {list(shape)}: it holds no values.",
                          str(path))
@@ -124,12 +130,12 @@ def read_npy(path: Path, opts: ReadOptions) -> list[Volume]:
     try:
         with open(path, "rb") as fh:
             shape, dtype, _fortran, offset = _read_npy_header(fh)
-    except (ValueError, OSError, SyntaxError) as exc:
+    except (ValueError, OSError, SyntaxError, tokenize.TokenError) as exc:
         raise InputError("unreadable", f"{path.name} is not a valid .npy file: {one_line(exc)}",
                          str(path)) from exc
     _check_dtype(dtype, path)
     _check_shape(shape, path)
-    nbytes = int(np.prod(shape, dtype=np.int64)) * dtype.itemsize
+    nbytes = declared_bytes(shape, dtype.itemsize)
     check_array_bytes(nbytes, opts.limits, str(path), path.name)
     have = path.stat().st_size - offset
     if have < nbytes:
@@ -168,7 +174,8 @@ def read_npz(path: Path, opts: ReadOptions) -> list[Volume]:
             try:
                 with zf.open(info) as fh:
                     shape, dtype, _f, _o = _read_npy_header(fh)
-            except (ValueError, OSError, SyntaxError, zipfile.BadZipFile) as exc:
+            except (ValueError, OSError, SyntaxError, zipfile.BadZipFile, zlib.error,
+                    NotImplementedError, EOFError, tokenize.TokenError) as exc:
                 raise InputError("unreadable", f"{path.name}[{key}] is not a valid array: "
                                  f"{one_line(exc)}", str(path)) from exc
             headers[key] = (shape, dtype)
@@ -178,12 +185,13 @@ def read_npz(path: Path, opts: ReadOptions) -> list[Volume]:
     shape, dtype = headers[key]
     _check_dtype(dtype, path)
     _check_shape(shape, path, key)
-    check_array_bytes(int(np.prod(shape, dtype=np.int64)) * dtype.itemsize, opts.limits,
+    check_array_bytes(declared_bytes(shape, dtype.itemsize), opts.limits,
                       str(path), f"{path.name}[{key}]")
     try:
         with np.load(path, allow_pickle=False) as npz:
             arr = npz[key]
-    except (ValueError, OSError, zipfile.BadZipFile, EOFError) as exc:
+    except (ValueError, OSError, zipfile.BadZipFile, EOFError, zlib.error,
+            NotImplementedError) as exc:
         raise InputError("truncated", f"{path.name}[{key}] could not be read: {one_line(exc)}",
                          str(path)) from exc
     meta = _sidecar(path)
@@ -215,6 +223,6 @@ def _choose_key(headers: dict[str, tuple[tuple[int, ...], np.dtype]], wanted: st
 
     def size(k: str) -> int:
         shape, dtype = headers[k]
-        return int(np.prod(shape, dtype=np.int64)) * dtype.itemsize if len(shape) >= 2 else -1
+        return declared_bytes(shape, dtype.itemsize) if len(shape) >= 2 else -1
 
     return max(headers, key=size)

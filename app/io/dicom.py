@@ -19,8 +19,10 @@ NEMA PS3.5, Section 8.2 and Annex A.4 (encapsulated transfer syntaxes).
 from __future__ import annotations
 
 import contextlib
+import io
 import logging
 import math
+import os
 import warnings as _warnings
 from collections import defaultdict
 from collections.abc import Iterator
@@ -147,25 +149,93 @@ def _forced(path: Path) -> Any:
     """A file named like DICOM but without the preamble and meta header (older
     implementations wrote those): read it if it holds an image or names its SOP
     class, else None."""
-    import pydicom
 
     try:
         with _quiet_pydicom():
-            ds = pydicom.dcmread(str(path), force=True)
+            ds = _dcmread(path, force=True)
         ok = ("PixelData" in ds and int(ds.get("Rows", 0) or 0) > 0) or "SOPClassUID" in ds
     except Exception:  # noqa: BLE001 - not DICOM after all
         return None
     return ds if ok else None
 
 
-def _read_dataset(path: Path) -> Any:
+class _CappedReader(io.BufferedReader):
+    """A file whose reads never ask for more bytes than are left in it.
+
+    CPython allocates the requested size before reading, so a forged element
+    length (say 0xFFFFFFF0) in a small file would allocate gigabytes inside
+    pydicom's parser; capping each read at the remaining size keeps the
+    allocation at most the file's size and changes nothing else (a short read is
+    what the end of the file gives anyway).
+    """
+
+    def __init__(self, path: Path) -> None:
+        super().__init__(io.FileIO(str(path), "rb"))
+        self._size = os.fstat(self.fileno()).st_size
+
+    def read(self, size: int | None = -1) -> bytes:
+        if size is not None and size > 0:
+            size = min(size, max(0, self._size - self.tell()))
+            if size == 0:
+                return b""
+        return super().read(size)
+
+
+def _dcmread(path: Path, **kwargs: Any) -> Any:
     import pydicom
+
+    with _CappedReader(path) as fh:
+        return pydicom.dcmread(fh, **kwargs)
+
+
+def _check_deferred_lengths(ds: Any, path: Path) -> None:
+    """Refuse elements whose declared length runs past the end of the file.
+
+    pydicom defers reading large values and then asks the file for the declared
+    number of bytes at once, which allocates that many bytes first (4 GiB for a
+    forged length of 0xFFFFFFF0 in a file of a few kB). The declared length is
+    checked against the file size before any deferred value is read.
+    """
+    from pydicom.dataelem import RawDataElement
+
+    size = path.stat().st_size
+    for tag in list(ds.keys()):
+        elem = ds.get_item(tag, keep_deferred=True)
+        if not isinstance(elem, RawDataElement) or elem.value is not None:
+            continue
+        length = int(elem.length)
+        if length != 0xFFFFFFFF and int(elem.value_tell) + length > size:
+            raise InputError(
+                "truncated_dicom",
+                f"{path.name}: element {elem.tag} declares {length} bytes, beyond the end of "
+                f"the file ({size} bytes): damaged or truncated file.",
+                str(path),
+            )
+
+
+@contextlib.contextmanager
+def _damaged(path: Path) -> Iterator[None]:
+    """Turn a pydicom failure on a damaged element (wrong length for its VR, an
+    unknown VR, a number that does not parse) into the reader's InputError."""
+    try:
+        yield
+    except (InputError, MemoryError, KeyboardInterrupt):
+        raise
+    except Exception as exc:  # noqa: BLE001 - pydicom raises many types on damaged elements
+        raise InputError(
+            "truncated_dicom",
+            f"{path.name} has a damaged header element: {one_line(exc)}",
+            str(path),
+        ) from exc
+
+
+def _read_dataset(path: Path) -> Any:
     from pydicom.errors import InvalidDicomError
 
     try:
         with _quiet_pydicom(), _warnings.catch_warnings(record=True) as caught:
             _warnings.simplefilter("always")
-            ds = pydicom.dcmread(str(path), defer_size="1 MB")
+            ds = _dcmread(path, defer_size="1 MB")
     except InvalidDicomError as exc:
         ds = _forced(path) if path.suffix.lower() in (".dcm", ".dicom", ".ima") else None
         if ds is None:
@@ -179,6 +249,7 @@ def _read_dataset(path: Path) -> Any:
             f"{path.name} could not be parsed as DICOM (damaged or truncated): {one_line(exc)}",
             str(path),
         ) from exc
+    _check_deferred_lengths(ds, path)
     if "PixelData" not in ds and "FloatPixelData" not in ds and "DoubleFloatPixelData" not in ds:
         cut = [str(w.message) for w in caught if "end of file" in str(w.message).lower()]
         if cut or len(ds) == 0:
@@ -784,7 +855,14 @@ def read_dicom(paths: list[Path], opts: ReadOptions) -> list[Volume]:
                 raise
             errors.append(exc)
             continue
-        meta = _meta(ds)
+        try:
+            with _damaged(p):
+                meta = _meta(ds)
+        except InputError as exc:
+            if len(paths) == 1:
+                raise
+            errors.append(exc)
+            continue
         total += meta.declared_bytes
         check_array_bytes(total, opts.limits, str(p), "This DICOM input")
         item = _Item(p, ds, meta)
@@ -795,7 +873,8 @@ def read_dicom(paths: list[Path], opts: ReadOptions) -> list[Volume]:
     out: list[Volume] = []
     for items in [*groups.values(), *singles]:
         try:
-            out.append(_volume_of(items, opts))
+            with _damaged(items[0].path):
+                out.append(_volume_of(items, opts))
         except InputError as exc:
             if len(groups) + len(singles) == 1 and not errors:
                 raise

@@ -20,7 +20,14 @@ from typing import Any
 import numpy as np
 
 from app.errors import InputError
-from app.io.options import ReadOptions, array_axes, is_complex_pairs, one_line
+from app.io.options import (
+    ReadOptions,
+    array_axes,
+    check_array_bytes,
+    declared_bytes,
+    is_complex_pairs,
+    one_line,
+)
 from app.io.volume import Header, Volume
 
 
@@ -82,6 +89,35 @@ class ComplexPairs:
         return a if dtype is None else a.astype(dtype)
 
 
+class CheckedReads:
+    """A lazily read h5py Dataset whose read errors (a damaged chunk, a failed
+    filter) surface as :class:`InputError` naming the file, not as h5py's OSError."""
+
+    def __init__(self, dataset: Any, path: Path) -> None:
+        self._ds = dataset
+        self._path = path
+        self.shape = tuple(int(s) for s in dataset.shape)
+        self.dtype = dataset.dtype
+        self.ndim = len(self.shape)
+        self.attrs = dataset.attrs
+
+    @property
+    def dataset(self) -> Any:
+        """The h5py Dataset read from (lazily)."""
+        return self._ds
+
+    def __getitem__(self, key: Any) -> np.ndarray:
+        try:
+            return np.asarray(self._ds[key])
+        except (OSError, RuntimeError, ValueError, KeyError) as exc:
+            raise InputError("truncated", f"{self._path.name}: part of the dataset could not "
+                             f"be read: {one_line(exc)}", str(self._path)) from exc
+
+    def __array__(self, dtype: Any = None, copy: Any = None) -> np.ndarray:
+        a = self[()]
+        return a if dtype is None else a.astype(dtype)
+
+
 def _datasets(f: Any) -> dict[str, Any]:
     import h5py
 
@@ -122,7 +158,11 @@ def read_hdf5(path: Path, opts: ReadOptions) -> list[Volume]:
         raise InputError("unreadable", f"{path.name} is not a readable HDF5 file: {one_line(exc)}",
                          str(path)) from exc
     opts.stack.callback(f.close)
-    all_ds = _datasets(f)
+    try:
+        all_ds = _datasets(f)
+    except (OSError, RuntimeError, ValueError, KeyError) as exc:
+        raise InputError("unreadable", f"{path.name}: the HDF5 object tree could not be "
+                         f"walked: {one_line(exc)}", str(path)) from exc
     if opts.dataset is not None:
         key = opts.dataset.strip("/")
         if key not in all_ds:
@@ -149,6 +189,8 @@ def read_hdf5(path: Path, opts: ReadOptions) -> list[Volume]:
             opts.warnings.append(f"{path.name}: analysed the dataset {key!r}; also present: "
                                  f"{', '.join(others[:10])} (choose with --dataset).")
     ds = all_ds[key]
+    check_array_bytes(declared_bytes(ds.shape, ds.dtype.itemsize), opts.limits, str(path),
+                      f"{path.name}:{key}")
     domain = opts.domain or ("kspace" if _is_kspace_name(key) else "image")
     attr_cax = ds.attrs.get("coil_axis")
     cax = opts.coil_axis if opts.coil_axis is not None else (
@@ -159,12 +201,12 @@ def read_hdf5(path: Path, opts: ReadOptions) -> list[Volume]:
     fields: dict[str, Any] = {"dataset": key, "bit_depth": ds.dtype.itemsize * 8}
     raw = {str(k): str(v)[:200] for k, v in list(f.attrs.items())[:50]}
     raw.update({f"{key}.{k}": str(v)[:200] for k, v in list(ds.attrs.items())[:50]})
-    data: Any = ds
+    data: Any = CheckedReads(ds, path)
     nd = len(ds.shape)
     if is_complex_pairs(tuple(ds.shape), ds.dtype):
         if cax is not None and -nd <= cax < nd:
             cax = cax % nd
-        data = ComplexPairs(ds)
+        data = ComplexPairs(data)
         nd -= 1
         fields["complex_from_last_axis"] = True
         opts.warnings.append(f"{path.name}:{key}: the last axis (size 2) was read as real and "

@@ -22,7 +22,7 @@ from typing import Any
 import numpy as np
 
 from app.errors import InputError
-from app.io.options import ReadOptions, check_array_bytes, one_line
+from app.io.options import ReadOptions, check_array_bytes, declared_bytes, one_line
 from app.io.volume import Header, Volume
 
 #: NIfTI xform codes (nifti1.h, NIFTI_XFORM_*).
@@ -101,7 +101,10 @@ def read_nifti(path: Path, opts: ReadOptions) -> list[Volume]:
     if dtype.fields is not None or dtype.kind not in "biufc":
         raise InputError("unsupported_dtype", f"{path.name} stores {dtype} voxels (RGB or "
                          "structured); rawproof reads scalar or complex voxels.", str(path))
-    nbytes = int(np.prod(shape, dtype=np.int64)) * dtype.itemsize
+    if any(n <= 0 for n in shape):
+        raise InputError("bad_header", f"{path.name}: the header declares shape {list(shape)}; "
+                         "every dimension must be at least 1.", str(path))
+    nbytes = declared_bytes(shape, dtype.itemsize)
     check_array_bytes(nbytes, opts.limits, str(path), path.name)
     _check_file_size(path, hdr, nbytes)
     while len(shape) > 2 and shape[-1] == 1:

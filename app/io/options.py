@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import contextlib
+import math
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -37,10 +38,24 @@ class ReadOptions:
     warnings: list[str] = field(default_factory=list)
 
 
+def declared_bytes(shape: Any, itemsize: int) -> int:
+    """Bytes an array of ``shape`` needs, in exact integer arithmetic.
+
+    A product in int64 (``np.prod``) wraps around for absurd declared shapes and
+    can come out small or negative; Python integers do not. Negative sizes give -1.
+    """
+    dims = [int(s) for s in shape]
+    if any(d < 0 for d in dims):
+        return -1
+    return math.prod(dims) * int(itemsize)
+
+
 def check_array_bytes(n_bytes: int, limits: Limits, path: str, what: str) -> None:
     """Raise ``InputError("too_large")`` when a declared size exceeds the ceiling."""
     from app.errors import InputError
 
+    if n_bytes < 0:
+        raise InputError("bad_header", f"{what} declares a negative array size.", path)
     if n_bytes > limits.max_array_bytes:
         raise InputError(
             "too_large",
