@@ -155,3 +155,28 @@ def test_pydicom_mr_images(name: str, levels: int) -> None:
     assert t.estimates["distinct_levels"] == levels
     assert t.evidence["stated_bits"] == int(ds.BitsStored)
     assert t.status == "absent"
+
+
+def test_kspace_made_from_8_bit_images_shows_256_levels() -> None:
+    """The FFT of uint8 images posing as k-space: the images behind it hold <= 256 levels.
+
+    Truth: 8-bit levels 0..255 (from a root-sum-of-squares image); the inverse
+    FFT brings them back up to float32 round-off, far below one level.
+    """
+    mag = _rss(10, sigma=0.02)
+    u = np.round(mag / mag.max() * 255)
+    k = synth.to_kspace(u.astype(np.complex64)).astype(np.complex64)
+    vol = Volume.from_array(k, domain="kspace")
+    t = iq.analyse(vol, AnalysisContext(vol))
+    assert t.status == "present"
+    assert t.estimates["distinct_levels"] == len(np.unique(u))
+    assert t.evidence["lattice_step"] == pytest.approx(1.0, rel=1e-3)
+
+
+def test_measured_kspace_is_continuous() -> None:
+    """Measured complex k-space: no lattice, absent."""
+    k = synth.to_kspace(synth.acquire((96, 96), n_coils=2, sigma=0.01, seed=11))
+    vol = Volume.from_array(k, domain="kspace", coil_axis=1)
+    t = iq.analyse(vol, AnalysisContext(vol))
+    assert t.status == "absent"
+    assert t.evidence["lattice_step"] is None

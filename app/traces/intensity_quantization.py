@@ -6,8 +6,10 @@ comb: 8-bit values multiplied by 16 into uint16 use only every 16th value; a
 non-integer rescale leaves periodic empty levels. Clipping piles samples onto
 the extreme values.
 
-Level counting uses the stored values (``scaled=False``). Float data are first
-checked for a lattice (all values on ``v0 + k d``); float32 images quantised to
+Level counting uses the stored values (``scaled=False``); k-space synthesised
+from real images (see magnitude_only) is counted on those images, recovered by
+the inverse FFT with its round-off grouped. Float data are first checked for a
+lattice (all values on ``v0 + k d``); float32 images quantised to
 256 levels and then scaled are caught that way.
 
 Measures:
@@ -48,8 +50,16 @@ from typing import Any
 import numpy as np
 
 from app.io.volume import Volume
-from app.traces.background import analysed_frames, background_of, constant_share, lattice_step
+from app.traces.background import (
+    FFT_TOLERANCE,
+    analysed_frames,
+    background_of,
+    constant_share,
+    image_blocks,
+    lattice_step,
+)
 from app.traces.base import Trace, inconclusive, register
+from app.traces.magnitude_only import value_kind_of
 
 TRACE_ID = "intensity_quantization"
 MAX_FRAMES = 32
@@ -211,6 +221,37 @@ def _sample_values(volume: Volume, frames: np.ndarray) -> np.ndarray:
     return np.concatenate(parts) if parts else np.zeros(0)
 
 
+def fft_levels(values: np.ndarray, tol: float) -> LevelStats:
+    """Grey levels of real images recovered from k-space (values carry FFT round-off).
+
+    Sorted values are split where neighbours differ by more than ``5 * tol``;
+    each run is one level (its mean). When the runs are about as many as the
+    values (continuous data) every value counts as its own level, without a
+    lattice. Common practice, no source.
+    """
+    v = np.sort(np.asarray(values, dtype=np.float64).ravel())
+    v = v[np.isfinite(v)]
+    if v.size < 2 or tol <= 0:
+        return level_stats(v)
+    starts = np.r_[0, np.flatnonzero(np.diff(v) > 5.0 * tol) + 1]
+    if starts.size > 0.2 * v.size:
+        return LevelStats(v, np.ones(v.size, dtype=np.int64), None, int(v.size))
+    counts = np.diff(np.r_[starts, v.size])
+    centres = np.add.reduceat(v, starts) / counts
+    return LevelStats(centres, counts, lattice_step(centres), int(v.size))
+
+
+def _kspace_image_values(volume: Volume, frames: np.ndarray) -> tuple[np.ndarray, float]:
+    """Real parts of the images behind k-space (bounded), and the round-off tolerance."""
+    rows, cols = volume.image_shape
+    keep = max(1, min(frames.size, MAX_SAMPLES // max(rows * cols * volume.n_coils, 1)))
+    frames = analysed_frames(frames.size, frames, keep)
+    parts = [np.asarray(b).real.ravel() for _, b in image_blocks(volume, frames)]
+    v = np.concatenate(parts) if parts else np.zeros(0)
+    peak = float(np.max(np.abs(v))) if v.size else 0.0
+    return v, FFT_TOLERANCE * peak
+
+
 def _histogram(stats: LevelStats) -> dict[str, Any]:
     if stats.distinct == 0:
         return {"edges": [], "counts": []}
@@ -238,7 +279,14 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
     Widrow and Kollar 2008; Stamm and Liu, IEEE TIFS 2010; DICOM PS3.3 C.7.6.3.
     """
     frames = analysed_frames(volume.n_slices, ctx.frame_indices(), MAX_FRAMES)
-    stats = level_stats(_sample_values(volume, frames))
+    from_images = (volume.domain == "kspace"
+                   and value_kind_of(volume, ctx).domain in ("magnitude", "real_signed"))
+    if from_images:
+        # k-space synthesised from real images: the grey levels are those images'
+        values, tol = _kspace_image_values(volume, frames)
+        stats = fft_levels(values, tol)
+    else:
+        stats = level_stats(_sample_values(volume, frames))
     if stats.n_samples == 0:
         return inconclusive(TRACE_ID, "No finite values to count grey levels in.")
     bits = stated_bits(volume)
@@ -279,6 +327,7 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
         "lattice_step": None if stats.step is None else float(f"{stats.step:.6g}"),
         "n_samples": stats.n_samples,
         "frames_examined": int(frames.size),
+        "measured_on": "images behind the k-space" if from_images else "stored values",
     }
     estimates = {"distinct_levels": stats.distinct, "effective_bits": round(eff, 2),
                  "clipped_fraction": float(f"{clipped:.4g}")}
