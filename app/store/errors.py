@@ -9,6 +9,7 @@ class StoreError(RawproofError):
     """Base of the store's user-facing errors; ``message`` is one actionable sentence."""
 
     status_code = 400
+    title = "Cannot do that"
 
     def __init__(self, message: str) -> None:
         super().__init__(message)
@@ -19,12 +20,14 @@ class NotFoundError(StoreError):
     """The dataset, report, file or user does not exist."""
 
     status_code = 404
+    title = "Not found"
 
 
 class PermissionDeniedError(StoreError):
     """The member may not do this (for example, decide on their own dataset)."""
 
     status_code = 403
+    title = "Not allowed"
 
 
 class SelfDecisionError(PermissionDeniedError):
@@ -41,6 +44,7 @@ class DecisionConflictError(StoreError):
     """
 
     status_code = 409
+    title = "Someone else changed this"
 
     def __init__(self, message: str, current: object | None = None) -> None:
         super().__init__(message)
@@ -51,6 +55,7 @@ class ValidationError(StoreError):
     """A form field is missing or malformed."""
 
     status_code = 422
+    title = "Please check the form"
 
 
 class SchemaError(RawproofError):

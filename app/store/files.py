@@ -36,6 +36,7 @@ class UploadTooLargeError(ValidationError):
     """An upload went past the configured size limit while streaming."""
 
     status_code = 413
+    title = "Upload too large"
 
 
 def blob_path(settings: Settings, sha256: str) -> Path:

@@ -62,7 +62,9 @@ def _install_handlers(application: FastAPI) -> None:
 
     @application.exception_handler(StoreError)
     async def _store(request: Request, exc: StoreError):
-        return _error(request, exc.status_code, type(exc).__name__, exc.message)
+        if _wants_json(request):
+            return _error(request, exc.status_code, type(exc).__name__, exc.message)
+        return _error(request, exc.status_code, exc.title, exc.message)
 
     @application.exception_handler(InputError)
     async def _input(request: Request, exc: InputError):
