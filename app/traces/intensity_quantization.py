@@ -298,8 +298,14 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
         try:
             bg = background_of(volume, ctx)
             const = constant_share(bg) if bg.usable else None
-            masked_low = bool(const is not None and const.masked and bg.stored is not None
-                              and const.value == float(stats.levels[0]))
+            if const is not None and const.masked and const.value is not None:
+                if from_images:
+                    # both come from the inverse FFT: equal within its round-off
+                    masked_low = abs(const.value - float(stats.levels[0])) <= 5 * max(
+                        bg.tolerance, 1e-30)
+                else:
+                    masked_low = bg.stored is not None and const.value == float(
+                        stats.levels[0])
         except Exception:  # noqa: BLE001 - the background is optional evidence here
             masked_low = False
     high = clip["high"] if clip["high_pile"] else 0.0
