@@ -31,10 +31,15 @@ log = logging.getLogger("rawproof")
 RAWPROOF_ARGV = [sys.executable, "-c", "import sys; from app.cli import main; sys.exit(main())"]
 
 
-def _add_common(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--data", help="data folder (default $RAWPROOF_DATA or ./rawproof-data)")
-    p.add_argument("--database-url", help="SQLAlchemy URL (default SQLite in the data folder)")
-    p.add_argument("--max-upload-bytes", type=int, help="upper bound on one upload")
+def _add_common(p: argparse.ArgumentParser, *, nested: bool = False) -> None:
+    # nested: repeated on a sub-command (`users add NAME --data DIR`) without
+    # overriding a value given before it (`users --data DIR add NAME`)
+    extra = {"default": argparse.SUPPRESS} if nested else {}
+    p.add_argument("--data", help="data folder (default $RAWPROOF_DATA or ./rawproof-data)",
+                   **extra)
+    p.add_argument("--database-url", help="SQLAlchemy URL (default SQLite in the data folder)",
+                   **extra)
+    p.add_argument("--max-upload-bytes", type=int, help="upper bound on one upload", **extra)
 
 
 def settings_from(args: Any) -> Settings:
@@ -168,6 +173,8 @@ def _add_users(p: argparse.ArgumentParser) -> None:
     tok.add_argument("name")
     tok.add_argument("--label", default="")
     tok.add_argument("--revoke", type=int, metavar="ID", help="revoke token ID instead")
+    for sp in sub.choices.values():
+        _add_common(sp, nested=True)
 
 
 def _run_users(args: Any) -> int:
