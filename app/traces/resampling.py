@@ -206,7 +206,10 @@ def _ratio(frames: list[np.ndarray], predictor: np.ndarray, workers: int) -> np.
     stack -= stack.mean(axis=(1, 2), keepdims=True)
     mag = sfft.fftshift(np.abs(sfft.fft2(stack, workers=workers)).mean(axis=0))
     bg = ndimage.median_filter(mag, size=7, mode="wrap")
-    return mag / np.maximum(bg, 1e-12 * max(float(mag.max()), 1e-300))
+    top = float(mag.max())
+    if not np.isfinite(top) or top <= 0:  # a constant image: no p-map structure at all
+        return np.zeros_like(mag)
+    return mag / np.maximum(bg, 1e-12 * top)
 
 
 def detect(frames: list[np.ndarray], *, workers: int = 2) -> ResamplingResult:

@@ -305,7 +305,8 @@ def downsample_mean(values: Any, max_len: int = 1024) -> np.ndarray:
 def round_sig(values: Any, digits: int = 4) -> Any:
     """Round floats (scalars or arrays) to ``digits`` significant digits for evidence."""
     a = np.asarray(values, dtype=np.float64)
-    with np.errstate(divide="ignore", invalid="ignore"):
+    a = np.where(np.abs(a) < 1e-200, 0.0, a)  # denormal-scale values round to 0
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         mag = np.where(a == 0, 0, np.floor(np.log10(np.abs(np.where(a == 0, 1, a)))))
     factor = 10.0 ** (digits - 1 - mag)
     out = np.round(a * factor) / factor
