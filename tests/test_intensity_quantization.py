@@ -5,9 +5,10 @@ Sources:
   rounding to a lattice; an integer rescale by g uses every g-th value, so a
   share 1 - 1/g of the range is empty.
 - Stamm and Liu, IEEE Trans. Information Forensics and Security 5:492-506,
-  2010: a non-integer contrast rescale leaves periodic empty histogram bins; for
-  a factor f > 1 a share 1 - 1/f of the output levels stays empty (every input
-  level maps to one output level).
+  2010 (volume and pages recalled from memory): a non-integer contrast
+  rescale leaves periodic empty histogram bins; for a factor f > 1 a share
+  1 - 1/f of the output levels stays empty (every input level maps to one
+  output level).
 - NEMA PS3.3 C.7.6.3 (DICOM BitsStored), read by pydicom from its bundled
   emri_small.dcm (BitsStored 12; 425 distinct stored values from 0 to 467,
   an ORIGINAL image: not squeezed) and MR_small.dcm (BitsStored 16, 1128

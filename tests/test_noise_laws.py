@@ -106,8 +106,8 @@ def test_gaussian_fit_recovers_scipy_samples() -> None:
 def test_rounded_chi_with_sheppard_correction() -> None:
     """Chi(2L = 16) samples with sigma = 2 rounded to integers: L within 10% after correction.
 
-    Sheppard (1898): rounding to a step q adds q^2/12 to the second moment; the
-    fit subtracts it. Truth: L = 8, sigma = 2 steps.
+    Sheppard (1898, recalled from memory): rounding to a step q adds q^2/12 to
+    the second moment; the fit subtracts it. Truth: L = 8, sigma = 2 steps.
     """
     from app.traces.coil_combination import fit_magnitude_background
 

@@ -113,7 +113,8 @@ def fit_magnitude_background(x: np.ndarray, *, step: float = 0.0) -> dict[str, A
     ----------
     Gudbjartsson and Patz, MRM 1995 (Rayleigh); Constantinides, Atalar and
     McVeigh, MRM 1997 (central chi with 2L degrees of freedom); W. F. Sheppard,
-    Proc. London Math. Soc. 29:353-380, 1898 (moment correction for grouping).
+    Proc. London Math. Soc. 29:353-380, 1898 (moment correction for grouping;
+    citation details recalled from memory).
     """
     x = np.asarray(x, dtype=np.float64).ravel()
     m1 = float(x.mean())

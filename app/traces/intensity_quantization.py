@@ -37,7 +37,7 @@ References
 .. [2] M. Stamm and K. J. R. Liu, "Forensic detection of image manipulation using
    statistical intrinsic fingerprints", IEEE Transactions on Information
    Forensics and Security 5(3):492-506, 2010 (periodic empty histogram bins left
-   by contrast mapping and rescaling).
+   by contrast mapping and rescaling; volume and pages recalled from memory).
 .. [3] NEMA PS3.3, DICOM Information Object Definitions, C.7.6.3 Image Pixel
    Module (BitsStored).
 """

@@ -25,8 +25,9 @@ References
    Magnetic Resonance in Medicine 34(6):910-914, 1995 (magnitude images: noise
    law of the discarded-phase image, non-negative values).
 .. [2] E. M. Haacke, R. W. Brown, M. R. Thompson and R. Venkatesan, *Magnetic
-   Resonance Imaging: Physical Principles and Sequence Design*, Wiley, 1999,
-   ch. 15 (real, phase-corrected images keep Gaussian noise of both signs).
+   Resonance Imaging: Physical Principles and Sequence Design*, Wiley, 1999
+   (real, phase-corrected images keep Gaussian noise of both signs; recalled
+   from memory).
 """
 
 from __future__ import annotations
