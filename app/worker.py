@@ -179,8 +179,24 @@ def _wait_for_gate(stop: threading.Event) -> bool:
     return True
 
 
+def _relative(obj: Any, folder: str) -> Any:
+    """Replace the job folder's absolute path by the dataset's own relative names."""
+    if isinstance(obj, str):
+        return obj.replace(folder + "/", "").replace(folder, ".")
+    if isinstance(obj, dict):
+        return {k: _relative(v, folder) for k, v in obj.items()}
+    if isinstance(obj, list):
+        return [_relative(v, folder) for v in obj]
+    return obj
+
+
 def _finish(settings: Settings, owner: str, act: _Active, result: dict[str, Any]) -> str:
-    """Store the outcome of one analysis; returns the job's new state word."""
+    """Store the outcome of one analysis; returns the job's new state word.
+
+    Paths inside the temporary job folder are written as the dataset's
+    relative file names: the folder is gone once the job ends.
+    """
+    result = _relative(result, str(act.workdir / "files"))
     db = database(settings)
     with db.scope() as s:
         if "ok" in result:

@@ -67,6 +67,7 @@ def test_killed_worker_job_is_finished_by_the_next_with_one_report(server, uma) 
     assert len(reports) == 1 and reports[0]["id"] == job["report_id"]
     report = uma.get(f"/api/datasets/{ds}/report").json()
     assert report["schema"] == "rawproof.report/1"
+    assert report["input"]["path"] == "scan.npy"  # not the worker's temporary folder
     # per-file progress: one step per analyser in the report
     files = job["progress"]["files"]
     assert [f["name"] for f in files] == ["scan"]
@@ -107,6 +108,7 @@ def test_corrupt_file_fails_with_a_readable_error_and_the_server_keeps_serving(
     job = uma.wait_for_job(ds)
     assert job["state"] == "failed"
     assert "broken.npy" in job["error"] and "Traceback" not in job["error"]
+    assert str(server.data_dir) not in job["error"]  # no server paths, the file's own name
     page = uma.get(f"/datasets/{ds}")
     assert page.status_code == 200
     assert "The analysis failed" in page.text and "broken.npy" in page.text
