@@ -63,7 +63,7 @@ from app.traces.magnitude_only import value_kind_of
 
 TRACE_ID = "intensity_quantization"
 MAX_FRAMES = 32
-MAX_SAMPLES = 4_000_000
+MAX_SAMPLES = 2_000_000
 SQUEEZED_LEVELS = 256
 MIN_SAMPLES_FOR_LEVELS = 16 * SQUEEZED_LEVELS
 COMB_SCORE = 0.08
