@@ -40,6 +40,15 @@ def _job(member, ds: int) -> dict:
     return member.get(f"/api/datasets/{ds}").json()["job"]
 
 
+def _wait_until_running(member, ds: int, proc, log) -> None:  # noqa: ANN001
+    """Poll until the gated worker ``proc`` has claimed the dataset's job."""
+    deadline = time.monotonic() + 90
+    while _job(member, ds)["state"] != "running":
+        assert proc.poll() is None, log.read_text()
+        assert time.monotonic() < deadline, "the worker never claimed the job"
+        time.sleep(0.1)
+
+
 def test_killed_worker_job_is_finished_by_the_next_with_one_report(server, uma) -> None:
     ds = uma.upload_files("Kill test", [("scan.npy", zero_filled_npy(71))])["dataset_id"]
     gate = server.data_dir / "gate-never-opens"
@@ -47,11 +56,7 @@ def test_killed_worker_job_is_finished_by_the_next_with_one_report(server, uma) 
                          log_name="worker1.log")
     second = None
     try:
-        deadline = time.monotonic() + 90
-        while _job(uma, ds)["state"] != "running":
-            assert first.poll() is None, (server.data_dir / "worker1.log").read_text()
-            assert time.monotonic() < deadline, "the first worker never claimed the job"
-            time.sleep(0.1)
+        _wait_until_running(uma, ds, first, server.data_dir / "worker1.log")
         os.killpg(first.pid, signal.SIGKILL)
         first.wait(timeout=10)
         assert _job(uma, ds)["state"] == "running"  # the dead worker's lease is still there
@@ -81,11 +86,7 @@ def test_stopped_worker_hands_its_job_back_at_once(server, uma) -> None:
     proc = start_worker(server.data_dir, "--lease-seconds", "600", env={GATE_ENV: str(gate)},
                         log_name="worker-stop.log")
     try:
-        deadline = time.monotonic() + 90
-        while _job(uma, ds)["state"] != "running":
-            assert proc.poll() is None, (server.data_dir / "worker-stop.log").read_text()
-            assert time.monotonic() < deadline, "the worker never claimed the job"
-            time.sleep(0.1)
+        _wait_until_running(uma, ds, proc, server.data_dir / "worker-stop.log")
         proc.send_signal(signal.SIGTERM)
         assert proc.wait(timeout=30) == 0
     finally:

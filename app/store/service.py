@@ -361,6 +361,13 @@ def enqueue_job(session: Session, dataset: Dataset, *, requested_by: User | None
     return job
 
 
+def request_reanalysis(session: Session, dataset: Dataset, *, user: User) -> Job:
+    """Queue a new analysis (one button after a new rawproof); old reports stay in history."""
+    job = enqueue_job(session, dataset, requested_by=user)
+    audit(session, "dataset.reanalyse", actor=user, dataset_id=dataset.id, job_id=job.id)
+    return job
+
+
 def latest_job(session: Session, dataset_id: int) -> Job | None:
     return session.scalar(select(Job).where(Job.dataset_id == dataset_id).order_by(Job.id.desc()))
 

@@ -140,9 +140,7 @@ def post_decision(dataset_id: int, db: DbSession, user: CurrentUser,
 @router.post("/datasets/{dataset_id}/reanalyse", status_code=202,
              dependencies=[Depends(csrf_protect)])
 def reanalyse(dataset_id: int, db: DbSession, user: CurrentUser):
-    ds = service.get_dataset(db, dataset_id)
-    job = service.enqueue_job(db, ds, requested_by=user)
-    service.audit(db, "dataset.reanalyse", actor=user, dataset_id=ds.id, job_id=job.id)
+    job = service.request_reanalysis(db, service.get_dataset(db, dataset_id), user=user)
     db.commit()
     return job_status(job)
 

@@ -143,8 +143,7 @@ def decisions_json(dataset_id: int, db: DbSession):
 @router.post("/datasets/{dataset_id}/reanalyse", dependencies=[Depends(csrf_protect)])
 def reanalyse(dataset_id: int, db: DbSession, user: CurrentUser):
     ds = service.get_dataset(db, dataset_id)
-    job = service.enqueue_job(db, ds, requested_by=user)
-    service.audit(db, "dataset.reanalyse", actor=user, dataset_id=ds.id, job_id=job.id)
+    service.request_reanalysis(db, ds, user=user)
     db.commit()
     return RedirectResponse(f"/datasets/{ds.id}#analysis", status_code=303)
 
