@@ -142,3 +142,15 @@ def test_siemens_dicom_interpolated_grid():
     assert trace.status == "present"
     for ax in ("rows", "cols"):
         assert abs(trace.estimates[ax]["factor"] - expected) <= 0.02 * expected, trace.estimates
+
+
+def test_bounded_subset_is_stated():
+    """A long volume is tested on a bounded, evenly spaced subset, stated in the notes."""
+    frames = np.concatenate([_raw(seed=s) for s in range(4)])  # 16 frames
+    zoomed = np.stack([ndimage.zoom(f, (1.0, 1.5), order=1) for f in frames])
+    vol = Volume.from_array(zoomed.astype(np.float32))
+    ctx = AnalysisContext(vol)
+    trace = rs.analyse(vol, ctx)
+    assert trace.status == "present"
+    assert trace.evidence["n_frames"] == rs.MAX_FRAMES
+    assert any("resampling analysed" in n for n in ctx.notes)

@@ -15,7 +15,7 @@ on each side, after the median over the band, for a sustained level drop (the
 median level after a candidate edge against the median before it, less the decay
 a local line predicts); an edge must also show in the inner and the outer half of
 the band at the same place (a straight edge, not a ring of the object's spectrum),
-and is placed where the profile has fallen 35 % of the drop, with sub-sample
+and is placed where the profile has fallen 30 % of the drop, with sub-sample
 interpolation. The support fraction is the width of the
 region between the two edges over the axis size and the padding factor its
 inverse. An echo edge at twice the acquired width is recognised as such.
@@ -49,7 +49,7 @@ DEFAULT_BAND_SUPPORT = 0.4
 #: of the magnitude echo) when its score reaches this fraction of the best score
 HALF_RULE_RATIO = 0.6
 #: the edge is where the profile has fallen this fraction of the drop
-CROSSING_LEVEL = 0.35
+CROSSING_LEVEL = 0.3
 #: support fractions below this are not searched (padding above 5x)
 MIN_SUPPORT = 0.2
 DEFAULT_ESTIMATES: dict[str, Any] = {
