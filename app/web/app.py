@@ -7,7 +7,7 @@ member; pages redirect to the sign-in form, JSON callers get 401.
 from __future__ import annotations
 
 import importlib
-from urllib.parse import quote
+from urllib.parse import quote, urlsplit
 
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
@@ -24,7 +24,7 @@ from app.web.deps import ForbiddenError, NotSignedInError
 from app.web.paths import STATIC_DIR
 from app.web.ratelimit import LoginLimiter
 from app.web.routers import admin, api, auth, datasets, registry, reviews, uploads
-from app.web.security import CsrfError, SecurityHeadersMiddleware
+from app.web.security import CsrfError, SecurityHeadersMiddleware, safe_next
 from app.web.templating import render
 
 PUBLIC_PATHS = ("/login", "/healthz", "/static")
@@ -49,7 +49,10 @@ def _install_handlers(application: FastAPI) -> None:
         if _wants_json(request):
             return JSONResponse({"error": {"code": "not_signed_in", "message": str(exc)}},
                                 status_code=401, headers={"www-authenticate": "Bearer"})
-        target = request.url.path + (f"?{request.url.query}" if request.url.query else "")
+        if request.method in ("GET", "HEAD"):
+            target = request.url.path + (f"?{request.url.query}" if request.url.query else "")
+        else:  # a form posted after the session ended: come back to the page it was on
+            target = safe_next(urlsplit(request.headers.get("referer", "")).path or "/")
         return RedirectResponse(f"/login?next={quote(target, safe='')}", status_code=303)
 
     @application.exception_handler(ForbiddenError)
