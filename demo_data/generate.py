@@ -63,7 +63,7 @@ def _raw_multicoil(out: Path, rng: np.random.Generator) -> dict[str, Any]:
 
 
 def _zero_filled(out: Path, rng: np.random.Generator) -> dict[str, Any]:
-    mag, shape = synth.zero_filled_magnitude((128, 128), (2.0, 2.0), n_coils=8, n_slices=6,
+    mag, shape = synth.zero_filled_magnitude((128, 128), (2.0, 2.0), n_coils=8, n_slices=4,
                                              sigma=0.012, seed=rng)
     files = writers.write_dicom_series(out / "series", _u16(mag), series_description="T2 AX",
                                        pixel_spacing=(0.9, 0.9), seed=11)

@@ -214,13 +214,13 @@ def test_slice_viewer_buttons_and_keyboard(page, ids) -> None:
     _open(page, ids["openbrain-magnitude"])
     viewer = page.locator(".ev-viewer").first
     n = int(viewer.get_attribute("data-n"))
-    assert n == 6  # six slices in the generated series
+    assert n == 4  # four slices in the generated series (demo_data/generate.py)
     viewer.locator(".ev-step[data-step='1']").click()
     assert viewer.locator(".ev-slice-spectrum").get_attribute("src").endswith("/spectra/1.png")
     viewer.locator(".ev-range").focus()
     page.keyboard.press("ArrowRight")
     assert viewer.locator(".ev-slice-image").get_attribute("src").endswith("/images/2.png")
-    assert "3 of 6" in viewer.locator(".ev-pos").inner_text()
+    assert "3 of 4" in viewer.locator(".ev-pos").inner_text()
     page.wait_for_function(
         "() => [...document.querySelectorAll('.ev-viewer img')].every(i => i.naturalWidth > 0)")
 

@@ -4,7 +4,8 @@ manifest, built from demo_data/synth.py with known processing).
 
 For each trace the generator put in, the stored report must find it with the
 stated tolerance, the methods statement (app/methods.py) must name it, and its
-figure (app/web/figures.py) must render to a decodable, non-blank PNG.
+figure (app/web/figures.py), as ``rawproof demo`` cached it for the page, must be
+a decodable, non-blank PNG.
 Tolerances are stated per trace below. JPEG quality is on the IJG scale
 (libjpeg ``jcparam.c``; Pillow's encoder wrote the files at quality 75).
 """
@@ -42,11 +43,12 @@ def loaded(tmp_path_factory: pytest.TempPathFactory) -> dict:
     assert rc == 0
     manifest = json.loads((data / "demo-sources" / "manifest.json").read_text())
     settings = Settings(data_dir=data)
-    reports, decisions, comments, history = {}, {}, {}, {}
+    reports, decisions, comments, history, report_ids = {}, {}, {}, {}, {}
     with session_scope(settings, write=False) as s:
         for ds in service_datasets(s):
             rep = service.get_current_report(s, ds.id)
             reports[ds.name] = rep.data if rep else None
+            report_ids[ds.name] = rep.id if rep else None
             dec = service.current_decision(s, ds)
             history[ds.name] = [d.outcome for d in service.list_decisions(s, ds.id)]
             decisions[ds.name] = ({"outcome": dec.outcome, "rationale": dec.rationale}
@@ -54,7 +56,7 @@ def loaded(tmp_path_factory: pytest.TempPathFactory) -> dict:
             comments[ds.name] = [c.body for c in service.list_comments(s, ds.id)]
     return {"data": data, "stdout": out.getvalue(), "manifest": manifest, "reports": reports,
             "decisions": decisions, "comments": comments, "history": history,
-            "settings": settings}
+            "report_ids": report_ids, "settings": settings}
 
 
 def service_datasets(session) -> list:  # noqa: ANN001 - a SQLAlchemy session
@@ -200,7 +202,11 @@ def test_source_truth_found_named_and_drawn(loaded: dict, slug: str) -> None:
             f"{slug}: {tid}: {_check_estimates(tid, truth, trace['estimates'])}")
         assert TRACE_NAMES[tid] in text
         if tid in FIGURE_OF:
-            assert _png_ok(figures.render(FIGURE_OF[tid], report)), f"{slug}: {tid} figure"
+            # the figure rawproof demo rendered into the page's cache (what the page serves)
+            cached = (loaded["data"] / "reports" / str(loaded["report_ids"][src["name"]])
+                      / "figures" / f"{FIGURE_OF[tid]}.png")
+            assert cached.is_file(), f"{slug}: {tid}: no {cached.name} in the figure cache"
+            assert _png_ok(cached.read_bytes()), f"{slug}: {tid} figure"
     for tid in src["truth"]["absent"]:
         if tid in report["traces"]:
             assert report["traces"][tid]["status"] != "present", (
