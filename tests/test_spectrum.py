@@ -91,3 +91,17 @@ def test_evidence_helpers_bound_sizes():
     m, steps = sp.block_average(np.ones((300, 520)), 128)
     assert m.shape[0] <= 128 and m.shape[1] <= 128 and steps == [3, 5]
     assert sp.round_sig(123456.0) == 123500.0
+
+
+def test_nan_input_is_not_modified_and_noise_floor():
+    """NaNs are zeroed on a copy (the caller's array is untouched); white noise floor level.
+
+    White Gaussian noise of variance 1 on N samples has an unnormalised FFT power of
+    N per frequency (Parseval), so the floor is 10 log10(N) dB.
+    """
+    rng = np.random.default_rng(4)
+    data = rng.standard_normal((8, 32, 32)).astype(np.float32)
+    data[0, 0, 0] = np.nan
+    spec = sp.compute_spectrum(Volume.from_array(data))
+    assert np.isnan(data[0, 0, 0])
+    assert abs(spec.noise_floor_db["rows"] - 10 * np.log10(32 * 32)) < 0.5

@@ -69,6 +69,9 @@ class Spectrum:
         For k-space input, whether the data had to be ``fftshift``-ed (DC at the corner).
     notes : list of str
         Sentences about what was measured (stated subsampling, skipped axes).
+    noise_floor_db : dict
+        Axis -> level (dB) of the mean-power profile's outermost sixteenth, the floor
+        the spectrum reaches at the edge of k-space.
     derived : dict
         Results that analysers derive from this spectrum and share (for example the
         zero-filling support, which k-space filtering and partial Fourier reuse).
@@ -86,6 +89,7 @@ class Spectrum:
     complex_input: bool = False
     kspace_shifted: bool | None = None
     notes: list[str] = field(default_factory=list)
+    noise_floor_db: dict[str, float] = field(default_factory=dict)
     derived: dict[str, Any] = field(default_factory=dict, repr=False)
 
 
@@ -221,7 +225,9 @@ def compute_spectrum(
         col_buf = np.zeros(lead + (rows, len(col_sel)), dtype=dt)
     pos = 0
     for idx, block in volume.iter_slices(batch, indices=idx_all):
-        block = np.nan_to_num(block, copy=False)
+        if not np.all(np.isfinite(block)):
+            # a copy: the block may be a view of the caller's (or a read-only mapped) array
+            block = np.nan_to_num(block)
         if volume.domain == "kspace":
             if shift is None:
                 raw = frame_power(block, domain="kspace", multi_coil=multi, shift=False)
@@ -254,6 +260,7 @@ def compute_spectrum(
         floor = 1e-12 * p.mean() + 1e-30
         log_profiles["slices"] = sfft.fftshift((10.0 * np.log10(p + floor)).mean(axis=(1, 2)))
     return Spectrum(
+        noise_floor_db={ax: noise_floor_db(p) for ax, p in profiles.items()},
         shape=(rows, cols),
         n_frames=n_frames,
         profiles=profiles,
@@ -267,6 +274,21 @@ def compute_spectrum(
         kspace_shifted=shift,
         notes=notes,
     )
+
+
+def noise_floor_db(profile: Any, fraction: float = 1 / 16) -> float:
+    """Level (dB) of a centred power profile at the edge of k-space.
+
+    The median of the outermost ``fraction`` of samples on both sides: for raw data
+    the white noise floor; for zero-filled data the level outside the support.
+
+    References
+    ----------
+    .. [1] Bracewell, R. N. *The Fourier Transform and Its Applications*, 2000.
+    """
+    db = to_db(profile)
+    m = max(1, int(round(len(db) * fraction / 2)))
+    return float(np.median(np.r_[db[:m], db[len(db) - m:]]))
 
 
 def spectrum_of(volume: Volume, ctx: Any) -> Spectrum:

@@ -268,9 +268,8 @@ def axis_support(
     score = max(s_pos, s_neg)
     prof_db = sp.to_db(power_profile)
     if x_pos is None or x_neg is None or drop_pos is None or drop_neg is None:
-        outer = prof_db[np.r_[0:max(1, n // 16), n - max(1, n // 16):n]]
-        return AxisSupport(axis, n, False, 1.0, None, None, score, float(np.median(outer)),
-                           x_pos=x_pos, x_neg=x_neg)
+        return AxisSupport(axis, n, False, 1.0, None, None, score,
+                           sp.noise_floor_db(power_profile), x_pos=x_pos, x_neg=x_neg)
     width = min(float(n), x_pos + x_neg)
     hi = min(n - 1, c + int(np.floor(x_pos)))
     lo = max(0, c - int(np.floor(x_neg)))
