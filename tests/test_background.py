@@ -199,3 +199,23 @@ def test_blank_frames_are_left_out() -> None:
     cc = coil_combination.analyse(vol, ctx)
     assert cc.status == "present" and abs(cc.estimates["effective_channels"] - 4) <= 1.0
     assert background_masking.analyse(vol, ctx).status == "absent"
+
+
+def test_zero_band_outside_field_of_view_is_set_aside() -> None:
+    """Zeros outside a resampled field of view (top 12 rows) beside noisy air: the air is found.
+
+    Truth: RSS of 4 channels, sigma 0.01; the chi law's L = 4 must come back
+    within 1 from the air that remains (Constantinides 1997), and the zero band
+    is not taken for a masked background.
+    """
+    from app.traces import background_masking, coil_combination
+
+    img = synth.rss(synth.acquire((128, 128), n_coils=4, n_slices=2, sigma=0.01, seed=14), axis=1)
+    img[:, :12, :] = 0
+    vol = Volume.from_array(img)
+    ctx = AnalysisContext(vol)
+    bg = bgmod.background_of(vol, ctx)
+    assert bg.usable and not bg.masks[:, :12, :].any()
+    cc = coil_combination.analyse(vol, ctx)
+    assert cc.status == "present" and abs(cc.estimates["effective_channels"] - 4) <= 1.0
+    assert background_masking.analyse(vol, ctx).status == "absent"

@@ -181,3 +181,33 @@ def test_measured_kspace_is_continuous() -> None:
     t = iq.analyse(vol, AnalysisContext(vol))
     assert t.status == "absent"
     assert t.evidence["lattice_step"] is None
+
+
+def test_scattered_bottom_clipping_counts() -> None:
+    """Air clipped from below at its 20th percentile: a scattered pile, counted as clipping.
+
+    Truth: the clipped share is measured on the array itself (every sample at
+    the clip level); the estimate must match it within 0.005.
+    """
+    mag = _rss(12)
+    u = np.round(mag / mag.max() * 4095).astype(np.uint16)
+    air = u[u < np.percentile(u, 25)]
+    floor = np.percentile(air, 20)
+    u = np.maximum(u, floor).astype(np.uint16)
+    truth = float(np.mean(u == floor))
+    t = _run(u, 12)
+    assert t.status == "present"
+    assert t.evidence["low_pile_solid_share"] < 0.3
+    assert t.estimates["clipped_fraction"] == pytest.approx(truth, abs=0.005)
+
+
+def test_zeros_outside_the_field_of_view_are_not_clipping() -> None:
+    """Zeros outside a resampled field of view (top 10 rows): a solid pile, not clipping."""
+    mag = _rss(13)
+    u = np.round(mag / mag.max() * 4095).astype(np.uint16)
+    u[:, :10, :] = 0
+    t = _run(u, 12)
+    assert t.evidence["low_pile_up"] is True
+    assert t.evidence["low_pile_solid_share"] > 0.9
+    assert t.estimates["clipped_fraction"] == 0.0
+    assert t.status == "absent"

@@ -255,6 +255,11 @@ def _corner_mask(shape: tuple[int, int]) -> np.ndarray:
 def frame_background(m: np.ndarray) -> tuple[np.ndarray, str, int, float]:
     """Find the background of one magnitude frame.
 
+    When no background is found and a region of one constant value (the
+    frame's minimum) covers part of the frame, that region is set aside like
+    non-finite pixels (zeros outside a resampled field of view) and the noisy
+    air around it is looked for instead.
+
     Parameters
     ----------
     m : ndarray
@@ -273,9 +278,28 @@ def frame_background(m: np.ndarray) -> tuple[np.ndarray, str, int, float]:
     Otsu 1979 (threshold); Gudbjartsson and Patz 1995 (background as the
     signal-free region).
     """
+    found = _frame_background_any(m)
+    if found[1] != "none":
+        return found
+    fin = np.isfinite(m)
+    if not fin.any():
+        return found
+    const = fin & (m == np.min(m[fin]))
+    share = float(const.sum() / fin.sum())
+    if not 0.02 <= share <= 0.9:
+        return found
+    retry = _frame_background_any(np.where(const, np.nan, m))
+    return retry if retry[1] != "none" else found
+
+
+def _frame_background_any(m: np.ndarray) -> tuple[np.ndarray, str, int, float]:
     factor = min(m.shape) // _WORK_SIDE
     if factor >= 2:
         return _frame_background_reduced(m, factor)
+    return _frame_background_full(m)
+
+
+def _frame_background_full(m: np.ndarray) -> tuple[np.ndarray, str, int, float]:
     finite = np.isfinite(m)
     m = np.where(finite, m, 0.0).astype(np.float64, copy=False)
     k = _box_size(m.shape)
@@ -315,7 +339,7 @@ def _frame_background_reduced(m: np.ndarray, factor: int) -> tuple[np.ndarray, s
     ny, nx = rows // factor, cols // factor
     crop = m[:ny * factor, :nx * factor].astype(np.float64)
     small = crop.reshape(ny, factor, nx, factor).mean(axis=(1, 3))
-    mask_s, method, excluded, t = frame_background(small)
+    mask_s, method, excluded, t = _frame_background_full(small)
     mask = np.zeros((rows, cols), dtype=bool)
     mask[:ny * factor, :nx * factor] = np.repeat(np.repeat(mask_s, factor, 0), factor, 1)
     return mask & np.isfinite(m), method, excluded, t

@@ -23,8 +23,9 @@ Measures:
   give about 0; every 16th value used gives about 0.94.
 - clipped fractions: the share of samples on the lowest and highest values
   when those values stand far above their neighbours (a pile-up). A low pile-up
-  explained by a constant (masked) background is reported but not counted as
-  clipping.
+  explained by a constant (masked) background, or forming solid regions (zeros
+  outside a resampled field of view), is reported but not counted as clipping:
+  clipping piles scattered samples.
 
 Status: ``present`` when at most 256 levels are used in a set large enough to
 show more, when the histogram is a comb, or when more than
@@ -48,6 +49,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+from scipy import ndimage
 
 from app.io.volume import Volume
 from app.traces.background import (
@@ -70,6 +72,7 @@ COMB_SCORE = 0.08
 COMB_MIN_DENSE = 64
 CLIP_FRACTION = 0.002
 CLIP_SPIKE = 5.0
+SOLID_SHARE = 0.7
 _DENSE_COUNT = 6.0
 _WINDOW = 9
 
@@ -200,6 +203,30 @@ def clipping(stats: LevelStats) -> dict[str, Any]:
     return {"low": low, "high": high, "low_pile": low_pile, "high_pile": high_pile}
 
 
+def solid_share(volume: Volume, frames: np.ndarray, value: float, tol: float,
+                from_images: bool) -> float:
+    """Share of the pixels holding ``value`` that lie in solid regions (kept by a 3 x 3 opening).
+
+    Clipping piles scattered samples (the darkest noise, the brightest tissue)
+    onto the extreme value; a mask or the zeros outside a resampled field of
+    view form solid regions. Examines at most 8 evenly spaced frames. Common
+    practice, no source.
+    """
+    frames = analysed_frames(frames.size, frames, 8)
+    blocks = (image_blocks(volume, frames) if from_images
+              else volume.iter_slices(8, scaled=False, indices=frames))
+    n_on = n_solid = 0
+    for _, block in blocks:
+        b = np.asarray(block)
+        b = b.real if from_images else b
+        b = b.reshape(-1, *b.shape[-2:])
+        on = np.abs(b.astype(np.float64) - value) <= tol
+        for f in on:
+            n_on += int(f.sum())
+            n_solid += int(ndimage.binary_opening(f, structure=np.ones((3, 3), bool)).sum())
+    return n_solid / n_on if n_on else 0.0
+
+
 def stated_bits(volume: Volume) -> int | None:
     """Bits the header states (DICOM BitsStored, image bit depth), else the integer dtype's."""
     for key in ("bits_stored", "bit_depth"):
@@ -308,6 +335,11 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
                         stats.levels[0])
         except Exception:  # noqa: BLE001 - the background is optional evidence here
             masked_low = False
+    solid_low = None
+    if clip["low_pile"] and not masked_low:
+        tol = 5 * FFT_TOLERANCE * float(np.max(np.abs(stats.levels))) if from_images else 0.0
+        solid_low = solid_share(volume, frames, float(stats.levels[0]), tol, from_images)
+        masked_low = solid_low >= SOLID_SHARE
     high = clip["high"] if clip["high_pile"] else 0.0
     low = clip["low"] if clip["low_pile"] and not masked_low else 0.0
     clipped = high + low
@@ -325,6 +357,7 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
         "clip_values": [float(stats.levels[0]), float(stats.levels[-1])],
         "low_pile_up": clip["low_pile"], "high_pile_up": clip["high_pile"],
         "low_explained_by_masking": masked_low,
+        "low_pile_solid_share": None if solid_low is None else float(f"{solid_low:.4g}"),
         "distinct_levels": stats.distinct,
         "stated_bits": bits,
         "comb_score": float(f"{score:.4g}"),
