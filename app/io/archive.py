@@ -64,7 +64,7 @@ def extract_zip(archive: Path, target: Path, limits: Limits) -> list[str]:
     """
     try:
         zf = zipfile.ZipFile(archive)
-    except (zipfile.BadZipFile, OSError) as exc:
+    except (zipfile.BadZipFile, OSError, NotImplementedError, ValueError, EOFError) as exc:
         raise InputError("unreadable", f"{archive.name} is not a readable ZIP archive: "
                          f"{one_line(exc)}", str(archive)) from exc
     warnings: list[str] = []

@@ -57,8 +57,20 @@ def _sidecar(path: Path) -> dict[str, Any]:
     return meta
 
 
-def _read_npy_header(fh: Any) -> tuple[tuple[int, ...], np.dtype, bool, int]:
+def _read_npy_header(fh: Any, size: int) -> tuple[tuple[int, ...], np.dtype, bool, int]:
+    """Shape, dtype, Fortran order and data offset of a ``.npy`` stream of ``size`` bytes.
+
+    The header's declared length (2 bytes in version 1, 4 bytes in versions 2
+    and 3; NEP 1) is checked against ``size`` before numpy reads that many bytes.
+    """
+    start = fh.tell()
     version = np.lib.format.read_magic(fh)
+    width = 2 if version == (1, 0) else 4
+    header_len = int.from_bytes(fh.read(width), "little")
+    if header_len > size:
+        raise ValueError(f"the header declares {header_len} bytes, more than the {size} bytes "
+                         "of the file")
+    fh.seek(start + 8)
     if version == (1, 0):
         shape, fortran, dtype = np.lib.format.read_array_header_1_0(fh)
     else:
@@ -129,7 +141,7 @@ def read_npy(path: Path, opts: ReadOptions) -> list[Volume]:
     """
     try:
         with open(path, "rb") as fh:
-            shape, dtype, _fortran, offset = _read_npy_header(fh)
+            shape, dtype, _fortran, offset = _read_npy_header(fh, path.stat().st_size)
     except (ValueError, OSError, SyntaxError, tokenize.TokenError) as exc:
         raise InputError("unreadable", f"{path.name} is not a valid .npy file: {one_line(exc)}",
                          str(path)) from exc
@@ -162,7 +174,7 @@ def read_npz(path: Path, opts: ReadOptions) -> list[Volume]:
     """
     try:
         zf = zipfile.ZipFile(path)
-    except (zipfile.BadZipFile, OSError) as exc:
+    except (zipfile.BadZipFile, OSError, NotImplementedError, ValueError, EOFError) as exc:
         raise InputError("unreadable", f"{path.name} is not a valid .npz archive: {one_line(exc)}",
                          str(path)) from exc
     headers: dict[str, tuple[tuple[int, ...], np.dtype]] = {}
@@ -173,7 +185,7 @@ def read_npz(path: Path, opts: ReadOptions) -> list[Volume]:
             key = info.filename[:-4]
             try:
                 with zf.open(info) as fh:
-                    shape, dtype, _f, _o = _read_npy_header(fh)
+                    shape, dtype, _f, _o = _read_npy_header(fh, info.file_size)
             except (ValueError, OSError, SyntaxError, zipfile.BadZipFile, zlib.error,
                     NotImplementedError, EOFError, tokenize.TokenError) as exc:
                 raise InputError("unreadable", f"{path.name}[{key}] is not a valid array: "

@@ -849,7 +849,8 @@ def read_dicom(paths: list[Path], opts: ReadOptions) -> list[Volume]:
     errors: list[InputError] = []
     for p in paths:
         try:
-            ds = _read_dataset(p)
+            with _damaged(p):
+                ds = _read_dataset(p)
         except InputError as exc:
             if len(paths) == 1:
                 raise

@@ -131,6 +131,16 @@ def _datasets(f: Any) -> dict[str, Any]:
     return found
 
 
+def _attributes(obj: Any, prefix: str, path: Path, opts: ReadOptions) -> dict[str, str]:
+    """Up to 50 attributes of a file or dataset as text; damaged ones are left out."""
+    try:
+        return {f"{prefix}{k}": str(v)[:200] for k, v in list(obj.attrs.items())[:50]}
+    except (OSError, RuntimeError, ValueError, KeyError, TypeError) as exc:
+        opts.warnings.append(f"{path.name}: the attributes of {prefix.rstrip('.') or 'the file'} "
+                             f"could not be read and were left out: {one_line(exc)}")
+        return {}
+
+
 def _usable(ds: Any) -> bool:
     dt = np.dtype(ds.dtype)
     return len(ds.shape) >= 2 and dt.fields is None and dt.kind in "biufc" and min(ds.shape) > 0
@@ -192,15 +202,18 @@ def read_hdf5(path: Path, opts: ReadOptions) -> list[Volume]:
     check_array_bytes(declared_bytes(ds.shape, ds.dtype.itemsize), opts.limits, str(path),
                       f"{path.name}:{key}")
     domain = opts.domain or ("kspace" if _is_kspace_name(key) else "image")
-    attr_cax = ds.attrs.get("coil_axis")
+    try:
+        attr_cax = ds.attrs.get("coil_axis")
+    except (OSError, RuntimeError, ValueError, KeyError, TypeError):
+        attr_cax = None
     cax = opts.coil_axis if opts.coil_axis is not None else (
         int(attr_cax) if attr_cax is not None else None)
     if cax is None and domain == "kspace" and len(ds.shape) == 4:
         opts.warnings.append(f"{path.name}:{key} is 4D k-space with no coil axis given; if an "
                              "axis holds receive coils, say so with --coil-axis.")
     fields: dict[str, Any] = {"dataset": key, "bit_depth": ds.dtype.itemsize * 8}
-    raw = {str(k): str(v)[:200] for k, v in list(f.attrs.items())[:50]}
-    raw.update({f"{key}.{k}": str(v)[:200] for k, v in list(ds.attrs.items())[:50]})
+    raw = _attributes(f, "", path, opts)
+    raw.update(_attributes(ds, f"{key}.", path, opts))
     data: Any = CheckedReads(ds, path)
     nd = len(ds.shape)
     if is_complex_pairs(tuple(ds.shape), ds.dtype):

@@ -13,6 +13,7 @@ ITU-R Recommendation BT.601 (luma weights 0.299, 0.587, 0.114).
 
 from __future__ import annotations
 
+import io
 import re
 import warnings as _warnings
 from pathlib import Path
@@ -37,10 +38,14 @@ def natural_key(path: Path) -> list[Any]:
 def _open(path: Path, opts: ReadOptions) -> Any:
     from PIL import Image, UnidentifiedImageError
 
+    check_array_bytes(path.stat().st_size, opts.limits, str(path), path.name)
     try:
         with _warnings.catch_warnings():
             _warnings.simplefilter("error", Image.DecompressionBombWarning)
-            im = Image.open(path)
+            # A forged chunk length (PNG IDAT of 512 MiB in a 1 kB file)
+            # makes Pillow ask the file for that many bytes at once, which CPython
+            # allocates first; a BytesIO returns only what is there.
+            im = Image.open(io.BytesIO(path.read_bytes()))
     except (Image.DecompressionBombError, Image.DecompressionBombWarning) as exc:
         raise InputError("too_large", f"{path.name}: {one_line(exc)}", str(path)) from exc
     except (UnidentifiedImageError, OSError, SyntaxError, ValueError) as exc:
