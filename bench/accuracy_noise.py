@@ -444,10 +444,38 @@ def k_offset_floor(rng: np.random.Generator) -> Case:
                 _truth(magnitude_only="present", coil_combination="inconclusive"))
 
 
+def k_zero_band(rng: np.random.Generator) -> Case:
+    """RSS with zeros outside a resampled field of view (a band at one edge)."""
+    p = _params(rng)
+    L = int(rng.choice([4, 8]))
+    u = _to_uint(synth.rss(_acq(p, L), axis=1), 4095)
+    rows = int(rng.integers(6, 16))
+    if rng.random() < 0.5:
+        u[:, :rows, :] = 0
+    else:
+        u[:, :, -rows:] = 0
+    v = Volume.from_array(u, header=Header(fields={"bits_stored": 12}))
+    return Case("rss, zeros outside the field of view", v,
+                _truth(magnitude_only="present", coil_combination="present"), channels=L)
+
+
+def k_air_clipped_low(rng: np.random.Generator) -> Case:
+    """Air clipped from below at its 10-25th percentile: scattered pile, clipping."""
+    p = _params(rng)
+    u = _to_uint(synth.rss(_acq(p, 4), axis=1), 4095)
+    air = u[u < np.percentile(u, 25)]
+    u = np.maximum(u, np.percentile(air, float(rng.uniform(10, 25)))).astype(np.uint16)
+    v = Volume.from_array(u, header=Header(fields={"bits_stored": 12}))
+    return Case("air clipped from below", v,
+                _truth(magnitude_only="present", coil_combination="inconclusive",
+                       intensity_quantization="present"))
+
+
 KINDS: list[Callable[[np.random.Generator], Case]] = [
     k_low_snr, k_gibbs, k_unequal_noise, k_many_slices, k_zero_filled_single,
     k_ghost_single, k_uint16_rayleigh_small, k_clip_small, k_windowed_uint8,
-    k_masked_noisy_edge, k_fake_kspace, k_fake_kspace_masked, k_offset_floor,
+    k_masked_noisy_edge, k_fake_kspace, k_fake_kspace_masked, k_offset_floor, k_zero_band,
+    k_air_clipped_low,
     k_complex_single, k_complex_multicoil, k_complex_kspace, k_magnitude_single,
     k_rss, k_rss, k_rss_uint16, k_rss_small_sigma, k_single_uint16, k_zero_filled,
     k_correlated, k_ghosting, k_real_signed, k_complex_zero_imag, k_masked,
