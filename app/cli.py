@@ -156,4 +156,8 @@ def main(argv: list[str] | None = None) -> int:
 
 
 if __name__ == "__main__":
-    sys.exit(main())
+    # Under ``python -m app.cli`` this file runs as ``__main__``, a second copy;
+    # sub-command modules register into ``app.cli``, so run that one.
+    from app.cli import main as _main
+
+    sys.exit(_main())
