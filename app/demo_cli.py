@@ -40,7 +40,7 @@ def _add(p: argparse.ArgumentParser) -> None:
     p.add_argument("--data", default="rawproof-data",
                    help="data folder to create (default rawproof-data, as rawproof serve)")
     p.add_argument("--force", action="store_true",
-                   help="delete a non-empty data folder first")
+                   help="delete an existing rawproof data folder there first")
     p.add_argument("--only", action="append", metavar="SLUG",
                    help="load only this demo source (repeatable; for quick trials)")
     p.add_argument("--quiet", action="store_true", help="print only the accounts at the end")
@@ -55,6 +55,18 @@ def _prepare_folder(data: Path, force: bool) -> None:
                 "not_empty",
                 f"The data folder {data} is not empty; choose another with --data, or add "
                 "--force to delete it and start again.", str(data))
+        if not ((data / "rawproof.sqlite3").is_file() or (data / "store").is_dir()):
+            # --force replaces a rawproof data folder, never an arbitrary folder
+            raise InputError(
+                "not_a_data_folder",
+                f"{data} is not empty and does not look like a rawproof data folder, so "
+                "--force leaves it alone; choose an empty or new folder with --data.",
+                str(data))
+        from app.config import Settings
+        from app.store.db import database
+
+        # connections this process may hold to the old database file must not survive it
+        database(Settings(data_dir=data.resolve())).engine.dispose()
         shutil.rmtree(data)
     data.mkdir(parents=True, exist_ok=True)
 

@@ -103,16 +103,22 @@ def test_every_source_loaded_with_comments_and_decisions(loaded: dict) -> None:
 
 
 def test_refuses_non_empty_folder(tmp_path: Path) -> None:
-    """A non-empty data folder is left alone (exit code 2) unless --force is given."""
+    """A non-empty folder is left alone (exit code 2); --force replaces only a folder
+    that holds a rawproof data folder's database, never an arbitrary folder."""
     data = tmp_path / "d"
     data.mkdir()
     (data / "keep.txt").write_text("mine")
-    assert main(["demo", "--data", str(data), "--quiet", "--only", "half-fourier"]) == 2
+    only = ["--quiet", "--only", "half-fourier"]
+    assert main(["demo", "--data", str(data), *only]) == 2
+    assert main(["demo", "--data", str(data), "--force", *only]) == 2
     assert (data / "keep.txt").read_text() == "mine"
-    assert main(["demo", "--data", str(data), "--quiet", "--force",
-                 "--only", "half-fourier"]) == 0
-    assert not (data / "keep.txt").exists()
-    assert (data / "rawproof.sqlite3").is_file()
+    fresh = tmp_path / "fresh"
+    assert main(["demo", "--data", str(fresh), *only]) == 0
+    assert main(["demo", "--data", str(fresh), *only]) == 2  # not empty now
+    (fresh / "marker.txt").write_text("old run")
+    assert main(["demo", "--data", str(fresh), "--force", *only]) == 0
+    assert not (fresh / "marker.txt").exists()
+    assert (fresh / "rawproof.sqlite3").is_file()
 
 
 def _close(a: float, b: float, tol: float) -> bool:
