@@ -250,3 +250,24 @@ def test_print_stylesheet_applies(page, ids) -> None:
         assert 1 <= n_pages <= 3, n_pages
     finally:
         page.emulate_media(media="screen")
+
+
+def test_evidence_routes_need_sign_in(demo_server, ids) -> None:
+    """Figures, previews, the calculator and the methods text are for signed-in
+    members only: a page request is sent to sign-in, an API request gets 401."""
+    srv, _ = demo_server
+    i = ids["openbrain-magnitude"]
+    member = srv.login(*MEMBER)
+    page_html = member.get(f"/datasets/{i}").text
+    member.close()
+    figure = re.search(r'src="(/datasets/\d+/reports/\d+/figures/[a-z_]+\.png)"', page_html)
+    preview = re.search(r'src="(/datasets/\d+/reports/\d+/previews/[^"]+\.png)"', page_html)
+    assert figure and preview
+    anon = srv.client()
+    for url in (figure.group(1), preview.group(1), f"/datasets/{i}/methods.txt",
+                f"/datasets/{i}/effective-rate.png"):
+        r = anon.get(url)
+        assert r.status_code == 303 and r.headers["location"].startswith("/login"), url
+    r = anon.get(f"/datasets/{i}/effective-rate", headers={"accept": "application/json"})
+    assert r.status_code == 401
+    anon.close()
