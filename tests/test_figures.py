@@ -264,3 +264,35 @@ def test_effective_curve_marks_the_calculators_value() -> None:
     np.testing.assert_allclose(lines["raw acquisition (full grid)"].get_ydata(), [2, 4, 8])
     mark = lines["R = 4: R_eff = 2.42"]
     assert mark.get_xdata()[0] == 4.0 and mark.get_ydata()[0] == pytest.approx(2.42)
+
+
+def test_calculator_support_rule_matches_sampling_command(tmp_path) -> None:
+    """The page reads the true support from a report exactly as ``rawproof sampling
+    --from-report`` does (app.sampling_cli.support_from_report, the reference), and
+    its answer is app.sampling.effective_rate's with the command's defaults
+    (20 masks, seed 0). Truth: cols support 0.5 of 256, rows full."""
+    import json
+
+    from app import sampling
+    from app.sampling_cli import support_from_report
+    from app.web import evidence
+
+    rep = {"input": {"shape": [3, 256, 256]}, "traces": {"zero_filling": {
+        "status": "present", "estimates": {
+            "rows": {"support_fraction": 1.0, "padding_factor": 1.0},
+            "cols": {"support_fraction": 0.5, "padding_factor": 2.0}}}}}
+    path = tmp_path / "r.json"
+    path.write_text(json.dumps(rep))
+    ref = support_from_report(str(path))
+    sup = evidence.measured_support(rep)
+    assert sup["shape"] == ref["shape"] and sup["support"] == ref["support"] == [1.0, 0.5]
+    got = evidence.effective_summary(rep, family="polynomial", acceleration=4.0, dims=1,
+                                     axis="cols")
+    want = sampling.effective_rate((256, 256), (1.0, 0.5), "polynomial", 4.0, dims=1,
+                                   axis="cols", n_masks=20, seed=0)
+    assert got["effective_acceleration"] == want["effective_acceleration"]
+    assert got["raw_effective_acceleration"] == pytest.approx(4.0, rel=0.05)
+    with pytest.raises(Exception, match="acceleration"):
+        evidence.effective_summary(rep, family="polynomial", acceleration=99.0)
+    opts = evidence.calculator_options(rep)
+    assert opts["default"]["axis"] == "cols" and "128 of 256 cols" in opts["support_text"]

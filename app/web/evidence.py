@@ -20,6 +20,7 @@ from fastapi.responses import JSONResponse, Response
 from sqlalchemy.orm import Session
 
 from app.config import Settings
+from app.errors import InputError
 from app.methods import methods_statement
 from app.store import files as filestore
 from app.store import service
@@ -351,7 +352,7 @@ def methods_for(db: Session, dataset: Any, report: dict[str, Any] | None) -> str
     decision = {"outcome": dec.outcome, "rationale": dec.rationale} if dec else None
     try:
         eff = default_effective(report)
-    except (ValidationError, ImportError, ValueError):
+    except (ValidationError, InputError, ImportError, ValueError):
         eff = None
     return methods_statement(report, decision, effective=eff)
 
@@ -377,7 +378,7 @@ def warm_cache(settings: Settings, report_id: int, report: dict[str, Any]) -> in
                 n += 1
     try:
         opts = calculator_options(report)
-    except ValidationError:
+    except (ValidationError, InputError):
         opts = None
     if opts is not None:
         dflt = opts["default"]
@@ -403,8 +404,8 @@ def evidence_for(request: Request, dataset: Any, report: dict[str, Any] | None,
                          for t in f["traces"] if t in report.get("traces", {})}
     try:
         calc = calculator_options(report)
-    except ValidationError:
-        calc = None
+    except (ValidationError, InputError) as exc:
+        calc = {"unavailable": getattr(exc, "message", str(exc))}
     with request.app.state.database.scope(write=False) as s:
         methods = methods_for(s, service.get_dataset(s, dataset.id), report)
     return {
