@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from urllib.parse import urlencode
+
 from fastapi import APIRouter, Depends, Request
 from sqlalchemy import select
 
@@ -10,6 +12,9 @@ from app.store.registry import SORTS, filter_rows, registry_rows
 from app.web.deps import DbSession, current_user
 from app.web.labels import TRACE_LABELS
 from app.web.templating import render
+
+#: Rows per registry page: the whole lab's list renders in one page up to this size.
+PAGE_SIZE = 100
 
 router = APIRouter(tags=["registry"], dependencies=[Depends(current_user)])
 
@@ -24,11 +29,16 @@ def home(
     uploader: str = "",
     sort: str = "updated",
     order: str = "desc",
+    page: int = 1,
 ):
     all_rows = registry_rows(db)
     rows = filter_rows(all_rows, q=q, decision=decision if decision in (*OUTCOMES, "none") else "",
                        trace=trace, uploader=uploader,
                        sort=sort if sort in SORTS else "updated", descending=order != "asc")
+    n_matching = len(rows)
+    n_pages = max(1, -(-n_matching // PAGE_SIZE))
+    page = min(max(1, page), n_pages)
+    rows = rows[(page - 1) * PAGE_SIZE:page * PAGE_SIZE]
     trace_ids = sorted({t for r in all_rows for t in r.traces} | set(TRACE_LABELS))
     uploaders = list(db.scalars(select(User).order_by(User.name)))
     return render(request, "registry.html", {
@@ -36,4 +46,9 @@ def home(
         "uploader": uploader, "sort": sort, "order": order, "sorts": SORTS,
         "trace_ids": trace_ids, "uploaders": uploaders,
         "filtered": bool(q or decision or trace or uploader),
+        "page": page, "n_pages": n_pages, "n_matching": n_matching,
+        "first_index": (page - 1) * PAGE_SIZE + 1,
+        "page_query": urlencode({k: v for k, v in (("q", q), ("decision", decision),
+                                 ("trace", trace), ("uploader", uploader), ("sort", sort),
+                                 ("order", order)) if v}),
     })
