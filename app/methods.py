@@ -174,9 +174,10 @@ def methods_statement(report: dict[str, Any], decision: dict[str, Any] | None = 
 
     References
     ----------
-    The undersampling consequence follows Shimron E., Tamir J.I., Wang K.,
-    Lustig M. (2022), "Implicit data crimes: machine learning bias arising from
-    misuse of public data", PNAS 119(13):e2117203119.
+    The undersampling consequence is the effective acceleration computed by
+    :mod:`app.sampling` (mask samples counted inside the acquired support);
+    variable-density mask families after Lustig, Donoho and Pauly, Magn. Reson.
+    Med. 58:1182-1195, 2007.
     """
     inp = report.get("input") or {}
     shape = [int(s) for s in inp.get("shape") or []]

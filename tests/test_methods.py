@@ -2,9 +2,9 @@
 
 Each report states its truth (the traces present and their estimates); the
 statement must name every present trace with its parameters, list what was not
-found, and state the effective acceleration when one is given. The meaning of
-zero-filled data for retrospective undersampling follows Shimron et al.,
-PNAS 119(13):e2117203119 (2022) (cited from memory).
+found, and state the effective acceleration when one is given. That a
+variable-density mask on zero-filled data samples the acquired support more
+densely than its nominal rate is a fact of the trade (common practice, no source).
 """
 
 from __future__ import annotations

@@ -486,8 +486,9 @@ def build_effective_curve(curves: dict[str, Any], *, marker: float | None = None
 
     References
     ----------
-    Shimron E. et al. (2022), "Implicit data crimes", PNAS 119(13):e2117203119
-    (the effective acceleration of retrospective masks on zero-filled data).
+    The curves come from :mod:`app.sampling` (a direct count of mask samples inside
+    the acquired support; variable-density families after Lustig, Donoho and Pauly,
+    Magn. Reson. Med. 58:1182-1195, 2007).
     """
     nominal = np.asarray(curves.get("nominal") or [], dtype=float)
     fig = _new_figure(6.4, 3.8)
