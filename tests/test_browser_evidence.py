@@ -203,6 +203,8 @@ def test_methods_statement_names_present_traces_and_copies(page, ids) -> None:
             assert TRACE_NAMES.get(tid, tid) in text, (slug, tid)
         plain = page.request.get(f"/datasets/{i}/methods.txt")
         assert plain.status == 200 and plain.text().strip() == text.strip(), slug
+        # the JSON export carries the same paragraph (an added key of the contract)
+        assert report["methods_statement"].strip() == text.strip(), slug
     page.click(".ev-copy")
     page.wait_for_function("() => document.querySelector('.ev-copied').textContent !== ''")
     assert page.locator(".ev-copied").inner_text() == "Copied."

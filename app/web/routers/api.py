@@ -22,7 +22,12 @@ from app.web.deps import (
     csrf_protect,
     current_user,
 )
-from app.web.routers.datasets import decision_json, decisions_export, job_status
+from app.web.routers.datasets import (
+    decision_json,
+    decisions_export,
+    job_status,
+    with_methods_statement,
+)
 from app.web.routers.uploads import upload
 
 router = APIRouter(prefix="/api", tags=["api"], dependencies=[Depends(current_user)])
@@ -73,10 +78,11 @@ def get_dataset(dataset_id: int, db: DbSession):
 
 @router.get("/datasets/{dataset_id}/report")
 def get_report(dataset_id: int, db: DbSession):
-    rep = service.get_current_report(db, service.get_dataset(db, dataset_id).id)
+    ds = service.get_dataset(db, dataset_id)
+    rep = service.get_current_report(db, ds.id)
     if rep is None:
         raise NotFoundError("This dataset has no report yet.")
-    return rep.data
+    return with_methods_statement(db, ds, rep.data)
 
 
 @router.get("/datasets/{dataset_id}/reports")

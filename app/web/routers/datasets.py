@@ -123,7 +123,26 @@ def report_json(dataset_id: int, db: DbSession):
     rep = service.get_current_report(db, ds.id)
     if rep is None:
         raise NotFoundError("This dataset has no report yet.")
-    return _json_download(rep.data, f"rawproof-report-{ds.id}-{rep.id}.json")
+    return _json_download(with_methods_statement(db, ds, rep.data),
+                          f"rawproof-report-{ds.id}-{rep.id}.json")
+
+
+def with_methods_statement(db: Session, ds, report: dict[str, Any]) -> dict[str, Any]:  # noqa: ANN001
+    """The report contract plus the paste-ready methods paragraph (an added key).
+
+    The paragraph is the one the page shows: the current decision and the
+    calculator's default effective acceleration.
+    """
+    from app.methods import methods_statement
+    from app.web.evidence import default_effective
+
+    current = service.current_decision(db, ds)
+    decision = ({"outcome": current.outcome, "rationale": current.rationale}
+                if current is not None else None)
+    out = dict(report)
+    out["methods_statement"] = methods_statement(report, decision,
+                                                 effective=default_effective(report))
+    return out
 
 
 @router.get("/datasets/{dataset_id}/reports/{report_id}.json")
