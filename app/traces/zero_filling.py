@@ -9,16 +9,19 @@ at the edge of the acquired region and stays below the in-band level beyond it.
 
 Method: the frame-averaged log-power map (one FFT pass, :mod:`app.traces.spectrum`)
 is read line by line along the axis, over a band of the other axis's frequencies
-that avoids its DC line (where the object's straight edges put ripples); each
-line's outward profile is scored for a step against a local linear model in dB
-on each side, after the median over the band, for a sustained level drop (the
-median level after a candidate edge against the median before it, less the decay
-a local line predicts); an edge must also show in the inner and the outer half of
-the band at the same place (a straight edge, not a ring of the object's spectrum),
-and is placed where the profile has fallen 30 % of the drop, with sub-sample
-interpolation. The support fraction is the width of the
-region between the two edges over the axis size and the padding factor its
-inverse. An echo edge at twice the acquired width is recognised as such.
+inside its acquired region that avoids its DC line (where the object's straight
+edges put ripples), and the lines are combined by their median. Each outward side
+of that profile is scored for a sustained level drop: the median level after a
+candidate edge against the median before it, less the decay that a line fitted
+before it predicts (a smooth decay scores low, a ripple that recovers scores
+low). An edge must also show in the inner and the outer half of the band at the
+same place (the edge of zero-filled k-space is a straight line in the map, a ring
+of the object's spectrum is not), and is placed where the profile has fallen
+30 % of the drop, with sub-sample interpolation. The support fraction is the width
+between the two edges over the axis size, the padding factor its inverse. A second
+edge at twice the distance (the end of the magnitude echo) is recognised as such.
+Magnitude images broaden the visible support by the bandwidth of the object's
+phase (about a sample per side); complex data give it to the sample.
 
 References
 ----------
