@@ -158,7 +158,7 @@ def dicom_fields(data: bytes, rng: random.Random) -> bytes:
 
 
 def png_ihdr(data: bytes, rng: random.Random) -> bytes:
-    if data[:8] != b"\x89PNG\r\n\x1a\n" or data[12:16] != b"IHDR":
+    if len(data) < 33 or data[:8] != b"\x89PNG\r\n\x1a\n" or data[12:16] != b"IHDR":
         return data
     body = bytearray(data[16:29])
     w = rng.choice([100000, 2**31 - 1, 0, 65535, 1])

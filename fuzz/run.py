@@ -74,7 +74,11 @@ def main(argv: list[str] | None = None) -> int:
     while time.monotonic() < deadline:
         name = rng.choice(names)
         suffix, data = corpus[name]
-        sample = mutate(data, suffix, rng)
+        try:
+            sample = mutate(data, suffix, rng)
+        except Exception as exc:  # noqa: BLE001 - a bug of the mutator, not of a reader
+            outcomes[f"mutator error {type(exc).__name__}"] += 1
+            continue
         per_seed[name] += 1
         signal.setitimer(signal.ITIMER_REAL, args.timeout)
         try:
