@@ -21,8 +21,10 @@ Kirchner's variant:
 3. the magnitude of the 2D DFT of ``p`` averaged over a bounded, stated subset of
    frames, divided by its local median (7 x 7) so that a peak stands out from the
    image's own spectrum;
-4. a peak of that ratio above ``PEAK_RATIO`` on the frequency axes, or above
-   ``OFF_AXIS_RATIO`` off them, away from the lowest frequencies, calls resampling.
+4. a peak of that ratio above ``PEAK_RATIO`` on the frequency axes, or off them
+   above a threshold falling from ``PEAK_RATIO`` for one frame to ``OFF_AXIS_RATIO``
+   for four or more (averaging frames thins the noise tail), away from the lowest
+   frequencies, calls resampling.
    A peak on the ``f_rows = 0`` line at ``f`` cycles/sample means the columns were
    scaled: the interpolation phase ``frac(n / s)`` repeats with
    frequency ``|1/s - round(1/s)|``, so ``s = 1 / (1 - f)`` for ``1 < s <= 2`` (reported;
@@ -35,7 +37,10 @@ predictor residual, and is left to the ``zero_filling`` trace. It does leave a w
 line of raised p-map spectrum at twice its band edge (the residual of a band-limited
 image is narrow-band near the band edge, and its square doubles that frequency),
 which is why ``PEAK_RATIO`` (on the axes, where those lines cross) is set well
-above what raw images show. NaN samples (outside
+above what raw images show. Other periodic processing leaves peaks too and is not
+told apart here: JPEG's 8 x 8 blocks (multiples of 1/8) and, seen on pydicom's
+MR2_UNCI.dcm (decoded from irreversible JPEG 2000), a peak at the Nyquist
+frequency that reads as a 2x scaling. NaN samples (outside
 a resliced field of view) are excluded from the p-map.
 
 References
@@ -232,7 +237,10 @@ def detect(frames: list[np.ndarray], *, workers: int = 2) -> ResamplingResult:
     # off the axes a lower threshold holds (band-limited images raise only axis lines)
     on_axis = (np.abs(np.arange(rows) - rows // 2)[:, None] <= 1) | (
         np.abs(np.arange(cols) - cols // 2)[None, :] <= 1)
-    threshold = np.where(on_axis, PEAK_RATIO, OFF_AXIS_RATIO)
+    # fewer averaged frames leave a heavier noise tail: off-axis threshold from 8 (one
+    # frame) down to OFF_AXIS_RATIO (four or more)
+    off = max(OFF_AXIS_RATIO, PEAK_RATIO - (len(frames) - 1))
+    threshold = np.where(on_axis, PEAK_RATIO, off)
     locmax = (r == ndimage.maximum_filter(r, size=3, mode="wrap")) & (r >= threshold)
     # the half-plane f_rows > 0 (plus its edge lines, Nyquist included)
     locmax &= ((fy[:, None] > 0) | (fy[:, None] == -0.5)
