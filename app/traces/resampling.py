@@ -38,9 +38,11 @@ line of raised p-map spectrum at twice its band edge (the residual of a band-lim
 image is narrow-band near the band edge, and its square doubles that frequency),
 which is why ``PEAK_RATIO`` (on the axes, where those lines cross) is set well
 above what raw images show. Other periodic processing leaves peaks too and is not
-told apart here: JPEG's 8 x 8 blocks (multiples of 1/8) and, seen on pydicom's
-MR2_UNCI.dcm (decoded from irreversible JPEG 2000), a peak at the Nyquist
-frequency that reads as a 2x scaling. NaN samples (outside
+told apart here: JPEG's 8 x 8 blocks (multiples of 1/8), and a peak at the
+Nyquist frequency that reads as a 2x scaling, seen on pydicom's MR2_UNCI.dcm and
+MR2_J2KI.dcm but not on MR2_UNCR.dcm (by the names, from memory: the irreversible
+JPEG 2000 image and its uncompressed counterpart, so likely the wavelet's dyadic
+structure rather than a grid scaling). NaN samples (outside
 a resliced field of view) are excluded from the p-map.
 
 References
