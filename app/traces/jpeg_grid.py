@@ -424,6 +424,44 @@ def _candidate_scores(s: np.ndarray, q: np.ndarray, *, dc: bool
     return nq, frac, z, mres
 
 
+#: Screening passes: coefficients scored per candidate step before the full pass.
+_SCREEN_COEFS = (64, 256)
+#: A candidate is dropped after a screening pass when its screened hits are so few
+#: that a step with a full-sample share of _MIN_FIT (0.85) on its lattice would show
+#: them with probability below this (binomial lower tail).
+_SCREEN_P = 1e-5
+
+
+def _screened_scores(s: np.ndarray, q: np.ndarray, *, dc: bool
+                     ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`_candidate_scores` on every step, cheaply: screen on subsamples first.
+
+    The full scores are computed only for steps that the screening passes (evenly
+    spaced subsamples of 64, then 256 coefficients) cannot rule out: a step is ruled
+    out when the binomial probability of so few lattice hits among the screened
+    informative coefficients, for a step whose true share is 0.85, is below
+    ``_SCREEN_P``. The others get zero support, which no acceptance rule passes;
+    every step that could be accepted gets exactly the full computation.
+    """
+    from scipy.stats import binom
+
+    keep = np.ones(q.size, dtype=bool)
+    for size in _SCREEN_COEFS:
+        if s.size <= 2 * size or keep.sum() <= 8:
+            break
+        sub = s[np.linspace(0, s.size - 1, size).round().astype(int)]
+        n_s, f_s, _, _ = _candidate_scores(sub, q[keep], dc=dc)
+        alive = binom.cdf(np.rint(f_s * n_s), n_s, _MIN_FIT) >= _SCREEN_P
+        keep[np.flatnonzero(keep)[~alive]] = False
+    nq = np.zeros(q.size, dtype=int)
+    frac = np.zeros(q.size)
+    z = np.zeros(q.size)
+    mres = np.full(q.size, np.inf)
+    if np.any(keep):
+        nq[keep], frac[keep], z[keep], mres[keep] = _candidate_scores(s, q[keep], dc=dc)
+    return nq, frac, z, mres
+
+
 def _multiple_of_true_step(s: np.ndarray, q: float, m: int, *, dc: bool) -> bool:
     """Whether step ``q`` stands against its divisor ``q / m``.
 
@@ -469,7 +507,7 @@ def _step_for(c: np.ndarray, *, dc: bool, max_step: int) -> tuple[float, int, fl
         return float("nan"), n, float("nan"), 0.0
     top = max_step if dc else int(min(max_step, 2 * np.max(np.abs(s)) + 2))
     q = np.arange(2, max(top, 2) + 1, dtype=np.float64)
-    nq, frac, z, mres = _candidate_scores(s, q, dc=dc)
+    nq, frac, z, mres = _screened_scores(s, q, dc=dc)
     good = (nq >= _MIN_SUPPORT) & (frac >= _MIN_FIT) & (z >= _MIN_Z)
     if not np.any(good):
         # a step of 1 only where many coefficients are too large to be rounding
