@@ -16,7 +16,10 @@ candidate edge against the median before it, less the decay that a line fitted
 before it predicts (a smooth decay scores low, a ripple that recovers scores
 low). An edge must also show in the inner and the outer half of the band at the
 same place (the edge of zero-filled k-space is a straight line in the map, a ring
-of the object's spectrum is not), and is placed where the profile has fallen
+of the object's spectrum is not) and, when its drop is below 9 dB (what smooth
+roll-offs of the object reach), at the same distance within 2 samples or 4 % in
+both halves (a ring sits closer to DC in the outer half). It is placed where the
+profile has fallen
 30 % of the drop, with sub-sample interpolation. The support fraction is the width
 between the two edges over the axis size, the padding factor its inverse. A second
 edge at twice the distance (the end of the magnitude echo) is recognised as such.
@@ -51,6 +54,11 @@ DEFAULT_BAND_SUPPORT = 0.4
 #: an edge at half the distance of the best one is the true edge (the best one the end
 #: of the magnitude echo) when its score reaches this fraction of the best score
 HALF_RULE_RATIO = 0.6
+#: the edge may sit this many samples apart in the two halves of the band (at most)
+HALVES_TOLERANCE = 2.0
+HALVES_RELATIVE = 0.04
+#: drops at least this large skip that check (no smooth roll-off seen reaches it)
+RING_CHECK_BELOW_DB = 9.0
 #: the edge is where the profile has fallen this fraction of the drop
 CROSSING_LEVEL = 0.3
 #: support fractions below this are not searched (padding above 5x)
@@ -222,7 +230,20 @@ def _side_edge(
     # the echo just outside a magnitude image's region is strongest near the edge, so
     # the crossing level sits nearer the in-band level than the mid-point
     level = inside[d] - CROSSING_LEVEL * (inside[d] - outside[d])
-    return crossing(prof, d, w, level), best, float(inside[d] - outside[d])
+    x = crossing(prof, d, w, level)
+    if halves is not None and inside[d] - outside[d] < RING_CHECK_BELOW_DB:
+        # a straight edge sits at the same distance in both halves of the band; a ring
+        # of the object's spectrum sits closer to DC in the outer half (checked for
+        # the weaker drops a smooth roll-off of the object can produce)
+        xs = []
+        for hp in halves:
+            _, h_in, h_out = edge_scores(hp, w)
+            if not (np.isfinite(h_in[d]) and np.isfinite(h_out[d])):
+                return None, best, None
+            xs.append(crossing(hp, d, w, h_in[d] - CROSSING_LEVEL * (h_in[d] - h_out[d])))
+        if abs(xs[0] - xs[1]) > max(HALVES_TOLERANCE, HALVES_RELATIVE * x):
+            return None, best, None
+    return x, best, float(inside[d] - outside[d])
 
 
 def axis_support(
