@@ -60,6 +60,15 @@ def test_unpadded_rss_images_are_absent(seed):
     assert trace.estimates["cols"]["padding_factor"] == 1.0
 
 
+@pytest.mark.parametrize(("size", "frames", "seed"), [(250, 1, 2), (250, 4, 2), (224, 1, 13)])
+def test_large_unpadded_images_are_absent(size, frames, seed):
+    """Large raw-like RSS images (truth: no padding): their smooth spectral roll-off near
+    0.2 cycles/sample is a ring, not the straight edge of zero-filled k-space: absent."""
+    img = synth.acquire((size, size), n_coils=4, n_slices=frames, sigma=0.019, seed=seed)
+    trace = zf.trace_from(sp.compute_spectrum(Volume.from_array(synth.rss(img, axis=1))))
+    assert trace.status == "absent"
+
+
 def test_complex_multicoil_images_to_one_sample():
     """Complex coil images keep exact zeros: support within one k-space sample (truth 100 x 90)."""
     img = synth.acquire((100, 90), n_coils=4, n_slices=3, sigma=0.01, seed=3)
