@@ -76,8 +76,11 @@ def extract_zip(archive: Path, target: Path, limits: Limits) -> list[str]:
         plan: list[tuple[zipfile.ZipInfo, PurePosixPath]] = []
         total = 0
         for info in infos:
-            rel = _safe_name(info.filename)
             where = f"{archive.name}:{info.filename}"
+            if not info.filename.strip("/\\"):
+                raise InputError("unreadable", f"{archive.name} has a member without a name "
+                                 "(a damaged archive); refusing to extract.", str(archive))
+            rel = _safe_name(info.filename)
             if rel is None:
                 raise InputError("unsafe_archive", f"{where}: the member's path is absolute or "
                                  "climbs out of the archive with '..'; refusing to extract.",

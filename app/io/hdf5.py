@@ -123,9 +123,11 @@ def _datasets(f: Any) -> dict[str, Any]:
 
     found: dict[str, Any] = {}
 
-    def visit(name: str, obj: Any) -> None:
+    def visit(name: Any, obj: Any) -> None:
         if isinstance(obj, h5py.Dataset):
-            found[name] = obj
+            # names that are not valid UTF-8 come back as bytes
+            key = name.decode("utf-8", "replace") if isinstance(name, bytes) else str(name)
+            found[key] = obj
 
     f.visititems(visit)
     return found
@@ -142,8 +144,12 @@ def _attributes(obj: Any, prefix: str, path: Path, opts: ReadOptions) -> dict[st
 
 
 def _usable(ds: Any) -> bool:
-    dt = np.dtype(ds.dtype)
-    return len(ds.shape) >= 2 and dt.fields is None and dt.kind in "biufc" and min(ds.shape) > 0
+    try:
+        dt = np.dtype(ds.dtype)
+        shape = tuple(ds.shape)
+    except (ValueError, TypeError, OSError, RuntimeError):
+        return False  # a damaged datatype or dataspace message
+    return len(shape) >= 2 and dt.fields is None and dt.kind in "biufc" and min(shape) > 0
 
 
 def _is_kspace_name(name: str) -> bool:
