@@ -32,6 +32,7 @@ import random
 import signal
 import sqlite3
 import subprocess
+import sys
 import threading
 import time
 import zipfile
@@ -43,7 +44,6 @@ import pytest
 
 from app.config import Settings
 from tests.server_harness import (
-    RAWPROOF,
     REPO,
     Server,
     free_port,
@@ -311,13 +311,17 @@ def test_database_locked_by_another_writer_delays_but_loses_nothing(server) -> N
 
 
 def _start_with_fsize(data: Path, fsize: int) -> Server:
-    """``rawproof serve`` under ``prlimit --fsize`` (writes past ``fsize`` bytes fail)."""
+    """``rawproof serve`` with RLIMIT_FSIZE set (writes past ``fsize`` bytes fail)."""
     data.mkdir(parents=True, exist_ok=True)
     port = free_port()
     env = {**os.environ}
     env.pop("RAWPROOF_DATABASE_URL", None)
     log = data / "server.log"
-    args = ["prlimit", f"--fsize={fsize}", *RAWPROOF, "serve", "--data", str(data),
+    # CPython ignores SIGXFSZ, so a write past the ceiling fails with EFBIG (OSError)
+    code = ("import resource, sys; "
+            f"resource.setrlimit(resource.RLIMIT_FSIZE, ({fsize}, {fsize})); "
+            "from app.cli import main; sys.exit(main())")
+    args = [sys.executable, "-c", code, "serve", "--data", str(data),
             "--host", "127.0.0.1", "--port", str(port), "--no-worker"]
     with open(log, "ab") as fh:
         proc = subprocess.Popen(args, stdout=fh, stderr=subprocess.STDOUT, env=env,
