@@ -44,7 +44,7 @@ from scipy import ndimage
 from app.io.volume import Volume
 from app.traces import spectrum as sp
 from app.traces import zero_filling as zf
-from app.traces.base import Trace, register
+from app.traces.base import Trace, inconclusive, register
 
 TRACE_ID = "kspace_filtering"
 RATIO = 0.6
@@ -286,4 +286,7 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
     .. [1] Harris, F. J. Proc. IEEE 66(1):51-83, 1978.
     .. [2] Bernstein, Fain and Riederer, J. Magn. Reson. Imaging 14:270-280, 2001.
     """
+    small = sp.too_small(volume)
+    if small:
+        return inconclusive(TRACE_ID, small)
     return trace_from(sp.spectrum_of(volume, ctx))

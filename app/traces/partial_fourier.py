@@ -46,7 +46,7 @@ import numpy as np
 from app.io.volume import Volume
 from app.traces import spectrum as sp
 from app.traces import zero_filling as zf
-from app.traces.base import Trace, register
+from app.traces.base import Trace, inconclusive, register
 
 TRACE_ID = "partial_fourier"
 #: complex data: fractions below this are called partial Fourier
@@ -222,4 +222,7 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
     .. [1] Noll, Nishimura and Macovski, IEEE Trans. Med. Imaging 10:154-163, 1991.
     .. [2] McGibney et al., Magn. Reson. Med. 30:51-59, 1993.
     """
+    small = sp.too_small(volume)
+    if small:
+        return inconclusive(TRACE_ID, small)
     return trace_from(sp.spectrum_of(volume, ctx))

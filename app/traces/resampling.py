@@ -65,7 +65,7 @@ from scipy import ndimage
 
 from app.io.volume import Volume
 from app.traces import spectrum as sp
-from app.traces.base import Trace, register
+from app.traces.base import Trace, inconclusive, register
 
 TRACE_ID = "resampling"
 #: Kirchner's fixed linear predictor (MM&Sec 2008, section 4), the fallback
@@ -344,6 +344,9 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
     .. [1] Kirchner, M. Proc. ACM MM&Sec, 11-20, 2008.
     .. [2] Popescu and Farid, IEEE Trans. Signal Processing 53(2):758-767, 2005.
     """
+    small = sp.too_small(volume)
+    if small:
+        return inconclusive(TRACE_ID, small)
     if volume.domain == "kspace":
         return Trace(TRACE_ID, "absent", 0.5,
                      "k-space input: no image grid to have been resampled.",

@@ -330,8 +330,9 @@ def round_sig(values: Any, digits: int = 4) -> Any:
     a = np.where(np.abs(a) < 1e-200, 0.0, a)  # denormal-scale values round to 0
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         mag = np.where(a == 0, 0, np.floor(np.log10(np.abs(np.where(a == 0, 1, a)))))
-    factor = 10.0 ** (digits - 1 - mag)
-    out = np.round(a * factor) / factor
+    with np.errstate(invalid="ignore", over="ignore"):  # inf/NaN become NaN below
+        factor = 10.0 ** (digits - 1 - mag)
+        out = np.round(a * factor) / factor
     out = np.where(np.isfinite(a), out, np.nan)
     if out.ndim == 0:
         f = float(out)
@@ -431,3 +432,22 @@ def step_scores(side_db: np.ndarray, window: int, gap: int = 1) -> np.ndarray:
         d = np.arange(w - 1, n - w - g)
         out[d] = end_val[d - w + 1] - start_val[d + 1 + g]
     return out[:, 0] if one_d else out
+
+
+#: Smallest image side on which a k-space profile has an edge to find.
+MIN_SIDE = 8
+
+
+def too_small(volume: Volume) -> str | None:
+    """Why the spectral analysers cannot work on this volume's images, or None.
+
+    An image with a side under :data:`MIN_SIDE` samples has too few k-space
+    samples per axis for a support edge, a window roll-off or a periodicity
+    peak to be told from noise.
+    """
+    rows, cols = volume.image_shape
+    if min(rows, cols) < MIN_SIDE:
+        return (f"The images are {rows} x {cols} samples, smaller than "
+                f"{MIN_SIDE} x {MIN_SIDE}: too few k-space samples to measure.")
+    return None
+

@@ -44,7 +44,7 @@ import numpy as np
 
 from app.io.volume import Volume
 from app.traces import spectrum as sp
-from app.traces.base import Trace, register
+from app.traces.base import Trace, inconclusive, register
 
 TRACE_ID = "zero_filling"
 #: a step of at least this many dB (median over the band) marks an edge
@@ -409,6 +409,9 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
     ----------
     .. [1] Bernstein, Fain and Riederer, J. Magn. Reson. Imaging 14:270-280, 2001.
     """
+    small = sp.too_small(volume)
+    if small:
+        return inconclusive(TRACE_ID, small)
     spec = sp.spectrum_of(volume, ctx)
     for note in spec.notes:
         if note not in ctx.notes:
