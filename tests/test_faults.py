@@ -68,14 +68,37 @@ def _job(member, ds: int) -> dict | None:
     return member.get(f"/api/datasets/{ds}").json()["job"]
 
 
-def _phase(job: dict | None) -> str:
-    if not job or job["state"] != "running":
-        return f"not running ({job and job['state']})"
-    files = (job.get("progress") or {}).get("files") or []
-    if not files:
+def _progress(data_dir: Path, job_id: int, since: float) -> tuple[int, int] | None:
+    """(analysers done, analysers in all) from the progress file the analysis process of
+    this attempt writes (``<data>/tmp/job-<id>-*/progress.jsonl``), or None before it starts."""
+    import json
+
+    dirs = [d for d in (data_dir / "tmp").glob(f"job-{job_id}-*")
+            if d.is_dir() and d.stat().st_mtime >= since - 1.0]
+    for d in sorted(dirs, key=lambda d: d.stat().st_mtime, reverse=True):
+        try:
+            lines = (d / "progress.jsonl").read_text().splitlines()
+        except FileNotFoundError:
+            continue
+        total, done = 0, 0
+        for line in lines:
+            try:
+                rec = json.loads(line)
+            except ValueError:
+                continue
+            if "n_traces" in rec:
+                total = int(rec["n_traces"])
+            else:
+                done += 1
+        return done, total
+    return None
+
+
+def _phase(progress: tuple[int, int] | None) -> str:
+    if progress is None:
         return "claimed, reading"
-    done, total = files[0]["done"], files[0]["total"]
-    return "analysers done, storing" if done >= total else f"analysing {done}/{total}"
+    done, total = progress
+    return "analysers done, storing" if total and done >= total else f"analysing {done}/{total}"
 
 
 def _verify_store(data_dir: Path) -> int:
@@ -101,14 +124,17 @@ def _larger_npy(seed: int) -> bytes:
     return buf.getvalue()
 
 
-def _wait_for_phase(member, ds_ids: list[int], target: str, worker, log: Path,
-                    rng: random.Random) -> tuple[int | None, str]:
-    """Wait until a job is running and has reached ``target`` ("reading": just claimed,
-    then a seeded random delay; "analysing": some analysers done; "late": the last
-    third of the analysers or the report being stored, the step between being too
-    short to see); returns (dataset id, phase seen) or (None, ...) when all finished."""
+def _wait_for_phase(member, data_dir: Path, ds_ids: list[int], target: str, worker,
+                    log: Path, rng: random.Random, base: dict[int, int], since: float
+                    ) -> tuple[int | None, str]:
+    """Wait until a job claimed by this worker (more attempts than in ``base``) reaches
+    ``target`` ("reading": just claimed, then a seeded random delay; "analysing": some
+    analysers done; "late": the last third of the analysers or the report being stored,
+    the step between being too short to see); returns (dataset id, phase at the kill)
+    or (None, ...) when every job has finished."""
     deadline = time.monotonic() + 120
-    watched: int | None = None
+    kill_by = deadline
+    watched: tuple[int, int] | None = None  # (dataset id, job id)
     while True:
         assert worker.poll() is None, log.read_text()[-2000:]
         assert time.monotonic() < deadline, f"no job reached {target}"
@@ -116,26 +142,31 @@ def _wait_for_phase(member, ds_ids: list[int], target: str, worker, log: Path,
             jobs = {ds: _job(member, ds) for ds in ds_ids}
             if all(j and j["state"] in ("done", "failed") for j in jobs.values()):
                 return None, "all finished"
-            watched = next((ds for ds, j in jobs.items() if j and j["state"] == "running"),
-                           None)
-            if watched is None:
+            mine = [(ds, j["id"]) for ds, j in jobs.items()
+                    if j and j["state"] == "running" and j["attempts"] > base[ds]]
+            if not mine:
                 time.sleep(0.02)
                 continue
+            watched = mine[0]
+            kill_by = deadline
             if target == "reading":
                 time.sleep(rng.uniform(0.0, 1.0))  # fault injection point, not a timing check
-                return watched, _phase(_job(member, watched))
-        job = _job(member, watched)
+                return watched[0], _phase(_progress(data_dir, watched[1], since))
+        prog = _progress(data_dir, watched[1], since)
+        job = _job(member, watched[0])
         if not job or job["state"] != "running":
             watched = None
             continue
-        files = (job.get("progress") or {}).get("files") or []
-        if not files:
+        if prog is None or prog[1] == 0:
             continue
-        done, total = files[0]["done"], files[0]["total"]
-        if target == "analysing" and 1 <= done < total:
-            return watched, _phase(job)
-        if target == "late" and done >= (2 * total) // 3:
-            return watched, _phase(job)
+        done, total = prog
+        if kill_by == deadline:
+            # analysis has begun; on a fast machine a phase may pass between two looks,
+            # so kill anyway at a random moment within the next two seconds
+            kill_by = time.monotonic() + rng.uniform(0.0, 2.0)
+        if (time.monotonic() > kill_by or (target == "analysing" and 1 <= done < total)
+                or (target == "late" and done >= (2 * total) // 3)):
+            return watched[0], _phase(prog)
 
 
 def test_workers_killed_at_random_points_leave_every_job_finished_once(server) -> None:
@@ -152,10 +183,13 @@ def test_workers_killed_at_random_points_leave_every_job_finished_once(server) -
         log = server.data_dir / f"kill-worker-{n}.log"
         # lease 1 s: the heartbeat (every lease/4) publishes progress often enough to see
         # each phase; a killed worker's lease runs out quickly
+        base = {ds: (_job(ada, ds) or {}).get("attempts", 0) for ds in ids}
+        since = time.time()
         worker = start_worker(server.data_dir, "--lease-seconds", "1", "--poll-seconds", "0.1",
                               log_name=log.name)
         try:
-            ds, phase = _wait_for_phase(ada, ids, target, worker, log, rng)
+            ds, phase = _wait_for_phase(ada, server.data_dir, ids, target, worker, log, rng,
+                                        base, since)
             if ds is not None:
                 phases.append(phase)
         finally:
