@@ -299,3 +299,22 @@ def test_long_run_findings_are_input_errors(name: str, code: str) -> None:
     from the seeds above."""
     path = FINDINGS / name
     _refused(path.read_bytes(), "".join(path.suffixes), code)
+
+
+def test_folder_symlinks_to_outside_files_are_not_followed(tmp_path) -> None:
+    """A folder whose only array is a symbolic link to a file outside it (and a link to
+    a folder outside it): nothing outside is read, the folder holds nothing readable."""
+    from app.errors import InputError
+    from app.io import open_input
+
+    outside = tmp_path / "outside"
+    outside.mkdir()
+    np.save(outside / "secret.npy", np.ones((2, 8, 8), np.float32))
+    folder = tmp_path / "candidate"
+    folder.mkdir()
+    (folder / "scan.npy").symlink_to(outside / "secret.npy")
+    (folder / "more").symlink_to(outside, target_is_directory=True)
+    with pytest.raises(InputError) as info:
+        with open_input(folder, limits=FUZZ_LIMITS):
+            pass
+    assert info.value.code in ("empty", "no_readable_files")
