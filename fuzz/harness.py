@@ -81,3 +81,34 @@ def check_input(data: bytes, suffix: str, *, limits: Limits = FUZZ_LIMITS,
         raise FindingError(f"heap peak {peak / 2**20:.1f} MiB over the bound "
                       f"{memory_bound / 2**20:.1f} MiB ({outcome.kind} {outcome.code})")
     return outcome
+
+
+def check_pipeline(data: bytes, suffix: str, *, limits: Limits = FUZZ_LIMITS) -> list[str]:
+    """Run the whole headless analysis (:func:`app.traces.report.analyse_path`) on one
+    input; return the analysers that failed on it (their summary says so).
+
+    The report catches an analyser's exception and says it failed; for a readable
+    input that is still a finding (a crash on a 1 x N image, say).
+
+    Raises
+    ------
+    FindingError
+        When anything but InputError escapes the pipeline.
+    """
+    from app.traces.report import analyse_path
+
+    with tempfile.TemporaryDirectory(prefix="rawproof-fuzz-") as tmp:
+        path = Path(tmp) / f"input{suffix}"
+        path.write_bytes(data)
+        try:
+            report = analyse_path(str(path), workers=1, limits=limits)
+        except InputError:
+            return []
+        except Exception as exc:  # noqa: BLE001 - that is the finding
+            raise FindingError(f"{type(exc).__name__} escaped the analysis: {exc}") from exc
+    failed = []
+    for group in report.get("groups") or [report]:
+        for tid, t in (group.get("traces") or {}).items():
+            if "analyser failed" in str(t.get("summary", "")):
+                failed.append(f"{tid}: {t['summary']}")
+    return failed

@@ -1,6 +1,6 @@
 """The long fuzz run: mutate the seed files for N minutes and check every reader.
 
-    python fuzz/run.py --minutes 10 [--seed 1] [--out DIR]
+    python fuzz/run.py --minutes 10 [--seed 1] [--pipeline] [--out DIR]
 
 Each input goes through :func:`fuzz.harness.check_input` with a wall-clock
 alarm (``--timeout``, seconds per input) and, on Linux, an address-space
@@ -26,7 +26,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from fuzz.harness import FindingError, check_input  # noqa: E402
+from fuzz.harness import FindingError, check_input, check_pipeline  # noqa: E402
 from fuzz.mutate import mutate  # noqa: E402
 from fuzz.seeds import seeds  # noqa: E402
 
@@ -46,6 +46,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--timeout", type=float, default=20.0, help="seconds allowed per input")
     ap.add_argument("--max-memory-gib", type=float, default=4.0,
                     help="address-space ceiling of this process (Linux)")
+    ap.add_argument("--pipeline", action="store_true",
+                    help="also run the analysers on inputs that read (slower)")
     ap.add_argument("--out", default=str(Path(tempfile.gettempdir()) / "rawproof-fuzz-findings"),
                     help="folder for the inputs that failed")
     args = ap.parse_args(argv)
@@ -85,6 +87,11 @@ def main(argv: list[str] | None = None) -> int:
             res = check_input(sample, suffix)
             outcomes[res.kind if res.kind == "volumes" else f"InputError {res.code}"] += 1
             peak_max = max(peak_max, res.peak_bytes)
+            if args.pipeline and res.kind == "volumes":
+                failed = check_pipeline(sample, suffix)
+                outcomes["analysed"] += 1
+                if failed:
+                    raise FindingError("analyser failed: " + "; ".join(failed))
         except (FindingError, _TimeoutError, MemoryError) as exc:
             reason = ("time bound exceeded" if isinstance(exc, _TimeoutError)
                       else f"{type(exc).__name__}: {exc}")
