@@ -53,6 +53,16 @@ class AnalysisContext:
             raise value
         return value
 
+    def peek(self, key: str) -> Any:
+        """A value another analyser already computed under ``key``, or None.
+
+        For optional cross-checks that must not trigger the work themselves (for
+        example resampling discounting the JPEG block grid when the lossy analyser,
+        which runs before it, found one).
+        """
+        ok, value = self._cache.get(key, (False, None))
+        return value if ok else None
+
     def frame_indices(self) -> Any:
         """Flat frame indices to analyse (all, or an evenly spaced stated subset)."""
         import numpy as np

@@ -500,4 +500,6 @@ def analyse_lossy_compression(volume: Volume, ctx: AnalysisContext) -> Trace:
         else:
             pix = pixel_finding(images, workers=ctx.workers)
             pix.frames = [int(i) for i in idx]
+    # shared with later analysers: the resampling test discounts 8 x 8 block peaks
+    ctx.cached("jpeg_pixel_finding", lambda: pix)
     return combine(pix, head)

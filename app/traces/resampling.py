@@ -37,8 +37,11 @@ predictor residual, and is left to the ``zero_filling`` trace. It does leave a w
 line of raised p-map spectrum at twice its band edge (the residual of a band-limited
 image is narrow-band near the band edge, and its square doubles that frequency),
 which is why ``PEAK_RATIO`` (on the axes, where those lines cross) is set well
-above what raw images show. Other periodic processing leaves peaks too and is not
-told apart here: JPEG's 8 x 8 blocks (multiples of 1/8), and a peak at the
+above what raw images show. Other periodic processing leaves peaks too. JPEG's
+8 x 8 blocks leave them at multiples of 1/8; when the lossy analyser (which runs
+first) found a block grid in the pixels, those bins are set aside. A later JPEG
+step also erases the peaks of an earlier resampling (rounding to the quantiser
+lattice), so resampling before JPEG goes unseen. A peak at the
 Nyquist frequency that reads as a 2x scaling, seen on pydicom's MR2_UNCI.dcm and
 MR2_J2KI.dcm but not on MR2_UNCR.dcm (by the names, from memory: the irreversible
 JPEG 2000 image and its uncompressed counterpart, so likely the wavelet's dyadic
@@ -219,8 +222,13 @@ def _ratio(frames: list[np.ndarray], predictor: np.ndarray, workers: int) -> np.
     return mag / np.maximum(bg, 1e-12 * top)
 
 
-def detect(frames: list[np.ndarray], *, workers: int = 2) -> ResamplingResult:
+def detect(frames: list[np.ndarray], *, workers: int = 2,
+           exclude_block_grid: bool = False) -> ResamplingResult:
     """Kirchner's spectral test on a list of equally sized 2D frames.
+
+    With ``exclude_block_grid``, frequencies within one bin of multiples of 1/8
+    cycles/sample on both axes are left out: an 8 x 8 block transform (JPEG)
+    leaves periodic peaks there that are not interpolation.
 
     References
     ----------
@@ -234,6 +242,10 @@ def detect(frames: list[np.ndarray], *, workers: int = 2) -> ResamplingResult:
     fx = (np.arange(cols) - cols // 2) / cols
     far = np.sqrt(fy[:, None] ** 2 + fx[None, :] ** 2) >= LOW_FREQ
     r = np.where(far, ratio, 0.0)
+    if exclude_block_grid:
+        def on_grid(f: np.ndarray, n: int) -> np.ndarray:
+            return np.abs(f * 8 - np.round(f * 8)) <= 8.0 / n + 1e-9
+        r = np.where(on_grid(fy, rows)[:, None] & on_grid(fx, cols)[None, :], 0.0, r)
     peak_ratio = float(r.max())
     # local maxima above the threshold, one half-plane (the spectrum is symmetric);
     # off the axes a lower threshold holds (band-limited images raise only axis lines)
@@ -358,4 +370,13 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
     if min(frames[0].shape) < 16:
         return Trace(TRACE_ID, "inconclusive", 0.0, "The image is too small to test.",
                      dict(DEFAULT_ESTIMATES), {})
-    return trace_from(detect(frames, workers=ctx.workers))
+    # the lossy analyser runs first (order 50 < 55); when it found JPEG blocks in the
+    # pixels, their 1/8-periodic peaks are not counted as interpolation
+    jpeg = ctx.peek("jpeg_pixel_finding")
+    blocks = bool(jpeg is not None and getattr(jpeg, "status", None) == "present")
+    trace = trace_from(detect(frames, workers=ctx.workers, exclude_block_grid=blocks))
+    trace.evidence["block_grid_excluded"] = blocks
+    if blocks:
+        trace.summary += (" Peaks at multiples of 1/8 cycles/sample were set aside: the "
+                          "pixels carry an 8 x 8 JPEG block grid.")
+    return trace
