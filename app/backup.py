@@ -197,9 +197,10 @@ def backup(settings: Settings, dest: Path) -> BackupSummary:
     """
     dest = Path(dest).resolve()
     _empty_target(dest, "backup")
+    src_db = sqlite_path(settings)
     dest.mkdir(parents=True, exist_ok=True)
     db_copy = dest / DB_NAME
-    _snapshot_database(sqlite_path(settings), db_copy)
+    _snapshot_database(src_db, db_copy)
     entries: list[dict] = []
     sha, size = _sha256_file(db_copy)
     entries.append({"path": DB_NAME, "sha256": sha, "size": size})

@@ -198,3 +198,15 @@ def test_missing_database_file_in_manifest_is_named(backed_up, tmp_path) -> None
     res = _rawproof("restore", str(copy), "--data", str(tmp_path / "d"))
     assert res.returncode == 2 and "rawproof.sqlite3 is listed in the manifest but missing" \
         in res.stderr
+
+
+def test_other_databases_are_left_to_their_own_tools(tmp_path) -> None:
+    """A PostgreSQL URL: the command says to use pg_dump instead of copying half."""
+    from app.backup import BackupError, backup
+    from app.config import Settings
+
+    settings = Settings(data_dir=tmp_path / "data",
+                        database_url="postgresql://lab@db.example/rawproof")
+    with pytest.raises(BackupError, match="pg_dump"):
+        backup(settings, tmp_path / "b")
+    assert not (tmp_path / "b").exists()
