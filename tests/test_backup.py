@@ -210,3 +210,17 @@ def test_other_databases_are_left_to_their_own_tools(tmp_path) -> None:
     with pytest.raises(BackupError, match="pg_dump"):
         backup(settings, tmp_path / "b")
     assert not (tmp_path / "b").exists()
+
+
+def test_backup_of_a_damaged_store_is_refused_naming_the_file(backed_up, tmp_path) -> None:
+    """A stored file whose bytes no longer match its sha256 name stops the backup."""
+    data = tmp_path / "data"
+    assert _rawproof("restore", str(backed_up["dest"]), "--data", str(data)).returncode == 0
+    sha = backed_up["before"][backed_up["ids"][0]]["files"][0][1]
+    blob = data / "store" / sha[:2] / sha
+    blob.chmod(0o644)
+    blob.write_bytes(blob.read_bytes() + b"!")
+    res = _rawproof("backup", str(tmp_path / "b"), "--data", str(data))
+    assert res.returncode == 2
+    assert f"store/{sha[:2]}/{sha} does not match its sha256" in res.stderr
+    assert not (tmp_path / "b" / "manifest.json").exists()
