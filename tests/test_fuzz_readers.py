@@ -53,11 +53,11 @@ def test_seed_files_are_read(name: str) -> None:
 
 
 @pytest.mark.parametrize("name", SEED_NAMES)
-@settings(max_examples=60, deadline=10_000, derandomize=True, database=None,
+@settings(max_examples=100, deadline=10_000, derandomize=True, database=None,
           suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
 @given(rnd=st.randoms(use_true_random=False))
 def test_mutated_inputs_give_a_volume_or_an_input_error(name: str, rnd: random.Random) -> None:
-    """600 mutated inputs in all (60 per seed, derandomised so CI is repeatable)."""
+    """1000 mutated inputs in all (100 per seed, derandomised so CI is repeatable)."""
     suffix, data = seeds()[name]
     out = check_input(mut.mutate(data, suffix, rnd), suffix)
     assert out.kind in ("volumes", "input_error")
