@@ -52,3 +52,36 @@ def test_registry_pages_through_every_dataset_once(tmp_path) -> None:
         knee = client.get("/", params={"q": "knee", "page": 9}).text
         assert len(re.findall(r'class="ds-name"', knee)) == n // 2
         assert "page 1 of" not in knee
+
+
+def test_registry_shows_every_change_at_once(tmp_path) -> None:
+    """The registry's rows are shared between requests until the database changes:
+    a decision, a finished job and a new dataset each show on the next page load."""
+    settings = dataclasses.replace(Settings(), data_dir=tmp_path / "data", database_url="")
+    migrate.upgrade(settings)
+    with session_scope(settings) as db:
+        ria = service.create_user(db, "ria", "ria-password-1")
+        service.create_user(db, "rev", "rev-password-1")
+        ds = service.create_dataset(db, settings, uploader=ria, name="Set one",
+                                    source="https://archive.example.org", licence="CC0",
+                                    description="", intended_use="",
+                                    files=[("a.bin", b"one")])
+        ds_id = ds.id
+    with TestClient(create_app(settings)) as client:
+        _signed_in(client)
+        assert "analysis queued" in client.get("/").text
+        with session_scope(settings) as db:
+            job = service.latest_job(db, ds_id)
+            job.state = "failed"
+        assert "analysis failed" in client.get("/").text
+        with session_scope(settings) as db:
+            service.record_decision(db, dataset=service.get_dataset(db, ds_id),
+                                    reviewer=service.get_user(db, "rev"),
+                                    outcome="rejected", rationale="no raw data")
+        assert "Rejected" in client.get("/").text
+        with session_scope(settings) as db:
+            service.create_dataset(db, settings, uploader=service.get_user(db, "ria"),
+                                   name="Set two", source="https://archive.example.org",
+                                   licence="CC0", description="", intended_use="",
+                                   files=[("b.bin", b"two")])
+        assert "Set two" in client.get("/").text

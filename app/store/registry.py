@@ -6,13 +6,23 @@ hundreds, not millions); the database does the joins.
 
 from __future__ import annotations
 
+import threading
 from dataclasses import dataclass, field
 from datetime import datetime
 
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session, aliased
 
-from app.store.models import Dataset, DatasetFile, Decision, Job, Report, StoredFile, User
+from app.store.models import (
+    AuditEvent,
+    Dataset,
+    DatasetFile,
+    Decision,
+    Job,
+    Report,
+    StoredFile,
+    User,
+)
 
 SORTS = ("updated", "created", "name", "size", "decision", "uploader")
 
@@ -47,8 +57,47 @@ class RegistryRow:
         return sorted(items, key=lambda ts: (order[ts[1]], ts[0]))
 
 
+#: Registry rows of the last read, per database, with the change key they were read at.
+_CACHE: dict[str, tuple[tuple, list[RegistryRow]]] = {}
+_CACHE_LOCK = threading.Lock()
+
+
+def _change_key(session: Session) -> tuple:
+    """A value that changes whenever anything the registry shows may have changed.
+
+    Every user-made change writes an audit event; reports and job state changes
+    (the worker's) are counted directly.
+    """
+    return tuple(session.execute(select(
+        select(func.max(AuditEvent.id)).scalar_subquery(),
+        select(func.max(Report.id)).scalar_subquery(),
+        select(func.max(Job.id)).scalar_subquery(),
+        select(func.count(Job.id)).where(Job.state.in_(("queued", "running")))
+        .scalar_subquery(),
+        select(func.count(Job.id)).where(Job.state == "failed").scalar_subquery(),
+        select(func.count(Dataset.id)).scalar_subquery(),
+    )).one())
+
+
 def registry_rows(session: Session) -> list[RegistryRow]:
-    """Every dataset with uploader, file summary, latest report, current decision, latest job."""
+    """Every dataset with uploader, file summary, latest report, current decision, latest job.
+
+    Read once per change of the database (see :func:`_change_key`) and shared by
+    every request until the next change; callers must not modify the rows.
+    """
+    url = str(session.get_bind().url)
+    key = _change_key(session)
+    with _CACHE_LOCK:
+        hit = _CACHE.get(url)
+    if hit is not None and hit[0] == key:
+        return hit[1]
+    rows = _read_rows(session)
+    with _CACHE_LOCK:
+        _CACHE[url] = (key, rows)
+    return rows
+
+
+def _read_rows(session: Session) -> list[RegistryRow]:
     latest_report = (select(Report.dataset_id, func.max(Report.id).label("rid"))
                      .group_by(Report.dataset_id).subquery())
     latest_job = (select(Job.dataset_id, func.max(Job.id).label("jid"))
