@@ -16,12 +16,12 @@ from __future__ import annotations
 import io
 from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-from matplotlib.backends.backend_agg import FigureCanvasAgg
-from matplotlib.figure import Figure
-from matplotlib.patches import Rectangle
+
+if TYPE_CHECKING:
+    from matplotlib.figure import Figure
 
 # Okabe & Ito (2008), "Color Universal Design": colour-blind safe palette.
 INK = "#222222"
@@ -108,7 +108,12 @@ def _axis_sizes(report: dict[str, Any], tid: str) -> dict[str, int | None]:
     return {"rows": None, "cols": None}
 
 
-def _new_figure(width: float, height: float) -> Figure:
+def _new_figure(width: float, height: float) -> Any:
+    # matplotlib is imported on first use: a server that only streams uploads and
+    # lists datasets does not carry it (about 40 MB of memory)
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
     fig = Figure(figsize=(width, height), dpi=DPI, layout="constrained")
     FigureCanvasAgg(fig)
     return fig
@@ -173,6 +178,8 @@ def build_spectrum_map(report: dict[str, Any]) -> Figure | None:
         c0, c1 = (ec[0] - cx - 0.5, ec[1] - cx + 0.5) if ec else (-cx - 0.5, width - cx - 0.5)
         # white under black dashes: visible on the dark and the light ends of the map
         for color, ls, lw in (("white", "-", 3.0), (INK, "--", 1.6)):
+            from matplotlib.patches import Rectangle
+
             ax.add_patch(Rectangle((c0, r0), c1 - c0, r1 - r0, fill=False, edgecolor=color,
                                    linestyle=ls, linewidth=lw, label=None))
         ax.plot([], [], color=INK, linestyle="--", label="detected support")
