@@ -186,7 +186,8 @@ def markdown_table(result: dict) -> str:
             )
         elif r["row"] == "pages":
             lines.append(
-                f"- {r['page']} ({r['datasets']} datasets, {r['clients']} clients, {r['requests']} "
+                f"- {r['page']} ({r['datasets']} datasets, {r['clients']} clients, "
+                f"{r.get('processes', 1)} server process(es), {r['requests']} "
                 f"requests): median {r['median_ms']} ms, p95 {r['p95_ms']} ms (target p95 < 200)"
             )
     return "\n".join(lines)

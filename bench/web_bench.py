@@ -157,16 +157,31 @@ def _populate(data_dir: Path, n: int) -> int:
 
 
 def bench_pages(
-    work: Path, n_datasets: int = 1000, *, clients: int = 8, requests_per_client: int = 40
+    work: Path, n_datasets: int = 1000, *, clients: int = 8, requests_per_client: int = 40,
+    processes: tuple[int, ...] = (1, 2),
 ) -> list[dict]:
-    """Median and 95th percentile latency of the registry and a dataset page."""
-    from tests.server_harness import running_server
+    """Median and 95th percentile latency of the registry and a dataset page.
 
+    Measured with one server process (the default) and with ``--processes 2``.
+    """
     data_dir = work / "pages-srv"
     data_dir.mkdir(parents=True, exist_ok=True)
     first_id = _populate(data_dir, n_datasets)
     rows = []
-    with running_server(data_dir, worker=False) as srv:
+    for n_proc in processes:
+        rows += _pages_once(data_dir, first_id, n_datasets, clients, requests_per_client,
+                            n_proc)
+    os.sync()
+    return rows
+
+
+def _pages_once(data_dir: Path, first_id: int, n_datasets: int, clients: int,
+                requests_per_client: int, n_proc: int) -> list[dict]:
+    from tests.server_harness import running_server
+
+    rows = []
+    with running_server(data_dir, worker=False,
+                        extra_args=["--processes", str(n_proc)]) as srv:
         members = [srv.login("reviewer", "bench-password-1") for _ in range(clients)]
         for page, path in (("registry", "/"), ("dataset page", f"/datasets/{first_id}")):
             for m in members:  # warm caches once per client
@@ -196,6 +211,7 @@ def bench_pages(
                 "page": page,
                 "datasets": n_datasets,
                 "clients": clients,
+                "processes": n_proc,
                 "requests": len(lat),
                 "errors": len(errors),
                 "median_ms": round(statistics.median(lat), 1),
@@ -203,5 +219,4 @@ def bench_pages(
             }
             print("  ".join(f"{k}={v}" for k, v in row.items()), flush=True)
             rows.append(row)
-    os.sync()
     return rows

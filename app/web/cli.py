@@ -83,6 +83,10 @@ def _add_serve(p: argparse.ArgumentParser) -> None:
     p.add_argument("--workers", type=int, default=1,
                    help="analysis jobs run at once by the worker started beside the server")
     p.add_argument("--no-worker", action="store_true", help="start no worker beside the server")
+    p.add_argument("--processes", type=int, default=1,
+                   help="web server processes (default 1); more serve concurrent readers "
+                        "faster on a multi-core machine (sign-in rate limits then count "
+                        "per process)")
     p.add_argument("--lease-seconds", type=float, default=30.0, help="the worker's job lease")
 
 
@@ -105,8 +109,20 @@ def _run_serve(args: Any) -> int:
     print(f"rawproof: serving {settings.data_dir} at http://{args.host}:{args.port}",
           file=sys.stderr, flush=True)
     try:
-        uvicorn.run(create_app(settings), host=args.host, port=args.port, log_level="warning",
-                    access_log=False)
+        if args.processes > 1:
+            # each process builds its own app from the same settings, passed by the
+            # environment that app.config.Settings reads
+            os.environ.update({
+                "RAWPROOF_DATA": str(settings.data_dir),
+                "RAWPROOF_DATABASE_URL": settings.database_url,
+                "RAWPROOF_MAX_UPLOAD_BYTES": str(settings.max_upload_bytes),
+                "RAWPROOF_SECURE_COOKIES": "1" if settings.secure_cookies else "",
+            })
+            uvicorn.run("app.web.app:create_app", factory=True, workers=args.processes,
+                        host=args.host, port=args.port, log_level="warning", access_log=False)
+        else:
+            uvicorn.run(create_app(settings), host=args.host, port=args.port,
+                        log_level="warning", access_log=False)
     finally:
         if worker is not None and worker.poll() is None:
             worker.send_signal(signal.SIGTERM)
