@@ -85,3 +85,20 @@ def test_registry_shows_every_change_at_once(tmp_path) -> None:
                                    licence="CC0", description="", intended_use="",
                                    files=[("b.bin", b"two")])
         assert "Set two" in client.get("/").text
+
+
+def test_serve_with_two_processes_shares_sessions_and_data(tmp_path) -> None:
+    """``rawproof serve --processes 2``: both uvicorn processes build the app from the
+    same settings, so a member signed in through one is signed in on the other and
+    every request sees the same registry (sessions and data live in the database)."""
+    from tests.server_harness import running_server, zero_filled_npy
+
+    with running_server(tmp_path / "srv", worker=False,
+                        extra_args=["--processes", "2"]) as srv:
+        srv.add_user("ria", "ria-password-1")
+        ria = srv.login("ria", "ria-password-1")
+        info = ria.upload_files("Two-process set", [("scan.npy", zero_filled_npy(5))])
+        pages = [ria.get("/") for _ in range(12)]  # spread over both processes
+        assert all(p.status_code == 200 for p in pages)
+        assert all("Two-process set" in p.text for p in pages)
+        assert ria.get(f"/datasets/{info['dataset_id']}").status_code == 200
