@@ -221,7 +221,9 @@ def backup(settings: Settings, dest: Path) -> BackupSummary:
         if not folder.is_dir():
             continue
         for f in sorted(folder.rglob("*")):
-            if f.is_file() and not f.is_symlink() and not f.name.endswith(".part"):
+            # figure caches are written to hidden temporaries and renamed into place
+            if (f.is_file() and not f.is_symlink() and not f.name.startswith(".")
+                    and not f.name.endswith(".part")):
                 rel = f.relative_to(settings.data_dir)
                 sha, size = _copy_hashed(f, dest / rel)
                 entries.append({"path": rel.as_posix(), "sha256": sha, "size": size})
