@@ -11,7 +11,7 @@ from sqlalchemy import select
 
 from app.store import service
 from app.store.errors import StoreError
-from app.store.models import ApiToken
+from app.store.models import ApiToken, User
 from app.web.deps import (
     CurrentUser,
     DbSession,
@@ -74,7 +74,13 @@ def login(
                            status_code=429)
         resp.headers["retry-after"] = str(exc.retry_after)
         return resp
-    user = service.authenticate(db, name, password)
+    # The password check (argon2, deliberately slow) runs on a read session: the
+    # request's write session takes SQLite's write lock at its first statement, and
+    # holding it through the hash would queue every other writer behind sign-ins.
+    with request.app.state.database.scope(write=False) as reader:
+        checked = service.authenticate(reader, name, password)
+        user_id = checked.id if checked is not None else None
+    user = db.get(User, user_id) if user_id is not None else None
     if user is None:
         limiter.failed(address, name)
         service.audit(db, "login.fail", name=name[:64], address=address)
