@@ -6,6 +6,7 @@ from typing import Annotated
 
 from fastapi import APIRouter, Depends, Form, Request
 from fastapi.responses import RedirectResponse
+from sqlalchemy.orm import Session
 
 from app.store import service
 from app.store.errors import DecisionConflictError, StoreError
@@ -20,6 +21,18 @@ router = APIRouter(tags=["reviews"],
 def _expected(raw: str) -> int | None:
     raw = (raw or "").strip()
     return int(raw) if raw.isdigit() else 0
+
+
+def _reader_after_failed_write(request: Request, db: Session):  # noqa: ANN202
+    """End the request's write transaction and give a read session for the error page.
+
+    The write session would take SQLite's write lock again at its next statement and
+    hold it while the whole dataset page renders; closing it (which rolls back, and
+    unlike ``rollback()`` keeps the signed-in member's loaded attributes readable)
+    and reading the page's data on a read session keeps other writers moving.
+    """
+    db.close()
+    return request.app.state.database.scope(write=False)
 
 
 @router.post("/datasets/{dataset_id}/comments")
@@ -37,10 +50,11 @@ def post_comment(
         comment = service.add_comment(db, dataset=ds, author=user, body=body,
                                       trace_id=trace_id or None)
     except StoreError as exc:
-        db.rollback()
-        ctx = dataset_context(db, settings, dataset_id, user)
-        ctx.update(comment_error=exc.message, comment_form={"body": body, "trace_id": trace_id})
-        return render(request, "dataset.html", ctx, status_code=exc.status_code)
+        with _reader_after_failed_write(request, db) as reader:
+            ctx = dataset_context(reader, settings, dataset_id, user)
+            ctx.update(comment_error=exc.message,
+                       comment_form={"body": body, "trace_id": trace_id})
+            return render(request, "dataset.html", ctx, status_code=exc.status_code)
     db.commit()
     return RedirectResponse(f"/datasets/{ds.id}#comment-{comment.id}", status_code=303)
 
@@ -62,11 +76,11 @@ def post_decision(
                                 rationale=rationale,
                                 expected_current_id=_expected(expected_current_id))
     except StoreError as exc:
-        db.rollback()
-        ctx = dataset_context(db, settings, dataset_id, user)
-        ctx.update(decision_error=exc.message,
-                   decision_conflict=isinstance(exc, DecisionConflictError),
-                   decision_form={"outcome": outcome, "rationale": rationale})
-        return render(request, "dataset.html", ctx, status_code=exc.status_code)
+        with _reader_after_failed_write(request, db) as reader:
+            ctx = dataset_context(reader, settings, dataset_id, user)
+            ctx.update(decision_error=exc.message,
+                       decision_conflict=isinstance(exc, DecisionConflictError),
+                       decision_form={"outcome": outcome, "rationale": rationale})
+            return render(request, "dataset.html", ctx, status_code=exc.status_code)
     db.commit()
     return RedirectResponse(f"/datasets/{ds.id}#decision", status_code=303)
