@@ -225,7 +225,12 @@ def _threshold(sm: np.ndarray) -> float:
     below = v[v < t]
     if below.size < 64:
         return t
-    counts, edges = np.histogram(below, bins=64)
+    try:
+        # float64 edges: a float32 range spanning many decades (a flipped exponent
+        # bit) leaves no room for 64 distinct float32 edges in the low part
+        counts, edges = np.histogram(below.astype(np.float64), bins=64)
+    except ValueError:
+        return t
     j = int(np.argmax(counts))
     mode = 0.5 * (edges[j] + edges[j + 1])
     return float(min(t, 2.5 * mode)) if mode > 0 else t

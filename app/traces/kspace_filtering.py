@@ -52,6 +52,11 @@ MIN_GAIN_DB = 1.3
 MIN_ATTENUATION_DB = 3.0
 FERMI_WIDTH = 0.05
 SMOOTH = 5
+#: A zero-filling support narrower than this (half-width, samples) leaves no band to fit;
+#: the axis is then fitted as if no support were known.
+MIN_HALF_SUPPORT = 4.0
+#: At most this many band samples enter one fit (evenly spaced on longer axes).
+MAX_FIT_SAMPLES = 1024
 ALPHAS = np.linspace(0.0, 5.0, 21)
 SCALES = np.linspace(0.3, 1.0, 15)
 DEFAULT_ESTIMATES: dict[str, Any] = {"window": None}
@@ -196,6 +201,11 @@ def fit_axis(lines_db: np.ndarray, half_support: float, *, axis: str, scale_free
     k1 = min(len(folded) - 1, int(np.floor(0.97 * half_support)))
     k = np.arange(k0, k1 + 1, dtype=np.float64)
     L = folded[k0:k1 + 1]
+    if len(k) > MAX_FIT_SAMPLES:
+        # the fit holds (models x exponents x samples) arrays: keep them bounded on very
+        # long axes by fitting evenly spaced samples of the band
+        pick = np.unique(np.linspace(0, len(k) - 1, MAX_FIT_SAMPLES).round().astype(int))
+        k, L = k[pick], L[pick]
     plain_rms, _, plain_db = _fit_models(k, L, np.ones((1, len(k))))
     scales = SCALES if scale_free else np.array([1.0])
     curves, labels = [], []
@@ -232,8 +242,10 @@ def detect(spec: sp.Spectrum) -> dict[str, AxisFit]:
         lines = zf.band_lines(spec.mean_log, i, other)
         a = zf_axes[ax]
         n = spec.shape[i]
-        if a.found and a.x_pos is not None and a.x_neg is not None:
-            out[ax] = fit_axis(lines, 0.5 * (a.x_pos + a.x_neg), axis=ax, scale_free=False)
+        half = 0.5 * (a.x_pos + a.x_neg) if a.found and a.x_pos is not None and \
+            a.x_neg is not None else None
+        if half is not None and half >= MIN_HALF_SUPPORT:
+            out[ax] = fit_axis(lines, half, axis=ax, scale_free=False)
         else:
             out[ax] = fit_axis(lines, n / 2.0, axis=ax, scale_free=True)
     return out
