@@ -386,7 +386,8 @@ def test_write_errors_while_storing_refuse_the_upload_and_keep_serving(tmp_path)
             "licence": "CC0", "intended_use": "testing", "relpath": "big.npy"},
             files=[("files", ("big.npy", bytes(12 << 20), "application/octet-stream"))],
             headers={"accept": "application/json"})
-        assert r.status_code != 201 and r.status_code >= 400, r.status_code
+        assert r.status_code == 507, (r.status_code, r.text[:300])  # RFC 4918 11.5
+        assert "nothing was stored" in r.json()["error"]["message"]
         print(f"\nwrite error while storing: HTTP {r.status_code}: {r.text[:200]}")
         assert "Traceback" not in r.text
         assert srv.client().get("/healthz").text == "ok"

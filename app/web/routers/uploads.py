@@ -86,17 +86,29 @@ async def upload(request: Request, user: StreamingUser, settings: SettingsDep):
         check(parsed.fields)  # again, for a form that carried no file at all
     except StoreError as exc:
         return _error(request, settings, exc.status_code, exc, parser.result.fields)
+    except OSError as exc:  # the disk is full or the store cannot be written
+        return _error(request, settings, 507, _storage_error(exc), parser.result.fields)
     fields = {k: parsed.first(k) for k in FORM_FIELDS}
     try:
         ds_id, dups = await run_in_threadpool(
             _create, request.app.state.database, settings, user.id, fields, parsed.files)
     except StoreError as exc:
         return _error(request, settings, exc.status_code, exc, parsed.fields)
+    except OSError as exc:
+        parser.abort()
+        return _error(request, settings, 507, _storage_error(exc), parsed.fields)
     url = f"/datasets/{ds_id}"
     if _wants_json(request):
         return JSONResponse({"dataset_id": ds_id, "url": url, "duplicates": dups},
                             status_code=201)
     return RedirectResponse(url, status_code=303)
+
+
+def _storage_error(exc: OSError) -> ValidationError:
+    """A write failure of the store (RFC 4918 11.5: 507 Insufficient Storage)."""
+    reason = exc.strerror or type(exc).__name__
+    return ValidationError(f"The server could not write the upload to its store ({reason}); "
+                           "nothing was stored. Tell the lab admin: the disk may be full.")
 
 
 def _error(request: Request, settings: Settings, status: int, exc: StoreError,
