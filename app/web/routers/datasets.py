@@ -130,18 +130,13 @@ def report_json(dataset_id: int, db: DbSession):
 def with_methods_statement(db: Session, ds, report: dict[str, Any]) -> dict[str, Any]:  # noqa: ANN001
     """The report contract plus the paste-ready methods paragraph (an added key).
 
-    The paragraph is the one the page shows: the current decision and the
-    calculator's default effective acceleration.
+    The paragraph is the one the page and ``methods.txt`` show
+    (:func:`app.web.evidence.methods_for`).
     """
-    from app.methods import methods_statement
-    from app.web.evidence import default_effective
+    from app.web.evidence import methods_for
 
-    current = service.current_decision(db, ds)
-    decision = ({"outcome": current.outcome, "rationale": current.rationale}
-                if current is not None else None)
     out = dict(report)
-    out["methods_statement"] = methods_statement(report, decision,
-                                                 effective=default_effective(report))
+    out["methods_statement"] = methods_for(db, ds, report)
     return out
 
 
