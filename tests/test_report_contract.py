@@ -18,9 +18,22 @@ from app.cli import main
 from app.io.volume import Volume
 from app.schema import report_schema
 from app.traces import base
-from app.traces.report import analyse_path, analyse_volume, combine_groups, verdict_of
+from app.traces.report import (
+    analyse_path,
+    analyse_volume,
+    analysers,
+    combine_groups,
+    verdict_of,
+)
 
 VALIDATOR = jsonschema.Draft202012Validator(report_schema())
+
+
+@pytest.fixture(autouse=True)
+def _real_analysers_registered_first():
+    """Import the real analysers before a test swaps in a copy of the registry, so
+    that their registrations land in the real one, not in a copy thrown away."""
+    analysers()
 
 
 def _validate(obj: dict) -> None:

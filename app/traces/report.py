@@ -6,6 +6,7 @@ The contract is in ``shared/REPORT_CONTRACT.md`` (schema ``rawproof.report/1``);
 
 from __future__ import annotations
 
+import functools
 import importlib
 import pkgutil
 import time
@@ -33,12 +34,18 @@ def analysers() -> dict[str, base.Analyser]:
     A new analyser is one new module that calls :func:`app.traces.base.register`;
     nothing else needs to change.
     """
+    _discover()
+    return base.registered()
+
+
+@functools.cache
+def _discover() -> None:
+    """Import the analyser modules (once per process: the package does not change)."""
     import app.traces as pkg
 
     for info in pkgutil.iter_modules(pkg.__path__):
         if info.name not in _SKIP and not info.name.startswith("_"):
             importlib.import_module(f"app.traces.{info.name}")
-    return base.registered()
 
 
 def analyser_versions() -> dict[str, str]:
@@ -143,7 +150,8 @@ def analyse_volume(
     ctx.options.setdefault("header_declared", header["declared"])
     traces: dict[str, dict] = {}
     timing: dict[str, float] = {}
-    for tid, an in analysers().items():
+    registry = analysers()
+    for tid, an in registry.items():
         if progress:
             progress(f"{volume.name or path}: {tid}")
         t0 = time.perf_counter()
@@ -175,7 +183,7 @@ def analyse_volume(
         "header": _jsonable(header),
         "warnings": warnings,
         "caution": app.CAUTION,
-        "analyser_versions": {tid: a.version for tid, a in analysers().items()},
+        "analyser_versions": {tid: a.version for tid, a in registry.items()},
         "timing": timing,
     }
     return report
