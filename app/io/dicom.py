@@ -851,13 +851,6 @@ def read_dicom(paths: list[Path], opts: ReadOptions) -> list[Volume]:
         try:
             with _damaged(p):
                 ds = _read_dataset(p)
-        except InputError as exc:
-            if len(paths) == 1:
-                raise
-            errors.append(exc)
-            continue
-        try:
-            with _damaged(p):
                 meta = _meta(ds)
         except InputError as exc:
             if len(paths) == 1:
