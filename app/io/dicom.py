@@ -237,10 +237,18 @@ def _read_dataset(path: Path) -> Any:
             _warnings.simplefilter("always")
             ds = _dcmread(path, defer_size="1 MB")
     except InvalidDicomError as exc:
-        ds = _forced(path) if path.suffix.lower() in (".dcm", ".dicom", ".ima") else None
+        tried = path.suffix.lower() in (".dcm", ".dicom", ".ima")
+        ds = _forced(path) if tried else None
         if ds is None:
+            # pydicom's own text advises force=True, which rawproof has already tried
+            # for DICOM-named files; say what was found instead
+            also = (", and read without one it holds no DICOM data elements either"
+                    if tried else "")
             raise InputError(
-                "unreadable", f"{path.name} is not a DICOM file: {one_line(exc)}", str(path)
+                "unreadable",
+                f"{path.name} is not a DICOM file: it has no DICOM file header (no 'DICM' "
+                f"prefix){also}.",
+                str(path),
             ) from exc
         caught = []
     except Exception as exc:  # noqa: BLE001 - pydicom raises many types on damaged files
