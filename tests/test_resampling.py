@@ -195,3 +195,15 @@ def test_jpeg_block_peaks_are_not_called_resampling():
     found = rs.detect(zoomed, exclude_block_grid=True)
     assert found.axis_freq["cols"] is not None
     assert abs(found.axis_freq["cols"] - 0.2) < 0.01
+
+
+@pytest.mark.parametrize("shape", [(256, 256), (255, 257), (64, 33), (31, 40), (8, 9)])
+def test_centrosymmetric_median_equals_scipy_median_filter(shape):
+    """The half-plane local median equals scipy.ndimage.median_filter (reference: scipy)
+    on the magnitude spectrum of real frames, odd and even sides."""
+    rng = np.random.default_rng(sum(shape))
+    frames = rng.random((3,) + shape).astype(np.float32)
+    mag = np.fft.fftshift(np.abs(np.fft.fft2(frames)).mean(axis=0)).astype(np.float32)
+    mag = 0.5 * (mag + np.roll(mag[::-1, ::-1], (1 - shape[0] % 2, 1 - shape[1] % 2), (0, 1)))
+    ref = ndimage.median_filter(mag, size=7, mode="wrap")
+    np.testing.assert_array_equal(rs.centrosymmetric_median(mag, 7), ref)

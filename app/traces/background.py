@@ -42,7 +42,7 @@ from app.io.volume import Volume
 MAX_FRAMES = 16
 FFT_TOLERANCE = 1e-5
 MAX_PIXELS = 1_500_000
-_WORK_SIDE = 160
+_WORK_SIDE = 128
 MAX_SAMPLES_PER_FRAME = 32768
 MIN_SAMPLES = 500
 _FLATNESS_LIMIT = 0.6
@@ -539,8 +539,7 @@ def background_of(volume: Volume, ctx: Any) -> Background:
     def factory() -> Background:
         bg = find_background(volume, frames=ctx.frame_indices())
         for note in bg.notes:
-            if note not in ctx.notes:
-                ctx.notes.append(note)
+            ctx.note(note)
         return bg
 
     return ctx.cached("background", factory)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import threading
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
@@ -36,18 +37,27 @@ class AnalysisContext:
     options: dict[str, Any] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
     _cache: dict[str, Any] = field(default_factory=dict, repr=False)
+    _locks: dict[str, threading.Lock] = field(default_factory=dict, repr=False)
+    _guard: threading.Lock = field(default_factory=threading.Lock, repr=False)
 
     def cached(self, key: str, factory: Callable[[], Any]) -> Any:
         """Compute ``factory()`` once per Volume under ``key`` and reuse it.
 
-        An exception raised by the factory is cached too and raised again, so a
-        shared step that fails is not recomputed by every analyser.
+        Safe when analysers run in threads: the first caller computes, later
+        callers of the same key wait for its result. An exception raised by the
+        factory is cached too and raised again, so a shared step that fails is
+        not recomputed by every analyser.
         """
         if key not in self._cache:
-            try:
-                self._cache[key] = (True, factory())
-            except Exception as exc:  # noqa: BLE001 - re-raised to each caller
-                self._cache[key] = (False, exc)
+            with self._guard:
+                lock = self._locks.setdefault(key, threading.Lock())
+            with lock:
+                if key not in self._cache:
+                    try:
+                        value = (True, factory())
+                    except Exception as exc:  # noqa: BLE001 - re-raised to each caller
+                        value = (False, exc)
+                    self._cache[key] = value
         ok, value = self._cache[key]
         if not ok:
             raise value
@@ -56,12 +66,16 @@ class AnalysisContext:
     def peek(self, key: str) -> Any:
         """A value another analyser already computed under ``key``, or None.
 
-        For optional cross-checks that must not trigger the work themselves (for
-        example resampling discounting the JPEG block grid when the lossy analyser,
-        which runs before it, found one).
+        For optional cross-checks that must not trigger the work themselves.
         """
         ok, value = self._cache.get(key, (False, None))
         return value if ok else None
+
+    def note(self, text: str) -> None:
+        """Add a sentence to the report's warnings once (thread-safe)."""
+        with self._guard:
+            if text not in self.notes:
+                self.notes.append(text)
 
     def frame_indices(self) -> Any:
         """Flat frame indices to analyse (all, or an evenly spaced stated subset)."""
@@ -71,7 +85,5 @@ class AnalysisContext:
         if self.max_frames is None or n <= self.max_frames:
             return np.arange(n)
         idx = np.unique(np.linspace(0, n - 1, self.max_frames).round().astype(int))
-        note = f"analysed {len(idx)} of {n} frames, evenly spaced"
-        if note not in self.notes:
-            self.notes.append(note)
+        self.note(f"analysed {len(idx)} of {n} frames, evenly spaced")
         return idx

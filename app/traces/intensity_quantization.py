@@ -128,8 +128,13 @@ def level_stats(values: np.ndarray) -> LevelStats:
     if v.size == 0:
         return LevelStats(np.zeros(0), np.zeros(0, int), None, 0)
     if v.dtype.kind in "iub":
-        v = v.astype(np.int64)
         lo, hi = int(v.min()), int(v.max())
+        if 0 <= lo and hi < 1 << 24 and v.dtype.itemsize <= 4:
+            # counted in place: no widened copy of the sample
+            c = np.bincount(v.view(np.uint8) if v.dtype.kind == "b" else v)[lo:]
+            nz = np.flatnonzero(c)
+            return LevelStats(nz + lo, c[nz], 1.0, int(v.size))
+        v = v.astype(np.int64)
         if hi - lo < 1 << 24:
             c = np.bincount(v - lo)
             nz = np.flatnonzero(c)

@@ -191,8 +191,7 @@ def _frames(volume: Volume, ctx: AnalysisContext) -> np.ndarray:
         idx = idx[np.unique(np.linspace(0, len(idx) - 1, MAX_FRAMES).round().astype(int))]
         note = (f"lossy_compression: block-DCT statistics from {len(idx)} of "
                 f"{volume.n_slices} frames, evenly spaced")
-        if note not in ctx.notes:
-            ctx.notes.append(note)
+        ctx.note(note)
     return idx
 
 
@@ -460,6 +459,36 @@ def combine(pix: PixelFinding, head: HeaderFinding) -> Trace:
     return Trace(TRACE_ID, status, conf, summary, estimates, evidence)
 
 
+def _find_in_pixels(volume: Volume, ctx: AnalysisContext) -> PixelFinding:
+    if volume.domain == "kspace":
+        return PixelFinding("absent", "The data are k-space samples, not decoded grey levels: "
+                            "no JPEG stage sits between the scanner and these values.")
+    if volume.value_type == "complex":
+        return PixelFinding("absent", _COMPLEX_REASON)
+    idx = _frames(volume, ctx)
+    try:
+        parts = []
+        for _, block in volume.iter_slices(ctx.batch, scaled=False, indices=idx):
+            b = np.asarray(block)
+            parts.append(b.reshape(-1, *b.shape[-2:]))
+        images = np.concatenate(parts, axis=0)
+    except Exception as exc:  # noqa: BLE001 - undecodable pixels leave the header to speak
+        said = " ".join(str(exc).split())[:300]
+        return PixelFinding("inconclusive", f"The pixels could not be read ({said}).")
+    pix = pixel_finding(images, workers=ctx.workers)
+    pix.frames = [int(i) for i in idx]
+    return pix
+
+
+def jpeg_pixels_of(volume: Volume, ctx: AnalysisContext) -> PixelFinding:
+    """The JPEG finding in the stored grey levels, computed once per analysis context.
+
+    Shared: the resampling test discounts the 8 x 8 block grid's peaks when it
+    is present, whichever analyser asks first.
+    """
+    return ctx.cached("jpeg_pixel_finding", lambda: _find_in_pixels(volume, ctx))
+
+
 @register(TRACE_ID, version="1", order=50, default_estimates=DEFAULTS)
 def analyse_lossy_compression(volume: Volume, ctx: AnalysisContext) -> Trace:
     """JPEG traces in the pixels and lossy compression declared by the header.
@@ -481,25 +510,5 @@ def analyse_lossy_compression(volume: Volume, ctx: AnalysisContext) -> Trace:
     Fan and de Queiroz (2003); ITU-T T.81 Annex K; DICOM PS3.5 section 10.
     """
     head = header_finding(volume, ctx.options.get("header_declared"))
-    if volume.domain == "kspace":
-        pix = PixelFinding("absent", "The data are k-space samples, not decoded grey levels: "
-                           "no JPEG stage sits between the scanner and these values.")
-    elif volume.value_type == "complex":
-        pix = PixelFinding("absent", _COMPLEX_REASON)
-    else:
-        idx = _frames(volume, ctx)
-        try:
-            parts = []
-            for _, block in volume.iter_slices(ctx.batch, scaled=False, indices=idx):
-                b = np.asarray(block)
-                parts.append(b.reshape(-1, *b.shape[-2:]))
-            images = np.concatenate(parts, axis=0)
-        except Exception as exc:  # noqa: BLE001 - undecodable pixels leave the header to speak
-            said = " ".join(str(exc).split())[:300]
-            pix = PixelFinding("inconclusive", f"The pixels could not be read ({said}).")
-        else:
-            pix = pixel_finding(images, workers=ctx.workers)
-            pix.frames = [int(i) for i in idx]
-    # shared with later analysers: the resampling test discounts 8 x 8 block peaks
-    ctx.cached("jpeg_pixel_finding", lambda: pix)
+    pix = jpeg_pixels_of(volume, ctx)
     return combine(pix, head)

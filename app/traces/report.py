@@ -8,10 +8,13 @@ from __future__ import annotations
 
 import functools
 import importlib
+import math
 import pkgutil
+import threading
 import time
 import traceback
 from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
 from typing import Any
 
 import numpy as np
@@ -67,13 +70,35 @@ def verdict_of(traces: dict[str, dict]) -> str:
     return "inconclusive"
 
 
+_PLAIN = (int, str, bool, type(None))
+
+
 def _jsonable(obj: Any) -> Any:
     """Turn numpy scalars/arrays and tuples into plain JSON values (NaN -> None)."""
+    t = type(obj)
+    if t is float:
+        return obj if math.isfinite(obj) else None
+    if t in _PLAIN:
+        return obj
     if isinstance(obj, dict):
         return {str(k): _jsonable(v) for k, v in obj.items()}
     if isinstance(obj, list | tuple):
-        return [_jsonable(v) for v in obj]
+        # evidence holds long lists of plain numbers: those skip the recursion
+        out = []
+        for v in obj:
+            tv = type(v)
+            if tv is float:
+                out.append(v if math.isfinite(v) else None)
+            elif tv in _PLAIN:
+                out.append(v)
+            else:
+                out.append(_jsonable(v))
+        return out
     if isinstance(obj, np.ndarray):
+        if obj.dtype.kind in "biu":
+            return obj.tolist()
+        if obj.dtype.kind == "f" and np.isfinite(obj).all():
+            return obj.tolist()
         return _jsonable(obj.tolist())
     if isinstance(obj, np.bool_ | bool):
         return bool(obj)
@@ -148,12 +173,13 @@ def analyse_volume(
     except Exception as exc:  # noqa: BLE001 - a header we cannot interpret is not fatal
         header = {"declared": {}, "notes": [f"header could not be interpreted: {exc}"]}
     ctx.options.setdefault("header_declared", header["declared"])
-    traces: dict[str, dict] = {}
-    timing: dict[str, float] = {}
     registry = analysers()
-    for tid, an in registry.items():
+    progress_lock = threading.Lock()
+
+    def run_one(tid: str, an: Any) -> tuple[dict, float]:
         if progress:
-            progress(f"{volume.name or path}: {tid}")
+            with progress_lock:
+                progress(f"{volume.name or path}: {tid}")
         t0 = time.perf_counter()
         try:
             trace = an.func(volume, ctx)
@@ -169,9 +195,22 @@ def analyse_volume(
                 error=f"{type(exc).__name__}: {exc}",
                 traceback=traceback.format_exc(limit=4)[-2000:],
             )
-        timing[tid] = round(time.perf_counter() - t0, 4)
-        traces[tid] = _jsonable(trace.to_dict())
-    warnings.extend(ctx.notes)
+        return _jsonable(trace.to_dict()), round(time.perf_counter() - t0, 4)
+
+    # analysers are independent except for the shared steps behind ctx.cached, which
+    # computes each once and makes other threads wait; numpy and scipy release the
+    # GIL in their array work, so a second thread uses the second core
+    threads = max(1, min(int(workers), len(registry)))
+    if threads > 1:
+        with ThreadPoolExecutor(max_workers=threads, thread_name_prefix="analyser") as pool:
+            futures = {tid: pool.submit(run_one, tid, an) for tid, an in registry.items()}
+            done = {tid: f.result() for tid, f in futures.items()}
+    else:
+        done = {tid: run_one(tid, an) for tid, an in registry.items()}
+    traces = {tid: done[tid][0] for tid in registry}
+    timing = {tid: done[tid][1] for tid in registry}
+    # sorted: with analysers in threads, the order notes are added in is not fixed
+    warnings.extend(sorted(ctx.notes))
     report = {
         "schema": SCHEMA,
         "tool_version": app.__version__,

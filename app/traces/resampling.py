@@ -67,6 +67,7 @@ import scipy.fft as sfft
 from scipy import ndimage
 
 from app.io.volume import Volume
+from app.traces import lossy_compression
 from app.traces import spectrum as sp
 from app.traces.base import Trace, inconclusive, register
 
@@ -176,6 +177,17 @@ def pmap(image: np.ndarray, predictor: np.ndarray | None = None) -> np.ndarray:
     kernel = KIRCHNER_PREDICTOR if predictor is None else predictor
     x = np.asarray(image, dtype=np.float64)
     finite = np.isfinite(x)
+    if finite.all():  # the common case: no masking of the residual needed
+        e = x - ndimage.correlate(x, kernel, mode="reflect")
+        ae = np.abs(e).ravel()
+        scale = float(np.median(ae))
+        if not np.isfinite(scale) or scale <= 0:
+            nz = ae[ae != 0]
+            scale = float(np.median(nz)) if nz.size else 1.0
+        e *= 1.0 / (2.0 * scale)
+        np.square(e, out=e)
+        np.negative(e, out=e)
+        return np.exp(e, out=e)
     x0 = np.where(finite, x, 0.0)
     e = x0 - ndimage.correlate(x0, kernel, mode="reflect")
     valid = ndimage.minimum_filter(finite.astype(np.uint8), size=kernel.shape[0],
@@ -210,12 +222,42 @@ def _frames(volume: Volume, ctx: Any) -> tuple[list[np.ndarray], list[str]]:
     return frames, notes
 
 
+def centrosymmetric_median(mag: np.ndarray, size: int = 7) -> np.ndarray:
+    """``scipy.ndimage.median_filter(mag, size, mode="wrap")`` of a centred, centrosymmetric map.
+
+    The magnitude spectrum of real frames is centrosymmetric (Hermitian symmetry),
+    and so is its wrapped local median: the median is taken over half of the
+    rows (sliding windows, one partition) and mirrored onto the other half.
+    """
+    n, m = mag.shape
+    h = size // 2
+    lo = n // 2
+    if n < size or m < size:
+        return ndimage.median_filter(mag, size=size, mode="wrap")
+    # filtered rows lo .. n - 1, then row 0 (index n, wrapped)
+    rows = np.arange(lo - h, n + 1 + h) % n
+    sub = np.pad(mag[rows], ((0, 0), (h, h)), mode="wrap")
+    win = np.lib.stride_tricks.sliding_window_view(sub, (size, size))
+    win = win.reshape(win.shape[0], win.shape[1], size * size)
+    k = (size * size) // 2
+    med = np.partition(win, k, axis=-1)[..., k]
+    out = np.empty_like(mag)
+    out[lo:] = med[:-1]
+    out[0] = med[-1]
+    if lo > 1:
+        src_r = (2 * lo - np.arange(1, lo)) % n
+        src_c = (2 * (m // 2) - np.arange(m)) % m
+        out[1:lo] = out[src_r][:, src_c]
+    return out
+
+
 def _ratio(frames: list[np.ndarray], predictor: np.ndarray, workers: int) -> np.ndarray:
     """Mean p-map spectrum magnitude over its 7 x 7 local median, centred."""
     stack = np.stack([pmap(f, predictor) for f in frames]).astype(np.float32)
     stack -= stack.mean(axis=(1, 2), keepdims=True)
-    mag = sfft.fftshift(np.abs(sfft.fft2(stack, workers=workers)).mean(axis=0))
-    bg = ndimage.median_filter(mag, size=7, mode="wrap")
+    half = np.abs(sfft.rfft2(stack, workers=workers)).mean(axis=0)
+    mag = sfft.fftshift(sp.expand_half(half, stack.shape[-1]))
+    bg = centrosymmetric_median(mag, 7)
     top = float(mag.max())
     if not np.isfinite(top) or top <= 0:  # a constant image: no p-map structure at all
         return np.zeros_like(mag)
@@ -365,14 +407,16 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
                      {"rows": {"factor": 1.0}, "cols": {"factor": 1.0}}, {})
     frames, notes = _frames(volume, ctx)
     for note in notes:
-        if note not in ctx.notes:
-            ctx.notes.append(note)
+        ctx.note(note)
     if min(frames[0].shape) < 16:
         return Trace(TRACE_ID, "inconclusive", 0.0, "The image is too small to test.",
                      dict(DEFAULT_ESTIMATES), {})
-    # the lossy analyser runs first (order 50 < 55); when it found JPEG blocks in the
-    # pixels, their 1/8-periodic peaks are not counted as interpolation
-    jpeg = ctx.peek("jpeg_pixel_finding")
+    # when the JPEG test found 8 x 8 blocks in the pixels (shared with the lossy
+    # analyser), their 1/8-periodic peaks are not counted as interpolation
+    try:
+        jpeg = lossy_compression.jpeg_pixels_of(volume, ctx)
+    except Exception:  # noqa: BLE001 - the lossy analyser reports its own failure
+        jpeg = None
     blocks = bool(jpeg is not None and getattr(jpeg, "status", None) == "present")
     trace = trace_from(detect(frames, workers=ctx.workers, exclude_block_grid=blocks))
     trace.evidence["block_grid_excluded"] = blocks

@@ -148,6 +148,49 @@ def frame_power(
     return power
 
 
+def half_power(block: np.ndarray, *, multi_coil: bool = False, workers: int = 2) -> np.ndarray:
+    """Unshifted power of the real frames' ``rfft2`` (the non-negative column half).
+
+    ``(b, rows, cols // 2 + 1)`` float32, summed over coils when ``multi_coil``;
+    :func:`expand_half` gives the full plane.
+
+    References
+    ----------
+    .. [1] Bracewell, R. N. *The Fourier Transform and Its Applications*, 2000
+       (a real signal's transform is Hermitian: ``F(-k) = conj(F(k))``).
+    """
+    spec = sfft.rfft2(block.astype(np.float32, copy=False), workers=workers)
+    re, im = spec.real, spec.imag
+    power = re * re
+    power += im * im
+    if multi_coil:
+        power = power.sum(axis=1)
+    return power
+
+
+def _half_weighted_sum(power: np.ndarray, cols: int) -> np.ndarray:
+    """Per-frame sum of the full power plane from its ``rfft2`` half, ``(b, 1, 1)``."""
+    total = 2.0 * power.sum(axis=(1, 2), dtype=np.float64) - power[..., 0].sum(axis=1)
+    if cols % 2 == 0:
+        total -= power[..., -1].sum(axis=1)
+    return total.reshape(-1, 1, 1)
+
+
+def expand_half(half: np.ndarray, cols: int) -> np.ndarray:
+    """The full unshifted plane of a centrosymmetric map from its ``rfft2`` half.
+
+    ``full[r, c] = half[-r mod rows, cols - c]`` for the columns past the half.
+    """
+    rows, nh = half.shape[-2:]
+    full = np.empty(half.shape[:-2] + (rows, cols), dtype=half.dtype)
+    full[..., :nh] = half
+    if cols > nh:
+        r = (-np.arange(rows)) % rows
+        c = cols - np.arange(nh, cols)
+        full[..., nh:] = half[..., r, :][..., c]
+    return full
+
+
 def _kspace_needs_shift(power: np.ndarray) -> bool:
     """Whether k-space power has its peak near the corner (DC at index 0) not the centre."""
     rows, cols = power.shape[-2:]
@@ -207,8 +250,8 @@ def compute_spectrum(
     multi = volume.coil_axis is not None
     complex_input = volume.value_type == "complex"
     rep = int(idx_all[len(idx_all) // 2])
-    sum_p = np.zeros((rows, cols), dtype=np.float64)
-    sum_log = np.zeros((rows, cols), dtype=np.float64)
+    sum_p: np.ndarray | None = None
+    sum_log: np.ndarray | None = None
     map_power = np.zeros((rows, cols), dtype=np.float32)
     n_frames = 0
     shift: bool | None = None
@@ -223,24 +266,37 @@ def compute_spectrum(
         lead = (n_s, volume.n_coils) if multi else (n_s,)
         dt = np.complex64 if complex_input else np.float32
         col_buf = np.zeros(lead + (rows, len(col_sel)), dtype=dt)
+    # real images: the power of a real frame is centrosymmetric, so half of it
+    # (``rfft2``) carries everything; the sums are taken over the half, unshifted,
+    # and expanded and centred once at the end
+    half = volume.domain == "image" and not complex_input
     pos = 0
     for idx, block in volume.iter_slices(batch, indices=idx_all):
-        if not np.all(np.isfinite(block)):
+        if block.dtype.kind not in "iub" and not np.all(np.isfinite(block)):
             # a copy: the block may be a view of the caller's (or a read-only mapped) array
             block = np.nan_to_num(block)
-        if volume.domain == "kspace":
+        if half:
+            power = half_power(block, multi_coil=multi, workers=workers)
+            mean = _half_weighted_sum(power, cols) / np.float32(rows * cols)
+        elif volume.domain == "kspace":
             if shift is None:
                 raw = frame_power(block, domain="kspace", multi_coil=multi, shift=False)
                 shift = _kspace_needs_shift(raw)
             power = frame_power(block, domain="kspace", multi_coil=multi, shift=bool(shift))
+            mean = power.mean(axis=(1, 2), keepdims=True)
         else:
             power = frame_power(block, domain="image", multi_coil=multi, workers=workers)
+            mean = power.mean(axis=(1, 2), keepdims=True)
+        if sum_p is None:
+            sum_p = np.zeros(power.shape[1:], dtype=np.float64)
+            sum_log = np.zeros(power.shape[1:], dtype=np.float64)
         sum_p += power.sum(axis=0, dtype=np.float64)
-        floor = np.float32(1e-12) * power.mean(axis=(1, 2), keepdims=True) + np.float32(1e-30)
-        sum_log += np.log10(power + floor).sum(axis=0, dtype=np.float64)
         hit = np.nonzero(idx == rep)[0]
         if len(hit):
-            map_power = power[int(hit[0])].astype(np.float32)
+            map_power = power[int(hit[0])].copy()
+        floor = np.float32(1e-12) * mean.astype(np.float32) + np.float32(1e-30)
+        power += floor
+        sum_log += np.log10(power, out=power).sum(axis=0, dtype=np.float64)
         if col_buf is not None:
             col_buf[pos:pos + len(idx)] = block[..., col_sel]
         pos += len(idx)
@@ -249,6 +305,10 @@ def compute_spectrum(
         raise ValueError("the volume has no frames to analyse")
     mean_power = sum_p / n_frames
     mean_log = sum_log * (10.0 / n_frames)
+    if half:
+        mean_power = sfft.fftshift(expand_half(mean_power, cols))
+        mean_log = sfft.fftshift(expand_half(mean_log, cols))
+        map_power = sfft.fftshift(expand_half(map_power, cols))
     profiles = {"rows": mean_power.mean(axis=1), "cols": mean_power.mean(axis=0)}
     log_profiles = {"rows": mean_log.mean(axis=1), "cols": mean_log.mean(axis=0)}
     if col_buf is not None:
@@ -337,8 +397,9 @@ def round_sig(values: Any, digits: int = 4) -> Any:
     if out.ndim == 0:
         f = float(out)
         return None if not np.isfinite(f) else f
-    return [None if not np.isfinite(x) else float(x) for x in out.ravel()] if out.ndim == 1 \
-        else [[None if not np.isfinite(x) else float(x) for x in row] for row in out]
+    if np.isfinite(out).all():
+        return out.tolist()
+    return np.where(np.isfinite(out), out, None).tolist()
 
 
 def profile_db_evidence(spec: Spectrum) -> dict[str, list]:

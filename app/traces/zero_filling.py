@@ -414,6 +414,5 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
         return inconclusive(TRACE_ID, small)
     spec = sp.spectrum_of(volume, ctx)
     for note in spec.notes:
-        if note not in ctx.notes:
-            ctx.notes.append(note)
+        ctx.note(note)
     return trace_from(spec)
