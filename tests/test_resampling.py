@@ -152,8 +152,9 @@ def test_bounded_subset_is_stated():
     ctx = AnalysisContext(vol)
     trace = rs.analyse(vol, ctx)
     assert trace.status == "present"
-    assert trace.evidence["n_frames"] == rs.MAX_FRAMES
-    assert any("resampling analysed" in n for n in ctx.notes)
+    # one frame in eight, at least MIN_FRAMES (4 here), at most MAX_FRAMES
+    assert trace.evidence["n_frames"] == rs.MIN_FRAMES
+    assert any("resampling analysed 4 of 16 frames" in n for n in ctx.notes)
 
 
 def _jpeg_round_trip(img8: np.ndarray, quality: int) -> np.ndarray:
@@ -207,3 +208,40 @@ def test_centrosymmetric_median_equals_scipy_median_filter(shape):
     mag = 0.5 * (mag + np.roll(mag[::-1, ::-1], (1 - shape[0] % 2, 1 - shape[1] % 2), (0, 1)))
     ref = ndimage.median_filter(mag, size=7, mode="wrap")
     np.testing.assert_array_equal(rs.centrosymmetric_median(mag, 7), ref)
+
+
+def test_zero_fill_frequency_follows_popescu_farid():
+    """Interpolation by s repeats at |1/s - round(1/s)| cycles/sample (Popescu and Farid
+    2005): 2 -> 0.5, 4 -> 0.25, 1.5 -> 1/3, 1.25 -> 0.2."""
+    for s, f in ((2.0, 0.5), (4.0, 0.25), (1.5, 1 / 3), (1.25, 0.2)):
+        assert rs.zero_fill_frequency(s) == pytest.approx(f, abs=1e-9)
+
+
+def _zero_filled(seed=0):
+    """8-coil RSS frames zero-filled 2x in k-space (truth: zero-filled, not resampled)."""
+    mag, _ = synth.zero_filled_magnitude((96, 96), (2.0, 2.0), n_coils=8, n_slices=6,
+                                         sigma=0.01, seed=seed)
+    return mag
+
+
+def test_zero_filling_periodicity_is_not_counted_as_resampling():
+    """Zero-filling by 2 is sinc interpolation by 2: its Nyquist periodicity is set aside
+    (zero_filling reports it), so resampling is absent and the evidence says why."""
+    vol = Volume.from_array(_zero_filled().astype(np.float32))
+    trace = rs.analyse(vol, AnalysisContext(vol))
+    explained = trace.evidence["zero_fill_explained"]
+    assert set(explained) == {"rows", "cols"}
+    assert all(abs(f - 0.5) < 0.02 for f in explained.values())
+    assert trace.status == "absent", trace.summary
+
+
+def test_resampling_after_zero_filling_is_still_found():
+    """Zero-filled 2x, then scipy.ndimage.zoom by 1.25 (order 3): the zoom's periodicity
+    (0.2 cycles/sample, Popescu and Farid) is not the one the overall band limit (2.5x,
+    0.4) explains, and is reported. (A zoom by 1.5 after 2x is the one factor in (1, 2)
+    where both fall at 1/3 and the zoom is set aside too: 1 - 1/s = 1/(2 s).)"""
+    frames = [ndimage.zoom(f, 1.25, order=3) for f in _zero_filled(seed=1)]
+    trace = _trace(frames)
+    assert trace.status == "present", trace.summary
+    for ax in ("rows", "cols"):
+        assert abs(trace.estimates[ax]["factor"] - 1.25) <= 0.03, trace.estimates

@@ -40,6 +40,9 @@ from scipy import ndimage
 from app.io.volume import Volume
 
 MAX_FRAMES = 16
+#: at most this share of the frames (but at least MIN_FRAMES) is examined
+FRAME_SHARE = 0.25
+MIN_FRAMES = 8
 FFT_TOLERANCE = 1e-5
 MAX_PIXELS = 1_500_000
 _WORK_SIDE = 128
@@ -249,6 +252,16 @@ def _far_half(mask: np.ndarray) -> np.ndarray:
     return mask & (d >= cut)
 
 
+def _percentile(values: np.ndarray, q: float) -> float:
+    """``numpy.percentile(values, q)`` (linear interpolation) from one partition."""
+    n = values.size
+    pos = q / 100.0 * (n - 1)
+    lo = int(np.floor(pos))
+    hi = min(lo + 1, n - 1)
+    part = np.partition(values, [lo, hi]) if hi > lo else np.partition(values, lo)
+    return float(part[lo] + (pos - lo) * (part[hi] - part[lo]))
+
+
 def _corner_mask(shape: tuple[int, int]) -> np.ndarray:
     rows, cols = shape
     h, w = max(4, rows // 8), max(4, cols // 8)
@@ -437,7 +450,8 @@ def find_background(volume: Volume, *, frames: Any = None,
         Frames to choose from (the context's stated subset); default all.
     max_frames : int
         Upper bound on frames examined; fewer when the frames are large (at most
-        :data:`MAX_PIXELS` pixels in all).
+        :data:`MAX_PIXELS` pixels in all) and at most a quarter of the frames
+        (:data:`FRAME_SHARE`) once there are more than :data:`MIN_FRAMES`.
 
     Returns
     -------
@@ -448,7 +462,8 @@ def find_background(volume: Volume, *, frames: Any = None,
     Otsu 1979; Gudbjartsson and Patz, MRM 1995.
     """
     rows, cols = volume.image_shape
-    max_frames = max(1, min(max_frames, MAX_PIXELS // max(1, rows * cols)))
+    share = max(MIN_FRAMES, int(np.ceil(FRAME_SHARE * volume.n_slices)))
+    max_frames = max(1, min(max_frames, share, MAX_PIXELS // max(1, rows * cols)))
     idx = analysed_frames(volume.n_slices, frames, max_frames)
     notes = []
     if idx.size < volume.n_slices:
@@ -467,7 +482,9 @@ def find_background(volume: Volume, *, frames: Any = None,
         for j in range(mag.shape[0]):
             m = mag[j]
             fin = np.isfinite(m)
-            blank = not fin.any() or float(m[fin].min()) == float(m[fin].max())
+            all_fin = bool(fin.all())
+            m_fin = m.ravel() if all_fin else m[fin]  # no copy in the common case
+            blank = m_fin.size == 0 or float(m_fin.min()) == float(m_fin.max())
             mask, method, exc, t = frame_background(m)
             masks.append(mask)
             a = acc[blank]
@@ -475,10 +492,10 @@ def find_background(volume: Volume, *, frames: Any = None,
             a.methods.add(method)
             a.excluded += exc
             a.n_px += m.size
-            a.n_nan += int((~fin).sum())
-            if fin.any():
-                a.peaks.append(float(np.percentile(m[fin], 99.5)))
-                obj = m[fin & ~mask]
+            a.n_nan += 0 if all_fin else int((~fin).sum())
+            if m_fin.size:
+                a.peaks.append(_percentile(m_fin, 99.5))
+                obj = m[~mask] if all_fin else m[fin & ~mask]
                 above = obj[obj >= t]
                 a.obj_levels.append(float(np.median(above)) if above.size else
                                     float(np.median(obj)) if obj.size else 0.0)

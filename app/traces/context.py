@@ -10,6 +10,22 @@ from typing import Any
 from app.io.volume import Volume
 
 
+class SharedStepBusy(BaseException):
+    """Raised by :meth:`AnalysisContext.cached` in a thread that must not wait.
+
+    A ``BaseException``, so that analysers' own ``except Exception`` handlers let
+    it through to the scheduler, which runs the analyser again later.
+    """
+
+
+_THREAD = threading.local()
+
+
+def waiting_allowed(allowed: bool) -> None:
+    """Whether ``cached`` in the calling thread waits for a step another thread computes."""
+    _THREAD.no_wait = not allowed
+
+
 @dataclass
 class AnalysisContext:
     """What analysers share while one Volume is analysed.
@@ -51,13 +67,17 @@ class AnalysisContext:
         if key not in self._cache:
             with self._guard:
                 lock = self._locks.setdefault(key, threading.Lock())
-            with lock:
+            if not lock.acquire(blocking=not getattr(_THREAD, "no_wait", False)):
+                raise SharedStepBusy(key)
+            try:
                 if key not in self._cache:
                     try:
                         value = (True, factory())
                     except Exception as exc:  # noqa: BLE001 - re-raised to each caller
                         value = (False, exc)
                     self._cache[key] = value
+            finally:
+                lock.release()
         ok, value = self._cache[key]
         if not ok:
             raise value

@@ -65,6 +65,7 @@ from app.traces.magnitude_only import value_kind_of
 
 TRACE_ID = "intensity_quantization"
 MAX_FRAMES = 32
+_COUNT_CHUNK = 1 << 17
 MAX_SAMPLES = 2_000_000
 SQUEEZED_LEVELS = 256
 MIN_SAMPLES_FOR_LEVELS = 16 * SQUEEZED_LEVELS
@@ -130,8 +131,13 @@ def level_stats(values: np.ndarray) -> LevelStats:
     if v.dtype.kind in "iub":
         lo, hi = int(v.min()), int(v.max())
         if 0 <= lo and hi < 1 << 24 and v.dtype.itemsize <= 4:
-            # counted in place: no widened copy of the sample
-            c = np.bincount(v.view(np.uint8) if v.dtype.kind == "b" else v)[lo:]
+            # counted in chunks: no widened copy of the whole sample
+            if v.dtype.kind == "b":
+                v = v.view(np.uint8)
+            c = np.zeros(hi + 1, dtype=np.int64)
+            for i in range(0, v.size, _COUNT_CHUNK):
+                c += np.bincount(v[i:i + _COUNT_CHUNK], minlength=hi + 1)
+            c = c[lo:]
             nz = np.flatnonzero(c)
             return LevelStats(nz + lo, c[nz], 1.0, int(v.size))
         v = v.astype(np.int64)

@@ -13,8 +13,8 @@ import pkgutil
 import threading
 import time
 import traceback
+from collections import deque
 from collections.abc import Callable
-from concurrent.futures import ThreadPoolExecutor
 from typing import Any
 
 import numpy as np
@@ -22,7 +22,7 @@ import numpy as np
 import app
 from app.io.volume import Volume
 from app.traces import base
-from app.traces.context import AnalysisContext
+from app.traces.context import AnalysisContext, SharedStepBusy, waiting_allowed
 
 SCHEMA = "rawproof.report/1"
 _SKIP = {"base", "context", "report", "previews", "jpeg_tables", "header"}
@@ -131,6 +131,43 @@ def _input_section(volume: Volume, path: str, fmt: str, n_files: int) -> dict[st
     }
 
 
+def _run_threaded(registry: dict[str, Any], run_one: Callable[[str, Any], Any],
+                  threads: int) -> dict[str, Any]:
+    """Run ``run_one(tid, analyser)`` for every analyser on ``threads`` threads."""
+    queue: deque[tuple[str, Any, bool]] = deque((t, a, False) for t, a in registry.items())
+    lock = threading.Lock()
+    done: dict[str, Any] = {}
+    failure: list[BaseException] = []
+
+    def lane() -> None:
+        while True:
+            with lock:
+                if not queue or failure:
+                    return
+                tid, an, deferred = queue.popleft()
+            waiting_allowed(deferred)
+            try:
+                done[tid] = run_one(tid, an)
+            except SharedStepBusy:
+                with lock:
+                    queue.append((tid, an, True))
+            except BaseException as exc:  # noqa: BLE001 - re-raised in the caller's thread
+                with lock:
+                    failure.append(exc)
+            finally:
+                waiting_allowed(True)
+
+    pool = [threading.Thread(target=lane, name=f"analyser-{i}", daemon=True)
+            for i in range(threads)]
+    for th in pool:
+        th.start()
+    for th in pool:
+        th.join()
+    if failure:
+        raise failure[0]
+    return done
+
+
 def analyse_volume(
     volume: Volume,
     *,
@@ -175,11 +212,14 @@ def analyse_volume(
     ctx.options.setdefault("header_declared", header["declared"])
     registry = analysers()
     progress_lock = threading.Lock()
+    started: set[str] = set()
 
     def run_one(tid: str, an: Any) -> tuple[dict, float]:
         if progress:
-            with progress_lock:
-                progress(f"{volume.name or path}: {tid}")
+            with progress_lock:  # one line per analyser, also when it is run again
+                if tid not in started:
+                    started.add(tid)
+                    progress(f"{volume.name or path}: {tid}")
         t0 = time.perf_counter()
         try:
             trace = an.func(volume, ctx)
@@ -198,13 +238,13 @@ def analyse_volume(
         return _jsonable(trace.to_dict()), round(time.perf_counter() - t0, 4)
 
     # analysers are independent except for the shared steps behind ctx.cached, which
-    # computes each once and makes other threads wait; numpy and scipy release the
-    # GIL in their array work, so a second thread uses the second core
+    # computes each once; numpy and scipy release the GIL in their array work, so a
+    # second thread uses the second core. A thread does not wait for a shared step
+    # that the other thread is computing: the analyser goes to the back of the
+    # queue and is run again (waiting) after the rest.
     threads = max(1, min(int(workers), len(registry)))
     if threads > 1:
-        with ThreadPoolExecutor(max_workers=threads, thread_name_prefix="analyser") as pool:
-            futures = {tid: pool.submit(run_one, tid, an) for tid, an in registry.items()}
-            done = {tid: f.result() for tid, f in futures.items()}
+        done = _run_threaded(registry, run_one, threads)
     else:
         done = {tid: run_one(tid, an) for tid, an in registry.items()}
     traces = {tid: done[tid][0] for tid in registry}

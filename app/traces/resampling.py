@@ -80,6 +80,9 @@ PEAK_RATIO = 8.0
 OFF_AXIS_RATIO = 5.0
 LOW_FREQ = 0.04
 MAX_FRAMES = 6
+MIN_FRAMES = 4
+#: frequency tolerance (cycles/sample) around a periodicity explained by zero-filling
+EXPLAINED_TOL = 0.015
 MAX_SIDE = 256
 DEFAULT_ESTIMATES: dict[str, Any] = {"rows": {"factor": None}, "cols": {"factor": None}}
 
@@ -137,16 +140,23 @@ def fit_predictor(frames: list[np.ndarray], *, radius: int = PREDICTOR_RADIUS,
     xs, ys = [], []
     per = max(1, max_samples // max(1, len(frames)))
     for f in frames:
-        x = np.asarray(f, dtype=np.float64)
+        x = np.ascontiguousarray(f, dtype=np.float64)
+        rows, cols = x.shape
         finite = np.isfinite(x)
-        ok = ndimage.minimum_filter(finite.astype(np.uint8), size=2 * radius + 1,
-                                    mode="constant", cval=0)
-        iy, ix = np.nonzero(ok)
+        if finite.all():  # the interior, in the row-major order np.nonzero gives
+            iy = np.repeat(np.arange(radius, rows - radius), max(0, cols - 2 * radius))
+            ix = np.tile(np.arange(radius, cols - radius), max(0, rows - 2 * radius))
+        else:
+            ok = ndimage.minimum_filter(finite.astype(np.uint8), size=2 * radius + 1,
+                                        mode="constant", cval=0)
+            iy, ix = np.nonzero(ok)
         if len(iy) > per:
             pick = rng.choice(len(iy), per, replace=False)
             iy, ix = iy[pick], ix[pick]
-        xs.append(np.stack([x[iy + dy, ix + dx] for dy, dx in offs], axis=-1))
-        ys.append(x[iy, ix])
+        flat = iy * cols + ix
+        steps = np.array([dy * cols + dx for dy, dx in offs])
+        xs.append(x.ravel()[flat[:, None] + steps[None, :]])
+        ys.append(x.ravel()[flat])
     X, y = np.concatenate(xs), np.concatenate(ys)
     k = (2 * radius + 1) ** 2
     if len(y) < 4 * k or not np.any(X):
@@ -159,6 +169,19 @@ def fit_predictor(frames: list[np.ndarray], *, radius: int = PREDICTOR_RADIUS,
 def _pad_kernel(kernel: np.ndarray, radius: int) -> np.ndarray:
     pad = radius - kernel.shape[0] // 2
     return np.pad(kernel, pad) if pad > 0 else kernel
+
+
+def _median_inplace(values: np.ndarray) -> float:
+    """``numpy.median`` of a 1D scratch array, partitioned in place."""
+    n = values.size
+    if n == 0:
+        return float("nan")
+    k = n // 2
+    if n % 2:
+        values.partition(k)
+        return float(values[k])
+    values.partition([k - 1, k])
+    return float(0.5 * (values[k - 1] + values[k]))
 
 
 def pmap(image: np.ndarray, predictor: np.ndarray | None = None) -> np.ndarray:
@@ -180,7 +203,7 @@ def pmap(image: np.ndarray, predictor: np.ndarray | None = None) -> np.ndarray:
     if finite.all():  # the common case: no masking of the residual needed
         e = x - ndimage.correlate(x, kernel, mode="reflect")
         ae = np.abs(e).ravel()
-        scale = float(np.median(ae))
+        scale = _median_inplace(ae)
         if not np.isfinite(scale) or scale <= 0:
             nz = ae[ae != 0]
             scale = float(np.median(nz)) if nz.size else 1.0
@@ -204,9 +227,11 @@ def pmap(image: np.ndarray, predictor: np.ndarray | None = None) -> np.ndarray:
 def _frames(volume: Volume, ctx: Any) -> tuple[list[np.ndarray], list[str]]:
     idx = np.asarray(ctx.frame_indices())
     notes = []
-    if len(idx) > MAX_FRAMES:
-        idx = idx[np.unique(np.linspace(0, len(idx) - 1, MAX_FRAMES).round().astype(int))]
-        notes.append(f"resampling analysed {len(idx)} evenly spaced frames")
+    # one frame in eight, at least MIN_FRAMES, at most MAX_FRAMES
+    keep = min(MAX_FRAMES, max(MIN_FRAMES, int(np.ceil(len(idx) / 8))))
+    if len(idx) > keep:
+        idx = idx[np.unique(np.linspace(0, len(idx) - 1, keep).round().astype(int))]
+        notes.append(f"resampling analysed {len(idx)} of {volume.n_slices} frames, evenly spaced")
     frames = []
     for _, block in volume.iter_slices(ctx.batch, indices=idx):
         for f in block:
@@ -264,13 +289,25 @@ def _ratio(frames: list[np.ndarray], predictor: np.ndarray, workers: int) -> np.
     return mag / np.maximum(bg, 1e-12 * top)
 
 
+def zero_fill_frequency(factor: float) -> float:
+    """Frequency (cycles/sample, folded to [0, 0.5]) of the p-map periodicity that an
+    interpolation by ``factor`` leaves: ``|1/s - round(1/s)|`` (Popescu and Farid 2005).
+    Zero-filling k-space by ``factor`` is such an interpolation (by a sinc kernel)."""
+    inv = 1.0 / float(factor)
+    return float(abs(inv - np.round(inv)))
+
+
 def detect(frames: list[np.ndarray], *, workers: int = 2,
-           exclude_block_grid: bool = False) -> ResamplingResult:
+           exclude_block_grid: bool = False,
+           explained: dict[str, float] | None = None) -> ResamplingResult:
     """Kirchner's spectral test on a list of equally sized 2D frames.
 
     With ``exclude_block_grid``, frequencies within one bin of multiples of 1/8
     cycles/sample on both axes are left out: an 8 x 8 block transform (JPEG)
-    leaves periodic peaks there that are not interpolation.
+    leaves periodic peaks there that are not interpolation. ``explained`` maps
+    ``rows``/``cols`` to a frequency that another finding already accounts for
+    (zero-filling, see :func:`zero_fill_frequency`): peaks whose coordinate on
+    each axis is near 0 or near that axis's explained frequency are left out.
 
     References
     ----------
@@ -288,6 +325,14 @@ def detect(frames: list[np.ndarray], *, workers: int = 2,
         def on_grid(f: np.ndarray, n: int) -> np.ndarray:
             return np.abs(f * 8 - np.round(f * 8)) <= 8.0 / n + 1e-9
         r = np.where(on_grid(fy, rows)[:, None] & on_grid(fx, cols)[None, :], 0.0, r)
+    if explained:
+        def near(f: np.ndarray, n: int, ax: str) -> np.ndarray:
+            out = np.abs(f) <= 1.0 / n + 1e-9
+            if explained.get(ax) is not None:
+                tol = max(2.0 / n, EXPLAINED_TOL)
+                out |= np.abs(np.abs(f) - explained[ax]) <= tol
+            return out
+        r = np.where(near(fy, rows, "rows")[:, None] & near(fx, cols, "cols")[None, :], 0.0, r)
     peak_ratio = float(r.max())
     # local maxima above the threshold, one half-plane (the spectrum is symmetric);
     # off the axes a lower threshold holds (band-limited images raise only axis lines)
@@ -418,9 +463,35 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
     except Exception:  # noqa: BLE001 - the lossy analyser reports its own failure
         jpeg = None
     blocks = bool(jpeg is not None and getattr(jpeg, "status", None) == "present")
-    trace = trace_from(detect(frames, workers=ctx.workers, exclude_block_grid=blocks))
+    # zero-filling k-space by s is interpolation by s (a sinc kernel): its periodicity
+    # is already reported by the zero_filling trace, so it is not counted twice
+    explained = _zero_fill_explained(volume, ctx)
+    trace = trace_from(detect(frames, workers=ctx.workers, exclude_block_grid=blocks,
+                              explained=explained))
     trace.evidence["block_grid_excluded"] = blocks
+    trace.evidence["zero_fill_explained"] = {ax: sp.round_sig(f) for ax, f in explained.items()}
     if blocks:
         trace.summary += (" Peaks at multiples of 1/8 cycles/sample were set aside: the "
                           "pixels carry an 8 x 8 JPEG block grid.")
+    if explained:
+        parts = ", ".join(f"{ax} {f:.3g}" for ax, f in explained.items())
+        trace.summary += (f" Peaks at the frequency that the zero-filling found in k-space "
+                          f"explains ({parts} cycles/sample) were set aside.")
     return trace
+
+
+def _zero_fill_explained(volume: Volume, ctx: Any) -> dict[str, float]:
+    """``rows``/``cols`` -> p-map frequency explained by the zero-filling found, if any."""
+    from app.traces import zero_filling as zf
+
+    try:
+        axes = zf.detect(sp.spectrum_of(volume, ctx))
+    except Exception:  # noqa: BLE001 - the zero_filling analyser reports its own failure
+        return {}
+    out = {}
+    for ax in ("rows", "cols"):
+        a = axes.get(ax)
+        if a is not None and a.found and a.support_fraction < zf.FOUND_SUPPORT \
+                and a.padding_factor > 1.05:
+            out[ax] = zero_fill_frequency(a.padding_factor)
+    return out

@@ -63,6 +63,8 @@ RING_CHECK_BELOW_DB = 9.0
 CROSSING_LEVEL = 0.3
 #: support fractions below this are not searched (padding above 5x)
 MIN_SUPPORT = 0.2
+#: an axis counts as zero-filled when its acquired region is below this share
+FOUND_SUPPORT = 0.985
 DEFAULT_ESTIMATES: dict[str, Any] = {
     "rows": {"support_fraction": None, "padding_factor": None},
     "cols": {"support_fraction": None, "padding_factor": None},
@@ -388,7 +390,7 @@ def trace_from(spec: sp.Spectrum) -> Trace:
         "n_frames": spec.n_frames,
         **sp.map_evidence(spec),
     }
-    found = [a for a in axes.values() if a.found and a.support_fraction < 0.985]
+    found = [a for a in axes.values() if a.found and a.support_fraction < FOUND_SUPPORT]
     if found:
         parts = ", ".join(
             f"{a.axis} {a.padding_factor:.2f}x (support {a.support_fraction:.3f})" for a in found
