@@ -8,6 +8,7 @@ never changes once stored, so a cached file stays valid.
 
 from __future__ import annotations
 
+import functools
 import json
 import os
 import tempfile
@@ -163,17 +164,34 @@ def _check_inputs(family: str, acceleration: float, dims: int, axis: str) -> Non
                               f"{MAX_ACCELERATION:g}.")
 
 
+@functools.lru_cache(maxsize=1024)
+def _effective_rate_frozen(shape: tuple[int, int], support: tuple[float, float], family: str,
+                           acceleration: float, dims: int, axis: str) -> str:
+    res = _sampling().effective_rate(shape, support, family, acceleration, dims=dims,
+                                     axis=axis, n_masks=CALC_MASKS, seed=CALC_SEED)
+    return json.dumps(res)
+
+
+def _effective_rate(shape: tuple[int, int], support: tuple[float, float], family: str,
+                    acceleration: float, dims: int, axis: str) -> dict[str, Any]:
+    """``app.sampling.effective_rate`` with the calculator's masks and seed, memoised.
+
+    The answer depends only on these arguments (the masks are seeded), and the
+    dataset page asks for it on every view; a fresh copy is returned each time.
+    """
+    return json.loads(_effective_rate_frozen(shape, support, family, acceleration, dims, axis))
+
+
 def effective_summary(report: dict[str, Any], *, family: str, acceleration: float,
                       dims: int = 1, axis: str = "cols") -> dict[str, Any]:
     """The calculator's answer: app.sampling's effective rate on the measured support,
     and on the full grid of a raw acquisition of the same size."""
     _check_inputs(family, acceleration, dims, axis)
-    sampling = _sampling()
     sup = measured_support(report)
-    res = sampling.effective_rate(sup["shape"], sup["support"], family, acceleration,
-                                  dims=dims, axis=axis, n_masks=CALC_MASKS, seed=CALC_SEED)
-    raw = sampling.effective_rate(sup["shape"], (1.0, 1.0), family, acceleration, dims=dims,
-                                  axis=axis, n_masks=CALC_MASKS, seed=CALC_SEED)
+    shape = tuple(int(n) for n in sup["shape"])
+    res = _effective_rate(shape, tuple(float(f) for f in sup["support"]), family,
+                          float(acceleration), int(dims), axis)
+    raw = _effective_rate(shape, (1.0, 1.0), family, float(acceleration), int(dims), axis)
     return {"family": family, "dims": dims, "axis": axis if dims == 1 else None,
             "acceleration": float(acceleration),
             "effective_acceleration": float(res["effective_acceleration"]),
