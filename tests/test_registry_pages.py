@@ -102,3 +102,49 @@ def test_serve_with_two_processes_shares_sessions_and_data(tmp_path) -> None:
         assert all(p.status_code == 200 for p in pages)
         assert all("Two-process set" in p.text for p in pages)
         assert ria.get(f"/datasets/{info['dataset_id']}").status_code == 200
+
+
+def test_dataset_page_shows_every_change_at_once(tmp_path) -> None:
+    """A dataset page is rendered once per database state and member: a worker's
+    progress (heartbeat), a comment and a decision each show on the next load, and
+    each member's page carries that member's own CSRF token."""
+    from app.store import jobs as jobq
+    from app.web import pagecache
+
+    pagecache.clear()
+    settings = dataclasses.replace(Settings(), data_dir=tmp_path / "data", database_url="")
+    migrate.upgrade(settings)
+    with session_scope(settings) as db:
+        ria = service.create_user(db, "ria", "ria-password-1")
+        service.create_user(db, "rev", "rev-password-1")
+        ds = service.create_dataset(db, settings, uploader=ria, name="Set one",
+                                    source="https://archive.example.org", licence="CC0",
+                                    description="", intended_use="",
+                                    files=[("a.bin", b"one")])
+        ds_id = ds.id
+    with TestClient(create_app(settings)) as client, \
+            TestClient(create_app(settings)) as other:
+        _signed_in(client)
+        page = f"/datasets/{ds_id}"
+        assert "queued" in client.get(page).text
+        with session_scope(settings) as db:
+            job = jobq.claim_job(db, "test-worker", lease=60)
+            job_id = job.id
+        assert "running" in client.get(page).text
+        for done in (1, 5):
+            with session_scope(settings) as db:
+                assert jobq.heartbeat(db, job_id, "test-worker", lease=60, progress={
+                    "files": [{"name": "a", "done": done, "total": 9}], "current": "a"})
+            assert f"{done} / 9" in client.get(page).text
+        with session_scope(settings) as db:
+            service.add_comment(db, dataset=service.get_dataset(db, ds_id),
+                                author=service.get_user(db, "rev"), body="Looks interpolated")
+        assert "Looks interpolated" in client.get(page).text
+        token = re.compile(r'name="csrf_token" value="([^"]+)"')
+        mine = set(token.findall(client.get(page).text))
+        r = other.get("/login")
+        t = token.search(r.text).group(1)
+        other.post("/login", data={"name": "rev", "password": "rev-password-1",
+                                   "csrf_token": t}, follow_redirects=False)
+        theirs = set(token.findall(other.get(page).text))
+        assert mine and theirs and not (mine & theirs)

@@ -222,3 +222,35 @@ def test_admins_manage_accounts_and_members_cannot(server) -> None:
     token = re.search(r'name="csrf_token" value="([^"]+)"', c.get("/login").text).group(1)
     r = c.post("/login", data={"name": "dan", "password": "dan-password-1", "csrf_token": token})
     assert r.status_code == 401
+
+
+def test_sign_in_budget_is_shared_by_server_processes(tmp_path) -> None:
+    """Two limiters (as in two `serve --processes 2` processes) over one database count
+    the same failures, and a success resets only that name's count (common practice,
+    no source: per-account and per-address budgets)."""
+    from app.config import Settings
+    from app.store import migrate, service
+    from app.store.db import database
+    from app.web.ratelimit import LoginLimiter, RateLimited
+
+    settings = Settings(data_dir=tmp_path)
+    migrate.upgrade(settings)
+    db = database(settings)
+    with db.scope() as s:
+        user = service.create_user(s, "dana", "dana-password-1")
+    one, two = LoginLimiter(max_failures=2, window=60), LoginLimiter(max_failures=2, window=60)
+    with db.scope() as s:  # one failure seen by each process
+        service.audit(s, "login.fail", name="Dana", address="10.0.0.7")
+    with db.scope(write=False) as s:
+        two.check(s, "10.0.0.7", "dana")  # one failure: still allowed
+    with db.scope() as s:
+        service.audit(s, "login.fail", name="dana", address="10.0.0.7")
+    with db.scope(write=False) as s:
+        with pytest.raises(RateLimited) as exc:
+            one.check(s, "10.0.0.7", "DANA")
+        assert 0 < exc.value.retry_after <= 61
+        two.check(s, "10.0.0.8", "dana")  # another address has its own budget
+    with db.scope() as s:
+        service.audit(s, "login.ok", actor=s.merge(user), address="10.0.0.7")
+    with db.scope(write=False) as s:
+        two.check(s, "10.0.0.7", "dana")

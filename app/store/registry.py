@@ -62,11 +62,12 @@ _CACHE: dict[str, tuple[tuple, list[RegistryRow]]] = {}
 _CACHE_LOCK = threading.Lock()
 
 
-def _change_key(session: Session) -> tuple:
-    """A value that changes whenever anything the registry shows may have changed.
+def change_key(session: Session) -> tuple:
+    """A value that changes whenever anything the registry or a dataset page shows may
+    have changed.
 
-    Every user-made change writes an audit event; reports and job state changes
-    (the worker's) are counted directly.
+    Every user-made change writes an audit event; reports, job state changes and
+    job heartbeats (the worker's progress) are counted directly.
     """
     return tuple(session.execute(select(
         select(func.max(AuditEvent.id)).scalar_subquery(),
@@ -75,18 +76,20 @@ def _change_key(session: Session) -> tuple:
         select(func.count(Job.id)).where(Job.state.in_(("queued", "running")))
         .scalar_subquery(),
         select(func.count(Job.id)).where(Job.state == "failed").scalar_subquery(),
+        select(func.max(Job.heartbeat_at)).where(Job.state == "running").scalar_subquery(),
         select(func.count(Dataset.id)).scalar_subquery(),
+        select(func.max(User.id)).scalar_subquery(),
     )).one())
 
 
 def registry_rows(session: Session) -> list[RegistryRow]:
     """Every dataset with uploader, file summary, latest report, current decision, latest job.
 
-    Read once per change of the database (see :func:`_change_key`) and shared by
+    Read once per change of the database (see :func:`change_key`) and shared by
     every request until the next change; callers must not modify the rows.
     """
     url = str(session.get_bind().url)
-    key = _change_key(session)
+    key = change_key(session)
     with _CACHE_LOCK:
         hit = _CACHE.get(url)
     if hit is not None and hit[0] == key:

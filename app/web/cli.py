@@ -85,8 +85,7 @@ def _add_serve(p: argparse.ArgumentParser) -> None:
     p.add_argument("--no-worker", action="store_true", help="start no worker beside the server")
     p.add_argument("--processes", type=int, default=1,
                    help="web server processes (default 1); more serve concurrent readers "
-                        "faster on a multi-core machine (sign-in rate limits then count "
-                        "per process)")
+                        "faster on a multi-core machine")
     p.add_argument("--lease-seconds", type=float, default=30.0, help="the worker's job lease")
 
 

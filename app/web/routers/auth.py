@@ -66,7 +66,8 @@ def login(
     address = client_address(request)
     name = name.strip()
     try:
-        limiter.check(address, name)
+        with request.app.state.database.scope(write=False) as reader:
+            limiter.check(reader, address, name)
     except RateLimited as exc:
         service.audit(db, "login.limited", name=name[:64], address=address)
         db.commit()
@@ -82,12 +83,10 @@ def login(
         user_id = checked.id if checked is not None else None
     user = db.get(User, user_id) if user_id is not None else None
     if user is None:
-        limiter.failed(address, name)
         service.audit(db, "login.fail", name=name[:64], address=address)
         db.commit()
         return _login_page(request, error="That name and password do not match an active account.",
                            name=name, next_url=safe_next(next), status_code=401)
-    limiter.succeeded(address, name)
     # A new session id at every sign-in; any session the browser held is ended.
     service.end_web_session(db, request.cookies.get(SESSION_COOKIE))
     _row, token = service.create_web_session(db, user, ttl=SESSION_TTL)

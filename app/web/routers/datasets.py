@@ -14,6 +14,7 @@ from app.store import service
 from app.store.errors import NotFoundError
 from app.store.models import OUTCOMES, DatasetFile, Job, Report, User
 from app.web.deps import CurrentUser, DbSession, SettingsDep, csrf_protect, current_user
+from app.web.pagecache import cached_page
 from app.web.security import attachment_name
 from app.web.templating import render
 
@@ -94,7 +95,8 @@ def dataset_context(db: Session, settings, dataset_id: int, user: User,  # noqa:
 @router.get("/datasets/{dataset_id}")
 def dataset_page(request: Request, dataset_id: int, db: DbSession, user: CurrentUser,
                  settings: SettingsDep):
-    return render(request, "dataset.html", dataset_context(db, settings, dataset_id, user))
+    return cached_page(request, db, lambda: render(
+        request, "dataset.html", dataset_context(db, settings, dataset_id, user)))
 
 
 @router.get("/datasets/{dataset_id}/reports/{report_id}")

@@ -6,11 +6,13 @@ from urllib.parse import urlencode
 
 from fastapi import APIRouter, Depends, Request
 from sqlalchemy import select
+from sqlalchemy.orm import Session
 
 from app.store.models import OUTCOMES, User
 from app.store.registry import SORTS, filter_rows, registry_rows
 from app.web.deps import DbSession, current_user
 from app.web.labels import TRACE_LABELS
+from app.web.pagecache import cached_page
 from app.web.templating import render
 
 #: Rows per registry page: the whole lab's list renders in one page up to this size.
@@ -31,6 +33,12 @@ def home(
     order: str = "desc",
     page: int = 1,
 ):
+    return cached_page(request, db, lambda: _home(request, db, q, decision, trace, uploader,
+                                                  sort, order, page))
+
+
+def _home(request: Request, db: Session, q: str, decision: str, trace: str, uploader: str,
+          sort: str, order: str, page: int):
     all_rows = registry_rows(db)
     rows = filter_rows(all_rows, q=q, decision=decision if decision in (*OUTCOMES, "none") else "",
                        trace=trace, uploader=uploader,

@@ -1,0 +1,60 @@
+"""Rendered pages kept until the database changes.
+
+The registry and a dataset page are the pages a lab group reads most, and
+rendering them costs more than the database reads behind them. A rendered page
+is kept per (server database, path and query, signed-in web session) and used
+until :func:`app.store.registry.change_key` changes: every user-made change
+writes an audit event, and the worker's reports, job states and heartbeats are
+counted directly. The web session in the key carries the member (and their
+CSRF token, which the page's forms embed). Per process, bounded, least
+recently used first out.
+"""
+
+from __future__ import annotations
+
+import threading
+from collections import OrderedDict
+from collections.abc import Callable
+
+from fastapi import Request
+from fastapi.responses import HTMLResponse
+from sqlalchemy.orm import Session
+from starlette.responses import Response
+
+from app.store.registry import change_key
+
+MAX_PAGES = 256
+
+_PAGES: OrderedDict[tuple, bytes] = OrderedDict()
+_LOCK = threading.Lock()
+
+
+def cached_page(request: Request, db: Session, build: Callable[[], Response]) -> Response:
+    """``build()``'s page, or the copy rendered at the same database state.
+
+    Requests signed in by API token (no web session) are always built fresh.
+    """
+    sess = getattr(request.state, "web_session", None)
+    if sess is None:
+        return build()
+    key = (str(db.get_bind().url), request.url.path, request.url.query, sess.id,
+           change_key(db))
+    with _LOCK:
+        body = _PAGES.get(key)
+        if body is not None:
+            _PAGES.move_to_end(key)
+    if body is not None:
+        return HTMLResponse(body)
+    resp = build()
+    if resp.status_code == 200 and (resp.media_type or "").startswith("text/html"):
+        with _LOCK:
+            _PAGES[key] = bytes(resp.body)
+            while len(_PAGES) > MAX_PAGES:
+                _PAGES.popitem(last=False)
+    return resp
+
+
+def clear() -> None:
+    """Forget every kept page (tests)."""
+    with _LOCK:
+        _PAGES.clear()
