@@ -21,6 +21,7 @@ import numpy as np
 
 import app
 from app.io.volume import Volume
+from app.perf import tune_allocator
 from app.traces import base
 from app.traces.context import AnalysisContext, SharedStepBusy, waiting_allowed
 
@@ -342,6 +343,7 @@ def analyse_path(
     app.errors.InputError
         When the input cannot be read (the CLI turns it into exit code 2).
     """
+    tune_allocator()
     from app.io import open_input
     from app.io.dicom import UndecodablePixelsError
 
