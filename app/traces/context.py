@@ -2,8 +2,9 @@
 
 from __future__ import annotations
 
+import contextlib
 import threading
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -90,6 +91,18 @@ class AnalysisContext:
         """
         ok, value = self._cache.get(key, (False, None))
         return value if ok else None
+
+    @contextlib.contextmanager
+    def waiting(self) -> Iterator[None]:
+        """Within this block ``cached`` waits for a step another thread computes
+        (for analysers that have done their own costly work and would lose it if
+        run again later)."""
+        before = getattr(_THREAD, "no_wait", False)
+        _THREAD.no_wait = False
+        try:
+            yield
+        finally:
+            _THREAD.no_wait = before
 
     def note(self, text: str) -> None:
         """Add a sentence to the report's warnings once (thread-safe)."""

@@ -314,8 +314,20 @@ def detect(frames: list[np.ndarray], *, workers: int = 2,
     .. [1] Kirchner, M. Proc. ACM MM&Sec, 11-20, 2008.
     .. [2] Popescu and Farid, IEEE Trans. Signal Processing 53(2):758-767, 2005.
     """
-    ratio = np.maximum(_ratio(frames, KIRCHNER_PREDICTOR, workers),
-                       _ratio(frames, fit_predictor(frames), workers))
+    return find_peaks(spectrum_ratio(frames, workers=workers), len(frames),
+                      exclude_block_grid=exclude_block_grid, explained=explained)
+
+
+def spectrum_ratio(frames: list[np.ndarray], *, workers: int = 2) -> np.ndarray:
+    """The p-map spectrum over its local median, the larger of Kirchner's fixed
+    predictor's and the fitted predictor's (the costly half of :func:`detect`)."""
+    return np.maximum(_ratio(frames, KIRCHNER_PREDICTOR, workers),
+                      _ratio(frames, fit_predictor(frames), workers))
+
+
+def find_peaks(ratio: np.ndarray, n_frames: int, *, exclude_block_grid: bool = False,
+               explained: dict[str, float] | None = None) -> ResamplingResult:
+    """The peaks of :func:`spectrum_ratio` that count as interpolation (see :func:`detect`)."""
     rows, cols = ratio.shape
     fy = (np.arange(rows) - rows // 2) / rows
     fx = (np.arange(cols) - cols // 2) / cols
@@ -340,7 +352,7 @@ def detect(frames: list[np.ndarray], *, workers: int = 2,
         np.abs(np.arange(cols) - cols // 2)[None, :] <= 1)
     # fewer averaged frames leave a heavier noise tail: off-axis threshold from 8 (one
     # frame) down to OFF_AXIS_RATIO (four or more)
-    off = max(OFF_AXIS_RATIO, PEAK_RATIO - (len(frames) - 1))
+    off = max(OFF_AXIS_RATIO, PEAK_RATIO - (n_frames - 1))
     threshold = np.where(on_axis, PEAK_RATIO, off)
     locmax = (r == ndimage.maximum_filter(r, size=3, mode="wrap")) & (r >= threshold)
     # the half-plane f_rows > 0 (plus its edge lines, Nyquist included)
@@ -356,7 +368,7 @@ def detect(frames: list[np.ndarray], *, workers: int = 2,
             axis_freq["cols"] = _refine(r[y], x, cols)
         if abs(x - cols // 2) <= 1 and axis_freq["rows"] is None:
             axis_freq["rows"] = _refine(r[:, x], y, rows)
-    return ResamplingResult(ratio, peak_ratio, peaks, axis_freq, len(frames))
+    return ResamplingResult(ratio, peak_ratio, peaks, axis_freq, n_frames)
 
 
 def _refine(line: np.ndarray, i: int, n: int) -> float:
@@ -456,18 +468,21 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
     if min(frames[0].shape) < 16:
         return Trace(TRACE_ID, "inconclusive", 0.0, "The image is too small to test.",
                      dict(DEFAULT_ESTIMATES), {})
-    # when the JPEG test found 8 x 8 blocks in the pixels (shared with the lossy
-    # analyser), their 1/8-periodic peaks are not counted as interpolation
-    try:
-        jpeg = lossy_compression.jpeg_pixels_of(volume, ctx)
-    except Exception:  # noqa: BLE001 - the lossy analyser reports its own failure
-        jpeg = None
+    ratio = spectrum_ratio(frames, workers=ctx.workers)
+    # the shared findings below are waited for: the costly p-maps are done already
+    with ctx.waiting():
+        # when the JPEG test found 8 x 8 blocks in the pixels (shared with the lossy
+        # analyser), their 1/8-periodic peaks are not counted as interpolation
+        try:
+            jpeg = lossy_compression.jpeg_pixels_of(volume, ctx)
+        except Exception:  # noqa: BLE001 - the lossy analyser reports its own failure
+            jpeg = None
+        # zero-filling k-space by s is interpolation by s (a sinc kernel): its
+        # periodicity is already reported by the zero_filling trace, not counted twice
+        explained = _zero_fill_explained(volume, ctx)
     blocks = bool(jpeg is not None and getattr(jpeg, "status", None) == "present")
-    # zero-filling k-space by s is interpolation by s (a sinc kernel): its periodicity
-    # is already reported by the zero_filling trace, so it is not counted twice
-    explained = _zero_fill_explained(volume, ctx)
-    trace = trace_from(detect(frames, workers=ctx.workers, exclude_block_grid=blocks,
-                              explained=explained))
+    trace = trace_from(find_peaks(ratio, len(frames), exclude_block_grid=blocks,
+                                  explained=explained))
     trace.evidence["block_grid_excluded"] = blocks
     trace.evidence["zero_fill_explained"] = {ax: sp.round_sig(f) for ax, f in explained.items()}
     if blocks:
