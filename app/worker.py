@@ -312,6 +312,9 @@ class Worker:
 
     def run(self, *, max_jobs: int | None = None) -> int:
         """Work until stopped (or after ``max_jobs``); returns the number of jobs finished."""
+        swept = filestore.sweep_tmp(self.settings)
+        if swept:
+            log.info("removed %d upload or job file(s) left in tmp/ by killed processes", swept)
         beat = threading.Thread(target=self._heartbeat_loop, name="heartbeat", daemon=True)
         beat.start()
         finished = 0

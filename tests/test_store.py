@@ -246,3 +246,31 @@ def test_a_cleanly_stopped_worker_hands_its_job_back(settings: Settings) -> None
     with session_scope(settings) as db:
         again = jobq.claim_job(db, "next", lease=600)
         assert (again.id, again.attempts) == (job_id, 2)
+
+
+def test_sweep_removes_only_stale_uploads_and_job_folders(settings: Settings) -> None:
+    """What a killed server or worker leaves in tmp/ (an upload's .part file, a job's
+    work folder) goes once untouched for STALE_TMP_SECONDS; live ones and anything
+    else stay (common practice, no source: age-based cleanup of spool folders)."""
+    import os
+    import time
+
+    tmp = filestore.tmp_dir(settings)
+    old = time.time() - filestore.STALE_TMP_SECONDS - 60
+    stale_part = tmp / "upload-0a.part"
+    live_part = tmp / "upload-0b.part"
+    stale_job = tmp / "job-7-x1"
+    live_job = tmp / "job-8-x2"
+    other = tmp / "notes.txt"
+    for f in (stale_part, live_part, other):
+        f.write_bytes(b"x")
+    for d in (stale_job, live_job):
+        (d / "files").mkdir(parents=True)
+        (d / "files" / "scan.npy").write_bytes(b"y")
+    for path in (stale_part, other, stale_job, stale_job / "files",
+                 stale_job / "files" / "scan.npy", live_job, live_job / "files"):
+        os.utime(path, (old, old))
+    # live_job's progress file was just written: the folder is in use
+    assert filestore.sweep_tmp(settings) == 2
+    assert not stale_part.exists() and not stale_job.exists()
+    assert live_part.exists() and live_job.exists() and other.exists()

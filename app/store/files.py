@@ -52,6 +52,51 @@ def tmp_dir(settings: Settings) -> Path:
     return path
 
 
+#: an upload's ``.part`` file or a job's work folder untouched this long is left over
+#: from a process that was killed (a live upload writes, a live job logs progress)
+STALE_TMP_SECONDS = 6 * 3600
+
+
+def _newest_mtime(path: Path) -> float:
+    newest = path.lstat().st_mtime
+    if path.is_dir() and not path.is_symlink():
+        for child in path.rglob("*"):
+            try:
+                newest = max(newest, child.lstat().st_mtime)
+            except OSError:
+                continue
+    return newest
+
+
+def sweep_tmp(settings: Settings, *, older_than: float = STALE_TMP_SECONDS,
+              now: float | None = None) -> int:
+    """Remove uploads and job folders in ``tmp/`` that a killed process left behind.
+
+    Only ``upload-*.part`` files and ``job-*`` folders whose newest entry is older
+    than ``older_than`` seconds; returns how many were removed.
+    """
+    import time
+
+    now = time.time() if now is None else now
+    removed = 0
+    for entry in tmp_dir(settings).iterdir():
+        is_upload = entry.name.startswith("upload-") and entry.name.endswith(".part")
+        is_job = entry.name.startswith("job-") and entry.is_dir() and not entry.is_symlink()
+        if not (is_upload or is_job):
+            continue
+        try:
+            if now - _newest_mtime(entry) < older_than:
+                continue
+            if is_job:
+                shutil.rmtree(entry)
+            else:
+                entry.unlink()
+            removed += 1
+        except OSError:
+            continue
+    return removed
+
+
 def previews_file(settings: Settings, report_id: int) -> Path:
     """The ``previews.npz`` stored beside report ``report_id`` (it may not exist)."""
     return settings.data_dir / "reports" / str(int(report_id)) / "previews.npz"

@@ -98,6 +98,9 @@ def _run_serve(args: Any) -> int:
     rc = _migrate(settings)
     if rc is not None:
         return rc
+    from app.store import files as filestore
+
+    filestore.sweep_tmp(settings)  # what a killed server or worker left in tmp/
     worker = None
     if not args.no_worker:
         worker = subprocess.Popen([
