@@ -4,9 +4,9 @@ The analysers allocate and free many arrays of one to a few tens of megabytes
 (a slice batch, its spectrum, scratch copies). By default glibc serves each
 such block with a fresh ``mmap`` and returns it on ``free``, so every new array
 is page-faulted and zeroed by the kernel again; on a 32-slice volume that was
-up to a sixth of the analysis time (measured with ``bench/_measure.py``;
-the gain varies from run to run on a shared machine). Raising the mmap and trim thresholds lets the heap keep
-and reuse those blocks; the peak resident memory does not change.
+up to a sixth of the analysis time (measured with ``bench/_measure.py``; the
+gain varies from run to run on a shared machine). Raising the mmap and trim
+thresholds lets the heap keep and reuse those blocks.
 
 Only on Linux with glibc; ``RAWPROOF_MALLOC_TUNING=0`` turns it off, and any
 ``MALLOC_*_`` setting already in the environment is left to glibc.

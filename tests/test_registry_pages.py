@@ -148,3 +148,17 @@ def test_dataset_page_shows_every_change_at_once(tmp_path) -> None:
                                    "csrf_token": t}, follow_redirects=False)
         theirs = set(token.findall(other.get(page).text))
         assert mine and theirs and not (mine & theirs)
+
+
+def test_kept_pages_stay_within_their_byte_budget() -> None:
+    """Least recently used pages go first once MAX_BYTES is reached."""
+    from app.web import pagecache
+
+    pagecache.clear()
+    page = b"x" * (pagecache.MAX_BYTES // 4 + 1)
+    for i in range(10):
+        pagecache._keep(("db", f"/datasets/{i}", "", "s", ()), page)
+        assert pagecache.kept_bytes() <= pagecache.MAX_BYTES
+    assert pagecache.kept_bytes() == 3 * len(page)
+    assert list(pagecache._PAGES)[-1][1] == "/datasets/9"
+    pagecache.clear()

@@ -6,8 +6,8 @@ is kept per (server database, path and query, signed-in web session) and used
 until :func:`app.store.registry.change_key` changes: every user-made change
 writes an audit event, and the worker's reports, job states and heartbeats are
 counted directly. The web session in the key carries the member (and their
-CSRF token, which the page's forms embed). Per process, bounded, least
-recently used first out.
+CSRF token, which the page's forms embed). Per process, at most
+:data:`MAX_BYTES` of pages, least recently used first out.
 """
 
 from __future__ import annotations
@@ -23,10 +23,12 @@ from starlette.responses import Response
 
 from app.store.registry import change_key
 
-MAX_PAGES = 256
+#: kept pages per process, in bytes (a registry page of 100 rows is about 130 kB)
+MAX_BYTES = 16 << 20
 
 _PAGES: OrderedDict[tuple, bytes] = OrderedDict()
 _LOCK = threading.Lock()
+_size = 0
 
 
 def cached_page(request: Request, db: Session, build: Callable[[], Response]) -> Response:
@@ -47,14 +49,33 @@ def cached_page(request: Request, db: Session, build: Callable[[], Response]) ->
         return HTMLResponse(body)
     resp = build()
     if resp.status_code == 200 and (resp.media_type or "").startswith("text/html"):
-        with _LOCK:
-            _PAGES[key] = bytes(resp.body)
-            while len(_PAGES) > MAX_PAGES:
-                _PAGES.popitem(last=False)
+        _keep(key, bytes(resp.body))
     return resp
+
+
+def _keep(key: tuple, body: bytes) -> None:
+    global _size
+    if len(body) > MAX_BYTES:
+        return
+    with _LOCK:
+        old = _PAGES.pop(key, None)
+        _size -= len(old) if old is not None else 0
+        _PAGES[key] = body
+        _size += len(body)
+        while _size > MAX_BYTES:
+            _, dropped = _PAGES.popitem(last=False)
+            _size -= len(dropped)
+
+
+def kept_bytes() -> int:
+    """Bytes of pages kept now."""
+    with _LOCK:
+        return _size
 
 
 def clear() -> None:
     """Forget every kept page (tests)."""
+    global _size
     with _LOCK:
         _PAGES.clear()
+        _size = 0
