@@ -54,9 +54,8 @@ def test_registry_pages_through_every_dataset_once(tmp_path) -> None:
         assert "page 1 of" not in knee
 
 
-def test_registry_shows_every_change_at_once(tmp_path) -> None:
-    """The registry's rows are shared between requests until the database changes:
-    a decision, a finished job and a new dataset each show on the next page load."""
+def _members_and_one_dataset(tmp_path) -> tuple[Settings, int]:
+    """A migrated data folder with members ria (the uploader) and rev, and one dataset."""
     settings = dataclasses.replace(Settings(), data_dir=tmp_path / "data", database_url="")
     migrate.upgrade(settings)
     with session_scope(settings) as db:
@@ -67,6 +66,13 @@ def test_registry_shows_every_change_at_once(tmp_path) -> None:
                                     description="", intended_use="",
                                     files=[("a.bin", b"one")])
         ds_id = ds.id
+    return settings, ds_id
+
+
+def test_registry_shows_every_change_at_once(tmp_path) -> None:
+    """The registry's rows are shared between requests until the database changes:
+    a decision, a finished job and a new dataset each show on the next page load."""
+    settings, ds_id = _members_and_one_dataset(tmp_path)
     with TestClient(create_app(settings)) as client:
         _signed_in(client)
         assert "analysis queued" in client.get("/").text
@@ -105,23 +111,14 @@ def test_serve_with_two_processes_shares_sessions_and_data(tmp_path) -> None:
 
 
 def test_dataset_page_shows_every_change_at_once(tmp_path) -> None:
-    """A dataset page is rendered once per database state and member: a worker's
-    progress (heartbeat), a comment and a decision each show on the next load, and
-    each member's page carries that member's own CSRF token."""
+    """A dataset page is rendered once per database state and member: a claimed job, a
+    worker's progress (heartbeat) and a comment each show on the next load, and each
+    member's page carries that member's own CSRF token."""
     from app.store import jobs as jobq
     from app.web import pagecache
 
     pagecache.clear()
-    settings = dataclasses.replace(Settings(), data_dir=tmp_path / "data", database_url="")
-    migrate.upgrade(settings)
-    with session_scope(settings) as db:
-        ria = service.create_user(db, "ria", "ria-password-1")
-        service.create_user(db, "rev", "rev-password-1")
-        ds = service.create_dataset(db, settings, uploader=ria, name="Set one",
-                                    source="https://archive.example.org", licence="CC0",
-                                    description="", intended_use="",
-                                    files=[("a.bin", b"one")])
-        ds_id = ds.id
+    settings, ds_id = _members_and_one_dataset(tmp_path)
     with TestClient(create_app(settings)) as client, \
             TestClient(create_app(settings)) as other:
         _signed_in(client)
