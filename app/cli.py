@@ -57,7 +57,8 @@ def _add_analyse(p: argparse.ArgumentParser) -> None:
     p.add_argument("--domain", choices=["image", "kspace"], help="override the array domain")
     p.add_argument("--coil-axis", type=int, help="axis of a multi-coil array that holds channels")
     p.add_argument("--dataset", help="HDF5 dataset key")
-    p.add_argument("--workers", type=int, default=2, help="FFT threads (default 2)")
+    p.add_argument("--workers", type=int, default=2,
+                   help="threads for the analysers and their FFTs (default 2)")
     p.add_argument("--max-frames", type=int, help="analyse at most N evenly spaced frames")
     p.add_argument("--quiet", action="store_true", help="no progress on stderr")
 

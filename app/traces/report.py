@@ -188,7 +188,8 @@ def analyse_volume(
     path, fmt, n_files
         What the ``input`` section says; defaults from the Volume.
     workers : int
-        ``scipy.fft`` workers for the shared spectral step.
+        Threads the analysers run on, and ``scipy.fft`` workers for the shared
+        spectral step (1: one analyser after the other).
     max_frames : int, optional
         Analyse at most this many frames (evenly spaced); stated in ``warnings``.
     options : dict, optional
