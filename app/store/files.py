@@ -12,6 +12,7 @@ import hashlib
 import os
 import re
 import shutil
+import time
 import unicodedata
 import uuid
 from dataclasses import dataclass
@@ -75,8 +76,6 @@ def sweep_tmp(settings: Settings, *, older_than: float = STALE_TMP_SECONDS,
     Only ``upload-*.part`` files and ``job-*`` folders whose newest entry is older
     than ``older_than`` seconds; returns how many were removed.
     """
-    import time
-
     now = time.time() if now is None else now
     removed = 0
     for entry in tmp_dir(settings).iterdir():

@@ -38,6 +38,7 @@ import scipy.fft as sfft
 from scipy import ndimage
 
 from app.io.volume import Volume
+from app.traces.context import evenly_spaced
 
 MAX_FRAMES = 16
 #: at most this share of the frames (but at least MIN_FRAMES) is examined
@@ -252,16 +253,6 @@ def _far_half(mask: np.ndarray) -> np.ndarray:
     return mask & (d >= cut)
 
 
-def _percentile(values: np.ndarray, q: float) -> float:
-    """``numpy.percentile(values, q)`` (linear interpolation) from one partition."""
-    n = values.size
-    pos = q / 100.0 * (n - 1)
-    lo = int(np.floor(pos))
-    hi = min(lo + 1, n - 1)
-    part = np.partition(values, [lo, hi]) if hi > lo else np.partition(values, lo)
-    return float(part[lo] + (pos - lo) * (part[hi] - part[lo]))
-
-
 def _corner_mask(shape: tuple[int, int]) -> np.ndarray:
     rows, cols = shape
     h, w = max(4, rows // 8), max(4, cols // 8)
@@ -366,11 +357,7 @@ def _frame_background_reduced(m: np.ndarray, factor: int) -> tuple[np.ndarray, s
 def analysed_frames(n_frames: int, base: np.ndarray | None = None,
                     max_frames: int = MAX_FRAMES) -> np.ndarray:
     """At most ``max_frames`` evenly spaced frame indices (from ``base`` if given)."""
-    idx = np.arange(n_frames) if base is None else np.asarray(base, dtype=int)
-    if idx.size <= max_frames:
-        return idx
-    pick = np.unique(np.linspace(0, idx.size - 1, max_frames).round().astype(int))
-    return idx[pick]
+    return evenly_spaced(np.arange(n_frames) if base is None else base, max_frames)
 
 
 def kspace_is_centred(block: np.ndarray) -> bool:
@@ -494,7 +481,7 @@ def find_background(volume: Volume, *, frames: Any = None,
             a.n_px += m.size
             a.n_nan += 0 if all_fin else int((~fin).sum())
             if m_fin.size:
-                a.peaks.append(_percentile(m_fin, 99.5))
+                a.peaks.append(float(np.percentile(m_fin, 99.5)))
                 obj = m[~mask] if all_fin else m[fin & ~mask]
                 above = obj[obj >= t]
                 a.obj_levels.append(float(np.median(above)) if above.size else

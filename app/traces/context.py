@@ -8,7 +8,21 @@ from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from typing import Any
 
+import numpy as np
+
 from app.io.volume import Volume
+
+
+def evenly_spaced(indices: Any, k: int) -> np.ndarray:
+    """At most ``k`` evenly spaced entries of ``indices`` (the first and last included).
+
+    Every stated frame subset (the context's, the background's, the JPEG and
+    resampling tests', the previews) is chosen by this rule.
+    """
+    idx = np.asarray(indices, dtype=int)
+    if idx.size <= k:
+        return idx
+    return idx[np.unique(np.linspace(0, idx.size - 1, k).round().astype(int))]
 
 
 class SharedStepBusy(BaseException):
@@ -84,14 +98,6 @@ class AnalysisContext:
             raise value
         return value
 
-    def peek(self, key: str) -> Any:
-        """A value another analyser already computed under ``key``, or None.
-
-        For optional cross-checks that must not trigger the work themselves.
-        """
-        ok, value = self._cache.get(key, (False, None))
-        return value if ok else None
-
     @contextlib.contextmanager
     def waiting(self) -> Iterator[None]:
         """Within this block ``cached`` waits for a step another thread computes
@@ -112,11 +118,9 @@ class AnalysisContext:
 
     def frame_indices(self) -> Any:
         """Flat frame indices to analyse (all, or an evenly spaced stated subset)."""
-        import numpy as np
-
         n = self.volume.n_slices
         if self.max_frames is None or n <= self.max_frames:
             return np.arange(n)
-        idx = np.unique(np.linspace(0, n - 1, self.max_frames).round().astype(int))
+        idx = evenly_spaced(np.arange(n), self.max_frames)
         self.note(f"analysed {len(idx)} of {n} frames, evenly spaced")
         return idx

@@ -130,22 +130,17 @@ def level_stats(values: np.ndarray) -> LevelStats:
         return LevelStats(np.zeros(0), np.zeros(0, int), None, 0)
     if v.dtype.kind in "iub":
         lo, hi = int(v.min()), int(v.max())
-        if 0 <= lo and hi < 1 << 24 and v.dtype.itemsize <= 4:
-            # counted in chunks: no widened copy of the whole sample
-            if v.dtype.kind == "b":
-                v = v.view(np.uint8)
-            c = np.zeros(hi + 1, dtype=np.int64)
-            for i in range(0, v.size, _COUNT_CHUNK):
-                c += np.bincount(v[i:i + _COUNT_CHUNK], minlength=hi + 1)
-            c = c[lo:]
-            nz = np.flatnonzero(c)
-            return LevelStats(nz + lo, c[nz], 1.0, int(v.size))
-        v = v.astype(np.int64)
         if hi - lo < 1 << 24:
-            c = np.bincount(v - lo)
+            # counted in chunks: no widened copy of the whole sample
+            c = np.zeros(hi - lo + 1, dtype=np.int64)
+            for i in range(0, v.size, _COUNT_CHUNK):
+                part = v[i:i + _COUNT_CHUNK].astype(np.int64)
+                if lo:
+                    part -= lo
+                c += np.bincount(part, minlength=hi - lo + 1)
             nz = np.flatnonzero(c)
             return LevelStats(nz + lo, c[nz], 1.0, int(v.size))
-        lv, ct = np.unique(v, return_counts=True)
+        lv, ct = np.unique(v.astype(np.int64), return_counts=True)
         return LevelStats(lv, ct, 1.0, int(v.size))
     lv, ct = np.unique(v, return_counts=True)
     return LevelStats(lv, ct, lattice_step(lv), int(v.size))

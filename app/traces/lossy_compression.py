@@ -28,7 +28,7 @@ import numpy as np
 from app.io.volume import Volume
 from app.traces import jpeg_grid
 from app.traces.base import Trace, register
-from app.traces.context import AnalysisContext
+from app.traces.context import AnalysisContext, evenly_spaced
 from app.traces.jpeg_tables import match_quality, scaled_table
 
 TRACE_ID = "lossy_compression"
@@ -188,7 +188,7 @@ def trimmed_match(table: np.ndarray, *, baseline: bool = True) -> tuple[int, flo
 def _frames(volume: Volume, ctx: AnalysisContext) -> np.ndarray:
     idx = np.asarray(ctx.frame_indices(), dtype=int)
     if len(idx) > MAX_FRAMES:
-        idx = idx[np.unique(np.linspace(0, len(idx) - 1, MAX_FRAMES).round().astype(int))]
+        idx = evenly_spaced(idx, MAX_FRAMES)
         note = (f"lossy_compression: block-DCT statistics from {len(idx)} of "
                 f"{volume.n_slices} frames, evenly spaced")
         ctx.note(note)

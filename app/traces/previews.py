@@ -13,6 +13,7 @@ import numpy as np
 import scipy.fft as sfft
 
 from app.io.volume import Volume
+from app.traces.context import evenly_spaced
 
 MAX_FRAMES = 12
 MAX_SIDE = 256
@@ -20,11 +21,7 @@ MAX_SIDE = 256
 
 def preview_indices(n_frames: int, max_frames: int = MAX_FRAMES) -> np.ndarray:
     """Evenly spaced flat frame indices, at most ``max_frames`` of them, first and last included."""
-    if n_frames <= 0:
-        return np.zeros(0, dtype=int)
-    if n_frames <= max_frames:
-        return np.arange(n_frames)
-    return np.unique(np.linspace(0, n_frames - 1, max_frames).round().astype(int))
+    return evenly_spaced(np.arange(max(0, n_frames)), max_frames)
 
 
 def _block_mean(a: np.ndarray, max_side: int) -> np.ndarray:

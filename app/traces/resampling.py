@@ -70,6 +70,7 @@ from app.io.volume import Volume
 from app.traces import lossy_compression
 from app.traces import spectrum as sp
 from app.traces.base import Trace, inconclusive, register
+from app.traces.context import evenly_spaced
 
 TRACE_ID = "resampling"
 #: Kirchner's fixed linear predictor (MM&Sec 2008, section 4), the fallback
@@ -171,19 +172,6 @@ def _pad_kernel(kernel: np.ndarray, radius: int) -> np.ndarray:
     return np.pad(kernel, pad) if pad > 0 else kernel
 
 
-def _median_inplace(values: np.ndarray) -> float:
-    """``numpy.median`` of a 1D scratch array, partitioned in place."""
-    n = values.size
-    if n == 0:
-        return float("nan")
-    k = n // 2
-    if n % 2:
-        values.partition(k)
-        return float(values[k])
-    values.partition([k - 1, k])
-    return float(0.5 * (values[k - 1] + values[k]))
-
-
 def pmap(image: np.ndarray, predictor: np.ndarray | None = None) -> np.ndarray:
     """Kirchner's p-map of one image (NaN-safe): near 1 where the predictor is exact.
 
@@ -203,7 +191,7 @@ def pmap(image: np.ndarray, predictor: np.ndarray | None = None) -> np.ndarray:
     if finite.all():  # the common case: no masking of the residual needed
         e = x - ndimage.correlate(x, kernel, mode="reflect")
         ae = np.abs(e).ravel()
-        scale = _median_inplace(ae)
+        scale = float(np.median(ae, overwrite_input=True))  # ae is scratch
         if not np.isfinite(scale) or scale <= 0:
             nz = ae[ae != 0]
             scale = float(np.median(nz)) if nz.size else 1.0
@@ -230,7 +218,7 @@ def _frames(volume: Volume, ctx: Any) -> tuple[list[np.ndarray], list[str]]:
     # one frame in eight, at least MIN_FRAMES, at most MAX_FRAMES
     keep = min(MAX_FRAMES, max(MIN_FRAMES, int(np.ceil(len(idx) / 8))))
     if len(idx) > keep:
-        idx = idx[np.unique(np.linspace(0, len(idx) - 1, keep).round().astype(int))]
+        idx = evenly_spaced(idx, keep)
         notes.append(f"resampling analysed {len(idx)} of {volume.n_slices} frames, evenly spaced")
     frames = []
     for _, block in volume.iter_slices(ctx.batch, indices=idx):
