@@ -24,11 +24,9 @@ of them equal to libjpeg's table, and the false detections on uncompressed image
 from __future__ import annotations
 
 import argparse
-import io
 import time
 
 import numpy as np
-from PIL import Image
 from scipy import ndimage
 
 from app.io.volume import Volume
@@ -36,6 +34,9 @@ from app.traces.context import AnalysisContext
 from app.traces.jpeg_tables import scaled_table
 from app.traces.lossy_compression import analyse_lossy_compression
 from demo_data import synth
+from demo_data.synth import jpeg2000_round_trip as _jpeg2000
+from demo_data.synth import jpeg_round_trip as _jpeg
+from demo_data.synth import png_round_trip as _png
 
 QUALITIES = list(range(10, 96, 5))
 J2K_RATES = [10, 20]
@@ -55,26 +56,7 @@ def _to8(img: np.ndarray, rng: np.random.Generator) -> np.ndarray:
     return np.clip(np.round(img / img.max() * peak), 0, 255).astype(np.uint8)
 
 
-def _jpeg(img8: np.ndarray, quality: int) -> np.ndarray:
-    buf = io.BytesIO()
-    Image.fromarray(img8, "L").save(buf, "JPEG", quality=quality)
-    buf.seek(0)
-    return np.asarray(Image.open(buf))
 
-
-def _png(img8: np.ndarray) -> np.ndarray:
-    buf = io.BytesIO()
-    Image.fromarray(img8, "L").save(buf, "PNG")
-    buf.seek(0)
-    return np.asarray(Image.open(buf))
-
-
-def _jpeg2000(img8: np.ndarray, rate: int) -> np.ndarray:
-    buf = io.BytesIO()
-    Image.fromarray(img8, "L").save(buf, "JPEG2000", quality_mode="rates",
-                                    quality_layers=[rate], irreversible=True)
-    buf.seek(0)
-    return np.asarray(Image.open(buf))
 
 
 def _analyse(arr: np.ndarray) -> dict:

@@ -181,3 +181,31 @@ def zero_filled_magnitude(
     k = to_kspace(imgs)
     zf = to_image(zero_fill(k, out_shape))
     return rss(zf, axis=1), out_shape
+
+
+def _pillow_round_trip(img8: np.ndarray, fmt: str, **save: object) -> np.ndarray:
+    import io
+
+    from PIL import Image
+
+    buf = io.BytesIO()
+    Image.fromarray(np.ascontiguousarray(img8), "L").save(buf, fmt, **save)
+    buf.seek(0)
+    return np.asarray(Image.open(buf))
+
+
+def jpeg_round_trip(img8: np.ndarray, quality: int) -> np.ndarray:
+    """A uint8 greyscale image saved as baseline JPEG by Pillow (libjpeg) and decoded."""
+    return _pillow_round_trip(img8, "JPEG", quality=quality)
+
+
+def png_round_trip(img8: np.ndarray) -> np.ndarray:
+    """A uint8 greyscale image saved as PNG by Pillow and decoded (lossless)."""
+    return _pillow_round_trip(img8, "PNG")
+
+
+def jpeg2000_round_trip(img8: np.ndarray, rate: int) -> np.ndarray:
+    """A uint8 greyscale image saved as irreversible JPEG 2000 at ``rate``:1 by Pillow
+    (OpenJPEG) and decoded."""
+    return _pillow_round_trip(img8, "JPEG2000", quality_mode="rates", quality_layers=[rate],
+                              irreversible=True)

@@ -15,27 +15,20 @@ simulated acquisition, scaled to 8 bits); each test states the truth it built.
 
 from __future__ import annotations
 
-import io
-
 import numpy as np
 import pytest
-from PIL import Image
 
 from app.traces import jpeg_grid
 from app.traces.jpeg_tables import scaled_table
 from demo_data import synth
+from demo_data.synth import jpeg2000_round_trip as _jpeg2000
+from demo_data.synth import jpeg_round_trip as _jpeg
 
 
 def _mr8(seed: int, shape: tuple[int, int] = (192, 192), coils: int = 4) -> np.ndarray:
     m = synth.rss(synth.acquire(shape, n_coils=coils, sigma=0.01, seed=seed), axis=1)[0]
     return np.clip(np.round(m / m.max() * 250), 0, 255).astype(np.uint8)
 
-
-def _jpeg(img: np.ndarray, quality: int) -> np.ndarray:
-    buf = io.BytesIO()
-    Image.fromarray(img, "L").save(buf, "JPEG", quality=quality)
-    buf.seek(0)
-    return np.asarray(Image.open(buf))
 
 
 def test_block_dct_is_t81_fdct() -> None:
@@ -191,13 +184,6 @@ def test_dwt97_vanishing_moments() -> None:
     for band in (lh, hl, hh):
         assert np.abs(band[4:-4, 4:-4]).max() < 1e-6 * scale
 
-
-def _jpeg2000(img: np.ndarray, rate: int) -> np.ndarray:
-    buf = io.BytesIO()
-    Image.fromarray(img, "L").save(buf, "JPEG2000", quality_mode="rates",
-                                   quality_layers=[rate], irreversible=True)
-    buf.seek(0)
-    return np.asarray(Image.open(buf))
 
 
 def test_wavelet_deadzone_of_pillow_jpeg2000() -> None:

@@ -36,6 +36,8 @@ from app.traces.jpeg_tables import match_quality, natural_from_zigzag, scaled_ta
 from app.traces.lossy_compression import analyse_lossy_compression
 from app.traces.report import analyse_volume
 from demo_data import synth
+from demo_data.synth import jpeg_round_trip as _jpeg
+from demo_data.synth import png_round_trip as _png
 
 JPEG_EXTENDED = "1.2.840.10008.1.2.4.51"
 JPEG_2000 = "1.2.840.10008.1.2.4.91"
@@ -51,18 +53,6 @@ def _to8(a: np.ndarray) -> np.ndarray:
     return np.round((a - a.min()) / (a.max() - a.min()) * 255).astype(np.uint8)
 
 
-def _jpeg(img8: np.ndarray, quality: int) -> np.ndarray:
-    buf = io.BytesIO()
-    Image.fromarray(img8, "L").save(buf, "JPEG", quality=quality)
-    buf.seek(0)
-    return np.asarray(Image.open(buf))
-
-
-def _png(img8: np.ndarray) -> np.ndarray:
-    buf = io.BytesIO()
-    Image.fromarray(np.ascontiguousarray(img8), "L").save(buf, "PNG")
-    buf.seek(0)
-    return np.asarray(Image.open(buf))
 
 
 def _trace(arr: np.ndarray | Volume, **options) -> dict:

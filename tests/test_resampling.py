@@ -157,15 +157,6 @@ def test_bounded_subset_is_stated():
     assert any("resampling analysed 4 of 16 frames" in n for n in ctx.notes)
 
 
-def _jpeg_round_trip(img8: np.ndarray, quality: int) -> np.ndarray:
-    import io
-
-    from PIL import Image
-
-    buf = io.BytesIO()
-    Image.fromarray(img8).save(buf, "JPEG", quality=quality)
-    return np.asarray(Image.open(io.BytesIO(buf.getvalue())))
-
 
 def test_jpeg_block_peaks_are_not_called_resampling():
     """Pillow's JPEG encoder (libjpeg) at quality 50 on an unresampled phantom: the
@@ -182,7 +173,7 @@ def test_jpeg_block_peaks_are_not_called_resampling():
     rng = np.random.default_rng(11)
     mag = np.abs(synth.acquire((256, 256), n_coils=1, n_slices=2, sigma=0.01, seed=rng))[:, 0]
     img8 = [np.clip(m / m.max() * 255, 0, 255).astype(np.uint8) for m in mag]
-    plain = np.stack([_jpeg_round_trip(i, 50) for i in img8])
+    plain = np.stack([synth.jpeg_round_trip(i, 50) for i in img8])
     rep = analyse_volume(Volume.from_array(plain))
     assert rep["traces"]["lossy_compression"]["status"] == "present"
     assert rep["traces"]["resampling"]["status"] == "absent", rep["traces"]["resampling"]
