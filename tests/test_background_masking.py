@@ -17,8 +17,6 @@ Sources:
 
 from __future__ import annotations
 
-import os
-
 import numpy as np
 import pytest
 from scipy import ndimage
@@ -124,15 +122,9 @@ def test_kspace_is_judged_by_its_images() -> None:
     assert t.evidence["constant_value"] == pytest.approx(0.0, abs=1e-4)
 
 
-def test_nibabel_example4d_is_masked() -> None:
+def test_nibabel_example4d_is_masked(example4d_frames) -> None:
     """example4d.nii.gz (nibabel test data): zeros outside the head, present."""
-    nib = pytest.importorskip("nibabel")
-    img = nib.load(os.path.join(os.path.dirname(nib.__file__), "tests", "data",
-                                "example4d.nii.gz"))
-    a = np.asanyarray(img.dataobj)
-    frames = np.ascontiguousarray(np.moveaxis(a, [3, 2], [0, 1]).reshape(-1, a.shape[0],
-                                                                        a.shape[1]))
-    t = _run(frames)
+    t = _run(example4d_frames)
     assert t.status == "present"
     assert t.evidence["constant_value"] == 0.0
     assert t.estimates["zero_background_fraction"] > 0.95

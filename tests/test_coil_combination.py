@@ -17,8 +17,6 @@ Sources:
 
 from __future__ import annotations
 
-import os
-
 import numpy as np
 import pytest
 
@@ -192,15 +190,9 @@ def test_pydicom_emri_small_is_not_called() -> None:
     assert t.status == "inconclusive"
 
 
-def test_nibabel_example4d_masked_is_inconclusive() -> None:
+def test_nibabel_example4d_masked_is_inconclusive(example4d_frames) -> None:
     """example4d.nii.gz (nibabel test data, FSL): 61% exact zeros outside the head."""
-    nib = pytest.importorskip("nibabel")
-    img = nib.load(os.path.join(os.path.dirname(nib.__file__), "tests", "data",
-                                "example4d.nii.gz"))
-    a = np.asanyarray(img.dataobj)
-    frames = np.ascontiguousarray(np.moveaxis(a, [3, 2], [0, 1]).reshape(-1, a.shape[0],
-                                                                        a.shape[1]))
-    t = _run(frames)
+    t = _run(example4d_frames)
     assert t.status == "inconclusive"
     assert "one value 0" in t.summary
 
