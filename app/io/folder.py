@@ -14,6 +14,7 @@ from pathlib import Path
 from app.errors import InputError
 from app.io.formats import family_of
 from app.io.options import ReadOptions, one_line
+from app.io.readers import read_file_family
 from app.io.volume import Volume
 
 
@@ -62,8 +63,6 @@ def read_folder(folder: Path, opts: ReadOptions) -> tuple[list[Volume], int]:
         ``empty`` (no files), ``no_readable_files`` (nothing rawproof reads),
         or the first group's error when no group could be read.
     """
-    from app.io import read_file_family
-
     files = list_files(folder, opts)
     if not files:
         raise InputError("empty", f"The folder {folder.name} is empty.", str(folder))

@@ -6,7 +6,8 @@ the stored tables are known even when the pixels cannot be decoded.
 References
 ----------
 ITU-T Recommendation T.81 (1992) | ISO/IEC 10918-1, Annex B (B.1.1.2 markers,
-B.2.2 frame header, B.2.4.1 quantisation table specification).
+B.2.2 frame header, B.2.4.1 quantisation table specification), Annex A
+(Figure A.6, the zig-zag sequence of the 64 coefficients).
 """
 
 from __future__ import annotations
@@ -15,7 +16,17 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from app.traces.jpeg_tables import natural_from_zigzag
+#: Zig-zag scan order: ZIGZAG[k] is the natural (row-major) index of the k-th
+#: coefficient in a JPEG stream's DQT segment (T.81, Figure A.6).
+ZIGZAG = np.array(
+    [
+        0, 1, 8, 16, 9, 2, 3, 10, 17, 24, 32, 25, 18, 11, 4, 5,
+        12, 19, 26, 33, 40, 48, 41, 34, 27, 20, 13, 6, 7, 14, 21, 28,
+        35, 42, 49, 56, 57, 50, 43, 36, 29, 22, 15, 23, 30, 37, 44, 51,
+        58, 59, 52, 45, 38, 31, 39, 46, 53, 60, 61, 54, 47, 55, 62, 63,
+    ],
+    dtype=np.int32,
+)
 
 #: Start-of-frame markers (T.81 Table B.1) and the process each names.
 SOF_PROCESS = {
@@ -74,6 +85,28 @@ class JpegMarkers:
             if tq in self.tables:
                 return self.tables[tq]
         return self.tables.get(0) if self.tables else None
+
+
+def natural_from_zigzag(values: list[int] | np.ndarray) -> np.ndarray:
+    """Reorder a 64-entry table from zig-zag (stream) order to natural 8 x 8.
+
+    Parameters
+    ----------
+    values : sequence of 64 int
+        Table entries in the order a DQT segment stores them.
+
+    Returns
+    -------
+    ndarray of int32, shape (8, 8)
+
+    References
+    ----------
+    ITU-T T.81, Figure A.6 (zig-zag sequence).
+    """
+    v = np.asarray(values, dtype=np.int32).reshape(64)
+    out = np.empty(64, dtype=np.int32)
+    out[ZIGZAG] = v
+    return out.reshape(8, 8)
 
 
 def parse_jpeg_markers(stream: bytes) -> JpegMarkers:

@@ -22,11 +22,11 @@ from typing import Any
 import numpy as np
 
 from app.errors import InputError
+from app.io.formats import RASTER_SUFFIXES
 from app.io.options import ReadOptions, check_array_bytes, one_line
 from app.io.volume import Header, Volume
 
-RASTER_SUFFIXES = {".png": "png", ".jpg": "jpeg", ".jpeg": "jpeg", ".tif": "tiff",
-                   ".tiff": "tiff"}
+__all__ = ["RASTER_SUFFIXES", "natural_key", "read_raster"]
 _COLOUR = {"RGB", "RGBA", "P", "PA", "CMYK", "YCbCr", "LAB", "HSV", "RGBX", "LA", "La"}
 
 
