@@ -529,7 +529,8 @@ def main(argv: list[str] | None = None) -> int:
             out["sets"][name] = {"skipped": cases}
             continue
         ts = time.perf_counter()
-        rows = run_cases(cases, processes=args.processes, timeout=args.timeout)
+        rows = run_cases(cases, processes=args.processes, timeout=args.timeout,
+                         progress=sys.stderr.isatty())
         scores = score_set(rows)
         print()
         print(format_set(name, scores))
