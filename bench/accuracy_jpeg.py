@@ -30,9 +30,8 @@ import numpy as np
 from scipy import ndimage
 
 from app.io.volume import Volume
-from app.traces.context import AnalysisContext
 from app.traces.jpeg_tables import scaled_table
-from app.traces.lossy_compression import analyse_lossy_compression
+from app.traces.plan import trace_of
 from demo_data import synth
 from demo_data.synth import jpeg2000_round_trip as _jpeg2000
 from demo_data.synth import jpeg_round_trip as _jpeg
@@ -61,7 +60,7 @@ def _to8(img: np.ndarray, rng: np.random.Generator) -> np.ndarray:
 
 def _analyse(arr: np.ndarray) -> dict:
     vol = Volume.from_array(arr)
-    return analyse_lossy_compression(vol, AnalysisContext(vol, workers=1)).to_dict()
+    return trace_of("lossy_compression", vol, workers=1).to_dict()
 
 
 def _entries_ok(table: list | None, quality: int) -> tuple[int, int]:

@@ -27,7 +27,7 @@ from scipy import ndimage
 
 from app.io.volume import Header, Volume
 from app.traces import background_masking, coil_combination, intensity_quantization, magnitude_only
-from app.traces.context import AnalysisContext
+from app.traces.plan import execute
 from demo_data import synth
 
 TRACES = {
@@ -486,8 +486,7 @@ KINDS: list[Callable[[np.random.Generator], Case]] = [
 
 def run_case(case: Case) -> dict[str, Any]:
     """Run the four analysers on one case with a fresh context."""
-    ctx = AnalysisContext(case.volume)
-    return {tid: fn(case.volume, ctx) for tid, fn in TRACES.items()}
+    return execute(case.volume, only=list(TRACES)).traces
 
 
 def confusion_table(rows: list[tuple[str, str]]) -> str:

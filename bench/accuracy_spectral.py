@@ -45,6 +45,7 @@ from app.traces import kspace_filtering as kf
 from app.traces import partial_fourier as pf
 from app.traces import resampling as rs
 from app.traces import spectrum as sp
+from app.traces import support as support_mod
 from app.traces import zero_filling as zf
 from demo_data import synth
 
@@ -102,8 +103,9 @@ def _volume(images: np.ndarray, complex_out: bool) -> Volume:
 
 def _analyse(vol: Volume) -> dict[str, Any]:
     spec = sp.compute_spectrum(vol)
-    return {"spec": spec, "zf": zf.trace_from(spec), "kf": kf.trace_from(spec),
-            "pf": pf.trace_from(spec)}
+    support = support_mod.detect(spec)
+    return {"spec": spec, "zf": zf.trace_from(spec, support),
+            "kf": kf.trace_from(spec, support), "pf": pf.trace_from(spec, support)}
 
 
 def _frames(vol: Volume) -> list[np.ndarray]:

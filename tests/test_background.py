@@ -24,7 +24,7 @@ from scipy import ndimage
 
 from app.io.volume import Volume
 from app.traces import background as bgmod
-from app.traces.context import AnalysisContext
+from app.traces.plan import execute
 from demo_data import synth
 
 
@@ -124,13 +124,12 @@ def test_bounded_frames_and_stated_subset() -> None:
     """40 frames: the background is looked for in 10 evenly spaced ones, and the note says so."""
     img = synth.rss(synth.acquire((48, 48), n_coils=2, n_slices=40, sigma=0.01, seed=1), axis=1)
     vol = Volume.from_array(img)
-    ctx = AnalysisContext(vol)
-    bg = bgmod.background_of(vol, ctx)
+    res = execute(vol, only=[], extra_steps=["background"])
+    bg = res.steps["background"]
     # a quarter of the 40 frames (above the minimum of 8, below the cap of 16)
     assert bg.frames.size == 10
     assert bg.frames[0] == 0 and bg.frames[-1] == 39
-    assert any("10 of 40 frames" in n for n in ctx.notes)
-    assert bgmod.background_of(vol, ctx) is bg
+    assert any("10 of 40 frames" in n for n in res.notes)
 
 
 def test_kspace_background_is_found_on_its_images() -> None:
@@ -188,18 +187,18 @@ def test_blank_frames_are_left_out() -> None:
     Truth: the noisy frames' air is central chi with 2L = 8 (Constantinides 1997);
     zeros from blank frames would otherwise drag the moment estimate of L.
     """
-    from app.traces import background_masking, coil_combination
 
     img = synth.rss(synth.acquire((96, 96), n_coils=4, n_slices=6, sigma=0.01, seed=4), axis=1)
     stack = np.concatenate([np.zeros((3, 96, 96), np.float32), img])
     vol = Volume.from_array(stack)
-    ctx = AnalysisContext(vol)
-    bg = bgmod.background_of(vol, ctx)
-    assert any("3 blank frame(s)" in n for n in ctx.notes)
+    res = execute(vol, only=["coil_combination", "background_masking"],
+                  extra_steps=["background"])
+    bg = res.steps["background"]
+    assert any("3 blank frame(s)" in n for n in res.notes)
     assert not bg.masks[:3].any()
-    cc = coil_combination.analyse(vol, ctx)
+    cc = res.traces["coil_combination"]
     assert cc.status == "present" and abs(cc.estimates["effective_channels"] - 4) <= 1.0
-    assert background_masking.analyse(vol, ctx).status == "absent"
+    assert res.traces["background_masking"].status == "absent"
 
 
 def test_zero_band_outside_field_of_view_is_set_aside() -> None:
@@ -209,14 +208,14 @@ def test_zero_band_outside_field_of_view_is_set_aside() -> None:
     within 1 from the air that remains (Constantinides 1997), and the zero band
     is not taken for a masked background.
     """
-    from app.traces import background_masking, coil_combination
 
     img = synth.rss(synth.acquire((128, 128), n_coils=4, n_slices=2, sigma=0.01, seed=14), axis=1)
     img[:, :12, :] = 0
     vol = Volume.from_array(img)
-    ctx = AnalysisContext(vol)
-    bg = bgmod.background_of(vol, ctx)
+    res = execute(vol, only=["coil_combination", "background_masking"],
+                  extra_steps=["background"])
+    bg = res.steps["background"]
     assert bg.usable and not bg.masks[:, :12, :].any()
-    cc = coil_combination.analyse(vol, ctx)
+    cc = res.traces["coil_combination"]
     assert cc.status == "present" and abs(cc.estimates["effective_channels"] - 4) <= 1.0
-    assert background_masking.analyse(vol, ctx).status == "absent"
+    assert res.traces["background_masking"].status == "absent"

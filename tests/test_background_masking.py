@@ -23,13 +23,13 @@ from scipy import ndimage
 
 from app.io.volume import Header, Volume
 from app.traces import background_masking as bm
-from app.traces.context import AnalysisContext
+from app.traces.plan import execute, trace_of
 from demo_data import synth
 
 
 def _run(arr: np.ndarray, **kw) -> bm.Trace:
     vol = Volume.from_array(arr, **kw)
-    return bm.analyse(vol, AnalysisContext(vol))
+    return trace_of("background_masking", vol)
 
 
 def _rss(seed: int, n_coils: int = 4, sigma: float = 0.01) -> np.ndarray:
@@ -164,7 +164,6 @@ def test_jpeg_flattened_air_is_not_called_a_mask() -> None:
 
     from PIL import Image
 
-    from app.traces import coil_combination
 
     mag = synth.rss(synth.acquire((192, 192), n_coils=4, n_slices=2, sigma=0.01, seed=3), axis=1)
     u = np.round(mag / mag.max() * 255).astype(np.uint8)
@@ -174,8 +173,8 @@ def test_jpeg_flattened_air_is_not_called_a_mask() -> None:
         Image.fromarray(f).save(buf, format="JPEG", quality=50)
         frames.append(np.asarray(Image.open(buf)))
     vol = Volume.from_array(np.stack(frames))
-    ctx = AnalysisContext(vol)
-    t = bm.analyse(vol, ctx)
+    res = execute(vol, only=["background_masking", "coil_combination"])
+    t = res.traces["background_masking"]
     assert t.status == "inconclusive"
     assert t.estimates["zero_background_fraction"] > 0.9
-    assert coil_combination.analyse(vol, ctx).status == "inconclusive"
+    assert res.traces["coil_combination"].status == "inconclusive"

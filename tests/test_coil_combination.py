@@ -22,13 +22,13 @@ import pytest
 
 from app.io.volume import Header, Volume
 from app.traces import coil_combination as cc
-from app.traces.context import AnalysisContext
+from app.traces.plan import trace_of
 from demo_data import synth
 
 
 def _run(arr: np.ndarray, **kw) -> cc.Trace:
     vol = Volume.from_array(arr, **kw)
-    return cc.analyse(vol, AnalysisContext(vol))
+    return trace_of("coil_combination", vol)
 
 
 @pytest.mark.parametrize("L", [1, 4, 8, 12, 16])

@@ -23,7 +23,7 @@ import pytest
 
 from app.io.volume import Header, Volume
 from app.traces import intensity_quantization as iq
-from app.traces.context import AnalysisContext
+from app.traces.plan import trace_of
 from demo_data import synth
 
 
@@ -35,7 +35,7 @@ def _rss(seed: int, sigma: float = 0.01, slices: int = 2) -> np.ndarray:
 def _run(arr: np.ndarray, bits: int | None = None, **kw) -> iq.Trace:
     header = Header(fields={"bits_stored": bits} if bits else {})
     vol = Volume.from_array(arr, header=header, **kw)
-    return iq.analyse(vol, AnalysisContext(vol))
+    return trace_of("intensity_quantization", vol)
 
 
 def test_raw_12_bit_is_absent() -> None:
@@ -168,7 +168,7 @@ def test_kspace_made_from_8_bit_images_shows_256_levels() -> None:
     u = np.round(mag / mag.max() * 255)
     k = synth.to_kspace(u.astype(np.complex64)).astype(np.complex64)
     vol = Volume.from_array(k, domain="kspace")
-    t = iq.analyse(vol, AnalysisContext(vol))
+    t = trace_of("intensity_quantization", vol)
     assert t.status == "present"
     assert t.estimates["distinct_levels"] == len(np.unique(u))
     assert t.evidence["lattice_step"] == pytest.approx(1.0, rel=1e-3)
@@ -178,7 +178,7 @@ def test_measured_kspace_is_continuous() -> None:
     """Measured complex k-space: no lattice, absent."""
     k = synth.to_kspace(synth.acquire((96, 96), n_coils=2, sigma=0.01, seed=11))
     vol = Volume.from_array(k, domain="kspace", coil_axis=1)
-    t = iq.analyse(vol, AnalysisContext(vol))
+    t = trace_of("intensity_quantization", vol)
     assert t.status == "absent"
     assert t.evidence["lattice_step"] is None
 

@@ -15,8 +15,7 @@ from scipy.signal import windows
 
 from app.io.volume import Volume
 from app.traces import kspace_filtering as kf
-from app.traces import spectrum as sp
-from app.traces.context import AnalysisContext
+from app.traces.plan import trace_of
 from demo_data import synth
 
 
@@ -58,7 +57,7 @@ def test_windowed_complex_data_is_present(family, param, pad):
     of k-space) falls below the conservative call (gain 1.3 dB), chosen so that raw
     data are called absent in at least 98 % of cases; the bench measures such misses.
     """
-    trace = kf.trace_from(sp.compute_spectrum(_windowed(family, param, pad=pad)))
+    trace = trace_of("kspace_filtering", _windowed(family, param, pad=pad))
     assert trace.status == "present"
     assert trace.estimates["window"] in {name for name, _ in kf.CANDIDATES}
 
@@ -66,7 +65,7 @@ def test_windowed_complex_data_is_present(family, param, pad):
 @pytest.mark.parametrize("pad", [1.0, 2.0])
 def test_gaussian_window_named_with_its_width(pad):
     """A Gaussian window of width 0.4 is named gaussian, width within 0.1 (truth: 0.4)."""
-    trace = kf.trace_from(sp.compute_spectrum(_windowed("gaussian", 0.4, pad=pad)))
+    trace = trace_of("kspace_filtering", _windowed("gaussian", 0.4, pad=pad))
     assert trace.estimates["window"] == "gaussian"
     assert abs(trace.estimates["param"] - 0.4) <= 0.1
 
@@ -74,7 +73,7 @@ def test_gaussian_window_named_with_its_width(pad):
 def test_hann_on_rss_magnitude_is_present():
     """Root-sum-of-squares magnitude of Hann-windowed data (truth: Hann): present."""
     vol = _windowed("hann", None, seed=4, complex_out=False)
-    assert kf.trace_from(sp.compute_spectrum(vol)).status == "present"
+    assert trace_of("kspace_filtering", vol).status == "present"
 
 
 @pytest.mark.parametrize("seed", [0, 1, 2, 3])
@@ -82,7 +81,7 @@ def test_hann_on_rss_magnitude_is_present():
 def test_unfiltered_data_is_absent(seed, complex_out):
     """Unfiltered acquisitions (truth: no window), complex and RSS: absent."""
     vol = _windowed(None, None, seed=seed, complex_out=complex_out)
-    trace = kf.trace_from(sp.compute_spectrum(vol))
+    trace = trace_of("kspace_filtering", vol)
     assert trace.status == "absent"
     assert trace.estimates["window"] is None
 
@@ -90,7 +89,7 @@ def test_unfiltered_data_is_absent(seed, complex_out):
 def test_registered_analyser_contract():
     """Through the registry: the window estimate and the agreed evidence keys."""
     vol = _windowed("hann", None, shape=(64, 64), seed=5)
-    trace = kf.analyse(vol, AnalysisContext(vol))
+    trace = trace_of("kspace_filtering", vol)
     assert "window" in trace.estimates
     fits = trace.evidence["fits"]
     for ax in ("rows", "cols"):

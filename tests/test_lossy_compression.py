@@ -31,9 +31,10 @@ from pydicom.encaps import generate_frames
 from scipy import ndimage
 
 from app.io.volume import Header, Volume
-from app.traces.context import AnalysisContext
+from app.traces import lossy_compression
+from app.traces.header import HeaderFacts
 from app.traces.jpeg_tables import match_quality, natural_from_zigzag, scaled_table
-from app.traces.lossy_compression import analyse_lossy_compression
+from app.traces.plan import execute, step_of, trace_of
 from app.traces.report import analyse_volume
 from demo_data import synth
 from demo_data.synth import jpeg_round_trip as _jpeg
@@ -57,8 +58,7 @@ def _to8(a: np.ndarray) -> np.ndarray:
 
 def _trace(arr: np.ndarray | Volume, **options) -> dict:
     vol = arr if isinstance(arr, Volume) else Volume.from_array(arr)
-    ctx = AnalysisContext(vol, workers=1, options=dict(options))
-    return analyse_lossy_compression(vol, ctx).to_dict()
+    return trace_of("lossy_compression", vol, workers=1, options=dict(options)).to_dict()
 
 
 def _dqt_luminance(stream: bytes) -> np.ndarray:
@@ -251,7 +251,7 @@ def test_jpeg_lossy_dcm_header_only() -> None:
     constant placeholder. Truth: transfer syntax .51, Lossy Image Compression 01,
     the DQT table of its stream. Present, method declared, quality = the stored
     table's matched IJG quality, via Volume.header.fields and, separately, via the
-    header module's declared dict in ctx.options."""
+    header step's declared facts handed to the analyser directly."""
     ds, table = _stored_table("JPEG-lossy.dcm")
     assert str(ds.file_meta.TransferSyntaxUID) == JPEG_EXTENDED
     stored_q, _, _ = match_quality(table, baseline=table.max() <= 255)
@@ -266,7 +266,9 @@ def test_jpeg_lossy_dcm_header_only() -> None:
     declared = {"lossy_compression": True, "transfer_syntax": JPEG_EXTENDED,
                 "lossy_method": "ISO_10918_1", "stored_jpeg_quality": stored_q,
                 "stored_jpeg_table": table.tolist()}
-    t2 = _trace(Volume.from_array(placeholder), header_declared=declared)
+    bare = Volume.from_array(placeholder)
+    t2 = lossy_compression.analyse_lossy_compression(
+        bare, header=HeaderFacts(declared), jpeg_pixels=step_of("jpeg_pixels", bare)).to_dict()
     assert t2["status"] == "present" and t2["estimates"]["quality"] == stored_q
     assert "ISO_10918_1" in t2["summary"]
 
@@ -338,14 +340,14 @@ def test_report_carries_contract_and_evidence_keys() -> None:
 
 def test_large_volume_uses_stated_frame_subset() -> None:
     """A 20-frame volume is measured on 8 evenly spaced frames and the report notes
-    it (the brief: state subsampling in ctx.notes). Truth: every frame a
+    it (the brief: state subsampling in the report's notes). Truth: every frame a
     quality-45 JPEG; present with quality within 5."""
     frames = [_jpeg(_to8(_mr_float(100 + i, (64, 64), coils=2)), 45) for i in range(20)]
     vol = Volume.from_array(np.stack(frames))
-    ctx = AnalysisContext(vol, workers=1)
-    t = analyse_lossy_compression(vol, ctx).to_dict()
+    res = execute(vol, only=["lossy_compression"])
+    t = res.traces["lossy_compression"].to_dict()
     assert len(t["evidence"]["pixels"]["frames"]) == 8
-    assert any("8 of 20 frames" in n for n in ctx.notes)
+    assert any("8 of 20 frames" in n for n in res.notes)
     assert t["status"] == "present" and abs(t["estimates"]["quality"] - 45) <= 5
 
 

@@ -27,13 +27,14 @@ from scipy import ndimage, stats
 
 from app.io.volume import Header, Volume
 from app.traces import magnitude_only as mo
-from app.traces.context import AnalysisContext
+from app.traces.plan import trace_of
+from app.traces.value_kind import circular_spread
 from demo_data import synth
 
 
 def _run(arr: np.ndarray, **kw) -> mo.Trace:
     vol = Volume.from_array(arr, **kw)
-    return mo.analyse(vol, AnalysisContext(vol))
+    return trace_of("magnitude_only", vol)
 
 
 def test_complex_single_coil_is_complex() -> None:
@@ -103,7 +104,7 @@ def test_circular_spread_matches_scipy() -> None:
     rng = np.random.default_rng(7)
     ph = stats.vonmises(kappa=3.0).rvs(5000, random_state=rng)
     z = 2.0 * np.exp(1j * ph)
-    assert mo.circular_spread(z) == pytest.approx(stats.circstd(ph), rel=1e-9)
+    assert circular_spread(z) == pytest.approx(stats.circstd(ph), rel=1e-9)
 
 
 @pytest.mark.parametrize("name", ["MR_small.dcm", "emri_small.dcm"])
@@ -115,7 +116,7 @@ def test_pydicom_mr_images_are_magnitude(name: str) -> None:
     ds = pydicom.dcmread(get_testdata_file(name))
     vol = Volume.from_array(ds.pixel_array,
                             header=Header(fields={"bits_stored": int(ds.BitsStored)}))
-    t = mo.analyse(vol, AnalysisContext(vol))
+    t = trace_of("magnitude_only", vol)
     assert t.estimates["domain"] == "magnitude" and t.status == "present"
 
 
@@ -126,7 +127,7 @@ def test_nibabel_normalised_anatomical_is_magnitude() -> None:
     a = np.ascontiguousarray(np.asanyarray(img.dataobj).transpose(2, 1, 0))
     assert a.min() < 0
     vol = Volume.from_array(a)
-    t = mo.analyse(vol, AnalysisContext(vol))
+    t = trace_of("magnitude_only", vol)
     assert t.estimates["domain"] == "magnitude" and t.status == "present"
     assert t.evidence["negative_fraction"] < 0.01
 

@@ -15,8 +15,7 @@ import pytest
 
 from app.io.volume import Volume
 from app.traces import partial_fourier as pf
-from app.traces import spectrum as sp
-from app.traces.context import AnalysisContext
+from app.traces.plan import trace_of
 from demo_data import synth
 
 
@@ -39,7 +38,7 @@ def test_complex_images_fraction(frac, axis):
     """Complex coil images: acquired fraction within 0.02 (truth: the removed side)."""
     k = _partial((96, 112), frac, axis, seed=int(frac * 8) + axis)
     vol = Volume.from_array(synth.to_image(k), coil_axis=1)
-    trace = pf.trace_from(sp.compute_spectrum(vol))
+    trace = trace_of("partial_fourier", vol)
     ax = ("rows", "cols")[axis]
     other = ("rows", "cols")[1 - axis]
     assert trace.status == "present"
@@ -52,7 +51,7 @@ def test_kspace_input_with_zero_filling(side):
     """k-space input, 6/8 partial Fourier then 2x zero-filling: fraction 0.75 within 0.02."""
     k = _partial((80, 80), 0.75, 0, pad=2.0, seed=5, side=side)
     vol = Volume.from_array(k, coil_axis=1, domain="kspace")
-    trace = pf.trace_from(sp.compute_spectrum(vol))
+    trace = trace_of("partial_fourier", vol)
     assert trace.status == "present"
     assert abs(trace.estimates["rows"]["fraction"] - 0.75) <= 0.02
     lo, hi = trace.evidence["edges"]["rows"]
@@ -68,11 +67,11 @@ def test_full_acquisitions_are_not_called(seed):
     so without a strong step the analyser says inconclusive, not absent.
     """
     img = synth.acquire((96, 96), n_coils=4, n_slices=4, sigma=0.01, seed=seed)
-    trace = pf.trace_from(sp.compute_spectrum(Volume.from_array(img, coil_axis=1)))
+    trace = trace_of("partial_fourier", Volume.from_array(img, coil_axis=1))
     assert trace.status == "absent"
     assert trace.estimates["rows"]["fraction"] == 1.0
     assert trace.estimates["cols"]["fraction"] == 1.0
-    mag = pf.trace_from(sp.compute_spectrum(Volume.from_array(synth.rss(img, axis=1))))
+    mag = trace_of("partial_fourier", Volume.from_array(synth.rss(img, axis=1)))
     assert mag.status == "inconclusive"
     assert mag.estimates["rows"]["fraction"] == 1.0
 
@@ -81,7 +80,7 @@ def test_registered_analyser_contract():
     """Through the registry: required estimates and the agreed evidence keys."""
     k = _partial((64, 64), 5 / 8, 1, seed=7)
     vol = Volume.from_array(synth.to_image(k), coil_axis=1)
-    trace = pf.analyse(vol, AnalysisContext(vol))
+    trace = trace_of("partial_fourier", vol)
     assert set(pf.DEFAULT_ESTIMATES) <= set(trace.estimates)
     for key in ("profiles_db", "asymmetry_db", "edges"):
         assert key in trace.evidence

@@ -62,7 +62,7 @@ def test_one_registered_function_plugs_in(monkeypatch):
     monkeypatch.setattr(base, "_REGISTRY", dict(base._REGISTRY))
 
     @base.register("test_constant_image", default_estimates={"value": None})
-    def _constant(volume, ctx):
+    def _constant(volume):
         arr = volume.to_array()
         flat = bool(np.ptp(arr) == 0)
         return base.Trace(
@@ -85,7 +85,7 @@ def test_failing_analyser_gives_inconclusive_with_error(monkeypatch):
     monkeypatch.setattr(base, "_REGISTRY", dict(base._REGISTRY))
 
     @base.register("test_broken", default_estimates={"rows": None})
-    def _broken(volume, ctx):
+    def _broken(volume):
         raise ZeroDivisionError("deliberate")
 
     rep = analyse_volume(Volume.from_array(np.ones((8, 8))))
@@ -100,7 +100,7 @@ def test_analyser_missing_required_estimates_is_caught(monkeypatch):
     monkeypatch.setattr(base, "_REGISTRY", dict(base._REGISTRY))
 
     @base.register("test_incomplete", default_estimates={"needed": None})
-    def _incomplete(volume, ctx):
+    def _incomplete(volume):
         return base.Trace("test_incomplete", "absent", 0.9, "forgot a key", {})
 
     rep = analyse_volume(Volume.from_array(np.ones((8, 8))))
@@ -109,21 +109,77 @@ def test_analyser_missing_required_estimates_is_caught(monkeypatch):
 
 
 def test_shared_step_runs_once_per_volume(monkeypatch):
-    """Analysers share results through AnalysisContext.cached (computed once per Volume)."""
+    """Two analysers that name the same shared step get one computation of it
+    (the plan's rule: shared steps are computed once per Volume)."""
+    from app.traces import plan
+
     monkeypatch.setattr(base, "_REGISTRY", dict(base._REGISTRY))
     calls = []
 
-    def shared(ctx):
-        return ctx.cached("test_shared", lambda: calls.append(1) or 42)
+    def counted(volume):
+        calls.append(1)
+        return 42
+
+    monkeypatch.setitem(plan.STEPS, "test_shared", counted)
+    def make(name):
+        def fn(volume, *, test_shared):
+            return base.Trace(name, "absent", 1.0, f"shared {test_shared}", {})
+        return fn
 
     for name in ("test_a", "test_b"):
-
-        def fn(volume, ctx, name=name):
-            return base.Trace(name, "absent", 1.0, f"shared {shared(ctx)}", {})
-
-        base.register(name)(fn)
-    analyse_volume(Volume.from_array(np.ones((8, 8))))
+        base.register(name)(make(name))
+    rep = analyse_volume(Volume.from_array(np.ones((8, 8))))
     assert calls == [1]
+    assert rep["traces"]["test_a"]["summary"] == "shared 42"
+
+
+def test_plan_rejects_an_undeclared_need():
+    """An analyser naming a parameter that is neither a step nor an input is refused
+    when the plan reads its signature, not silently given None."""
+    from app.traces import plan
+
+    def bad(volume, *, no_such_step):
+        return None
+
+    with pytest.raises(ValueError, match="no_such_step"):
+        plan.needs_of(bad)
+
+
+def test_failed_shared_step_makes_its_analysers_inconclusive(monkeypatch):
+    """A shared step that raises makes every analyser needing it inconclusive with
+    the step named, while an optional need gets None."""
+    from app.traces import plan
+
+    monkeypatch.setattr(base, "_REGISTRY", dict(base._REGISTRY))
+
+    def broken(volume):
+        raise ZeroDivisionError("deliberate")
+
+    monkeypatch.setitem(plan.STEPS, "test_broken_step", broken)
+
+    @base.register("test_needs")
+    def _needs(volume, *, test_broken_step):
+        return base.Trace("test_needs", "absent", 1.0, "unreachable", {})
+
+    @base.register("test_optional")
+    def _optional(volume, *, test_broken_step=None):
+        return base.Trace("test_optional", "absent", 1.0, f"got {test_broken_step}", {})
+
+    rep = analyse_volume(Volume.from_array(np.ones((8, 8))))
+    t = rep["traces"]["test_needs"]
+    assert t["status"] == "inconclusive" and "test_broken_step" in t["summary"]
+    assert rep["traces"]["test_optional"]["summary"] == "got None"
+
+
+def test_verdict_rule_separates_acquisition_from_processing():
+    """shared/REPORT_CONTRACT.md: a trace present with origin acquisition does not by
+    itself make the verdict processed; with origin processing (the default) it does."""
+    absent = {"status": "absent"}
+    acq = {"status": "present", "origin": "acquisition"}
+    proc = {"status": "present"}
+    assert verdict_of({"a": absent, "b": acq}) == "raw-like"
+    assert verdict_of({"a": absent, "b": acq, "c": proc}) == "processed"
+    assert verdict_of({"a": {"status": "inconclusive"}, "b": acq}) == "inconclusive"
 
 
 def test_group_merge_keeps_most_severe_and_verdict_rule():

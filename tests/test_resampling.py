@@ -21,7 +21,7 @@ from scipy import ndimage
 
 from app.io.volume import Volume
 from app.traces import resampling as rs
-from app.traces.context import AnalysisContext
+from app.traces.plan import execute, trace_of
 from demo_data import synth
 
 NIB_DATA = os.path.join(os.path.dirname(nib.__file__), "tests", "data")
@@ -34,7 +34,7 @@ def _raw(seed=0, shape=(128, 128)):
 
 def _trace(frames):
     vol = Volume.from_array(np.asarray(frames, dtype=np.float32))
-    return rs.analyse(vol, AnalysisContext(vol))
+    return trace_of("resampling", vol)
 
 
 @pytest.mark.parametrize("order", [1, 3])
@@ -149,12 +149,12 @@ def test_bounded_subset_is_stated():
     frames = np.concatenate([_raw(seed=s) for s in range(4)])  # 16 frames
     zoomed = np.stack([ndimage.zoom(f, (1.0, 1.5), order=1) for f in frames])
     vol = Volume.from_array(zoomed.astype(np.float32))
-    ctx = AnalysisContext(vol)
-    trace = rs.analyse(vol, ctx)
+    res = execute(vol, only=["resampling"])
+    trace = res.traces["resampling"]
     assert trace.status == "present"
     # one frame in eight, at least MIN_FRAMES (4 here), at most MAX_FRAMES
     assert trace.evidence["n_frames"] == rs.MIN_FRAMES
-    assert any("resampling analysed 4 of 16 frames" in n for n in ctx.notes)
+    assert any("resampling analysed 4 of 16 frames" in n for n in res.notes)
 
 
 
@@ -219,7 +219,7 @@ def test_zero_filling_periodicity_is_not_counted_as_resampling():
     """Zero-filling by 2 is sinc interpolation by 2: its Nyquist periodicity is set aside
     (zero_filling reports it), so resampling is absent and the evidence says why."""
     vol = Volume.from_array(_zero_filled().astype(np.float32))
-    trace = rs.analyse(vol, AnalysisContext(vol))
+    trace = trace_of("resampling", vol)
     explained = trace.evidence["zero_fill_explained"]
     assert set(explained) == {"rows", "cols"}
     assert all(abs(f - 0.5) < 0.02 for f in explained.values())

@@ -8,10 +8,12 @@ Its Applications*, 2000); numpy.fft as the reference implementation.
 from __future__ import annotations
 
 import numpy as np
+import pytest
 
 from app.io.volume import Volume
 from app.traces import spectrum as sp
-from app.traces.context import AnalysisContext
+from app.traces.base import StepUnavailableError
+from app.traces.plan import step_of, trace_of
 
 
 def test_profiles_match_numpy_fft_reference():
@@ -82,11 +84,15 @@ def test_slice_profile_of_a_3d_volume():
     assert prof[16:48].min() > 1e6 * prof[:16].max()
 
 
-def test_cached_once_per_context():
-    """The spectrum is computed once per analysis context and shared."""
-    vol = Volume.from_array(np.ones((2, 8, 8), dtype=np.float32))
-    ctx = AnalysisContext(vol)
-    assert sp.spectrum_of(vol, ctx) is sp.spectrum_of(vol, ctx)
+def test_too_small_frames_make_the_spectrum_step_unavailable():
+    """A 6 x 6 frame is below the spectral analysers' minimum: the shared step says
+    why, and every analyser that needs it is inconclusive with that reason (common
+    practice, no source: no honest support edge can be read off 3 samples a side)."""
+    vol = Volume.from_array(np.ones((2, 6, 6), dtype=np.float32))
+    with pytest.raises(StepUnavailableError) as err:
+        step_of("spectrum", vol)
+    t = trace_of("zero_filling", vol)
+    assert t.status == "inconclusive" and t.summary == err.value.reason
 
 
 def test_step_scores_find_a_step_and_ignore_a_slope():

@@ -17,9 +17,8 @@ import pytest
 from pydicom.data import get_testdata_file
 
 from app.io.volume import Volume
-from app.traces import spectrum as sp
 from app.traces import zero_filling as zf
-from app.traces.context import AnalysisContext
+from app.traces.plan import trace_of
 from demo_data import synth
 
 # acquired shape, padding per axis, coils, noise sigma (SNR ~ 30-200 at the object)
@@ -37,7 +36,7 @@ def test_padding_of_magnitude_and_rss_images(acq, pad, coils, sigma):
     """Padding factor within 5 % per axis (truth: the zero-fill applied by synth.zero_fill)."""
     mag, out = synth.zero_filled_magnitude(acq, pad, n_coils=coils, n_slices=6, sigma=sigma,
                                            seed=hash((acq, pad)) % 1000)
-    trace = zf.trace_from(sp.compute_spectrum(Volume.from_array(mag)))
+    trace = trace_of("zero_filling", Volume.from_array(mag))
     assert trace.status == "present"
     for i, ax in enumerate(("rows", "cols")):
         true_pad = out[i] / acq[i]
@@ -54,7 +53,7 @@ def test_unpadded_rss_images_are_absent(seed):
     """Raw-like (unpadded) root-sum-of-squares images: no zero-filling (truth: none applied)."""
     mag, _ = synth.zero_filled_magnitude((128, 112), (1.0, 1.0), n_coils=8, n_slices=6,
                                          sigma=0.01, seed=seed)
-    trace = zf.trace_from(sp.compute_spectrum(Volume.from_array(mag)))
+    trace = trace_of("zero_filling", Volume.from_array(mag))
     assert trace.status == "absent"
     assert trace.estimates["rows"]["padding_factor"] == 1.0
     assert trace.estimates["cols"]["padding_factor"] == 1.0
@@ -65,7 +64,7 @@ def test_large_unpadded_images_are_absent(size, frames, seed):
     """Large raw-like RSS images (truth: no padding): their smooth spectral roll-off near
     0.2 cycles/sample is a ring, not the straight edge of zero-filled k-space: absent."""
     img = synth.acquire((size, size), n_coils=4, n_slices=frames, sigma=0.019, seed=seed)
-    trace = zf.trace_from(sp.compute_spectrum(Volume.from_array(synth.rss(img, axis=1))))
+    trace = trace_of("zero_filling", Volume.from_array(synth.rss(img, axis=1)))
     assert trace.status == "absent"
 
 
@@ -74,7 +73,7 @@ def test_complex_multicoil_images_to_one_sample():
     img = synth.acquire((100, 90), n_coils=4, n_slices=3, sigma=0.01, seed=3)
     k = synth.to_kspace(img)
     vol = Volume.from_array(synth.to_image(synth.zero_fill(k, (200, 180))), coil_axis=1)
-    trace = zf.trace_from(sp.compute_spectrum(vol))
+    trace = trace_of("zero_filling", vol)
     assert trace.status == "present"
     assert abs(trace.estimates["rows"]["support_fraction"] * 200 - 100) <= 1.0
     assert abs(trace.estimates["cols"]["support_fraction"] * 180 - 90) <= 1.0
@@ -89,7 +88,7 @@ def test_kspace_input_centred_or_not(corner):
     k = synth.zero_fill(synth.to_kspace(img), (200, 180))
     if corner:
         k = np.fft.ifftshift(k, axes=(-2, -1))
-    trace = zf.trace_from(sp.compute_spectrum(Volume.from_array(k, coil_axis=1, domain="kspace")))
+    trace = trace_of("zero_filling", Volume.from_array(k, coil_axis=1, domain="kspace"))
     assert trace.status == "present"
     assert abs(trace.estimates["rows"]["padding_factor"] - 2.0) < 0.03
     assert abs(trace.estimates["cols"]["padding_factor"] - 2.0) < 0.03
@@ -102,7 +101,7 @@ def test_through_plane_padding_of_a_3d_volume():
     k = np.fft.fftshift(np.fft.fft(img, axis=0), axes=0)
     k = np.concatenate([np.zeros_like(k[:12]), k, np.zeros_like(k[:12])], axis=0)
     vol3 = np.fft.ifft(np.fft.ifftshift(k, axes=0), axis=0).astype(np.complex64)
-    trace = zf.trace_from(sp.compute_spectrum(Volume.from_array(vol3)))
+    trace = trace_of("zero_filling", Volume.from_array(vol3))
     assert "slices" in trace.estimates
     assert abs(trace.estimates["slices"]["padding_factor"] - 2.0) <= 0.1
 
@@ -111,7 +110,7 @@ def test_registered_analyser_contract_keys():
     """Through the registry: required estimates and the agreed evidence keys are there."""
     mag, _ = synth.zero_filled_magnitude((64, 64), (2.0, 2.0), n_coils=4, n_slices=4, seed=9)
     vol = Volume.from_array(mag)
-    trace = zf.analyse(vol, AnalysisContext(vol))
+    trace = trace_of("zero_filling", vol)
     for key in ("profiles_db", "edges", "drop_db", "noise_floor_db", "spectrum_map_db",
                 "spectrum_map_step", "spectrum_slice"):
         assert key in trace.evidence
@@ -141,7 +140,7 @@ def test_siemens_dicom_against_its_header():
     ds = pydicom.dcmread(get_testdata_file("MR-SIEMENS-DICOM-WithOverlays.dcm"))
     assert list(ds.AcquisitionMatrix) == [256, 0, 0, 134]
     header_rows_support = 134 / (float(ds.PercentPhaseFieldOfView) / 100.0) / ds.Rows
-    trace = zf.trace_from(sp.compute_spectrum(Volume.from_array(ds.pixel_array)))
+    trace = trace_of("zero_filling", Volume.from_array(ds.pixel_array))
     assert trace.status == "present"
     est = trace.estimates["rows"]["support_fraction"]
     assert abs(est - header_rows_support) <= 0.15 * header_rows_support, (est, header_rows_support)

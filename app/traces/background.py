@@ -3,7 +3,7 @@
 Several analysers read the background: the noise-law fit (coil combination),
 the constant-background test (masking), the sign test (magnitude only). It is
 found here once, on a bounded, evenly spaced subset of frames, and shared
-through ``ctx.cached("background", ...)``.
+through the analysis plan's ``background`` step.
 
 K-space volumes are first brought to the image domain (centred orthonormal
 inverse FFT of the analysed frames), so a fake k-space made from processed
@@ -534,19 +534,15 @@ def find_background(volume: Volume, *, frames: Any = None,
     )
 
 
-def background_of(volume: Volume, ctx: Any) -> Background:
-    """The shared background of ``volume``, computed once per analysis context.
+def background_step(volume: Volume, scope: Any, notes: Any) -> Background:
+    """The shared step: the background (air) of the analysed frames.
 
-    Adds the stated frame subsampling to ``ctx.notes``.
+    Adds the stated frame subsampling to ``notes``.
     """
-
-    def factory() -> Background:
-        bg = find_background(volume, frames=ctx.frame_indices())
-        for note in bg.notes:
-            ctx.note(note)
-        return bg
-
-    return ctx.cached("background", factory)
+    bg = find_background(volume, frames=scope.frames)
+    for note in bg.notes:
+        notes.add(note)
+    return bg
 
 
 LATTICE_TOL = 0.01

@@ -32,7 +32,7 @@ import numpy as np
 from scipy import ndimage
 
 from app.io.volume import Volume
-from app.traces.background import Background, background_of, constant_share
+from app.traces.background import Background, constant_share
 from app.traces.base import Trace, inconclusive, register
 
 TRACE_ID = "background_masking"
@@ -79,7 +79,7 @@ def mask_shape(volume: Volume, bg: Background, value: float) -> dict[str, Any]:
 
 @register(TRACE_ID, version="1", order=50,
           default_estimates={"zero_background_fraction": None})
-def analyse(volume: Volume, ctx: Any) -> Trace:
+def analyse(volume: Volume, *, background: Background) -> Trace:
     """Say whether the background holds one constant instead of noise.
 
     References
@@ -87,7 +87,7 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
     Gudbjartsson and Patz, MRM 1995 (measured air holds noise); Smith, HBM 2002
     (skull stripping zeroes the background).
     """
-    bg = background_of(volume, ctx)
+    bg = background
     if not bg.usable:
         return inconclusive(TRACE_ID, f"Masking not measured: {bg.reason}.",
                             n_background=int(bg.n_background))

@@ -7,6 +7,19 @@ from dataclasses import dataclass, field
 from typing import Any
 
 STATUSES = ("present", "absent", "inconclusive")
+ORIGINS = ("processing", "acquisition")
+
+
+class StepUnavailableError(Exception):
+    """A shared step cannot be computed for this input (too small, no pixels, ...).
+
+    ``reason`` is one sentence a reviewer can read; the analysers that need the
+    step come out ``inconclusive`` with it.
+    """
+
+    def __init__(self, reason: str) -> None:
+        super().__init__(reason)
+        self.reason = reason
 
 
 @dataclass
@@ -26,6 +39,11 @@ class Trace:
         The contract's required keys for this trace id, plus any extra.
     evidence : dict
         Numbers and short arrays (lists) behind the call, for the page to plot.
+    origin : {"processing", "acquisition"}
+        ``acquisition`` for a property of a genuine acquisition (partial Fourier
+        delivered with zeros, a kept oversampled readout) rather than a step applied
+        to the measured data; only ``processing`` findings make a dataset
+        ``processed``.
     """
 
     id: str
@@ -34,10 +52,13 @@ class Trace:
     summary: str
     estimates: dict[str, Any] = field(default_factory=dict)
     evidence: dict[str, Any] = field(default_factory=dict)
+    origin: str = "processing"
 
     def __post_init__(self) -> None:
         if self.status not in STATUSES:
             raise ValueError(f"status must be one of {STATUSES}, not {self.status!r}")
+        if self.origin not in ORIGINS:
+            raise ValueError(f"origin must be one of {ORIGINS}, not {self.origin!r}")
         self.confidence = float(min(1.0, max(0.0, self.confidence)))
 
     def to_dict(self) -> dict[str, Any]:
@@ -47,6 +68,7 @@ class Trace:
             "summary": self.summary,
             "estimates": self.estimates,
             "evidence": self.evidence,
+            "origin": self.origin,
         }
 
 
@@ -74,8 +96,9 @@ def register(
     """Register an analyser function under a trace id.
 
     The function takes ``(volume, context)`` and returns a :class:`Trace`. It must
-    not print or touch files. A module under ``app/traces/`` that calls this at
-    import time is found by :func:`app.traces.report.analysers` automatically.
+    not print or touch files. Its module must be listed in
+    :data:`app.traces.plan.ANALYSERS`; its keyword-only parameters name the
+    shared steps it takes (see :mod:`app.traces.plan`).
 
     Parameters
     ----------

@@ -37,9 +37,9 @@ from scipy import stats
 
 from app.io.volume import Volume
 from app.traces import noise_laws as nl
-from app.traces.background import Background, background_of, constant_share, lattice_step
+from app.traces.background import Background, constant_share, lattice_step
 from app.traces.base import Trace, inconclusive, register
-from app.traces.magnitude_only import value_kind_of
+from app.traces.value_kind import ValueKind
 
 TRACE_ID = "coil_combination"
 KS_SAMPLES = 2000
@@ -263,15 +263,16 @@ def _gaussian_trace(volume: Volume, bg: Background, kind: str) -> Trace:
 
 
 @register(TRACE_ID, version="1", order=40, default_estimates=dict(_DEFAULTS))
-def analyse(volume: Volume, ctx: Any) -> Trace:
+def analyse(volume: Volume, *, background: Background,
+            value_kind: ValueKind) -> Trace:
     """Fit the background noise laws and say whether channels were combined.
 
     References
     ----------
     Gudbjartsson and Patz, MRM 1995; Constantinides, Atalar and McVeigh, MRM 1997.
     """
-    bg = background_of(volume, ctx)
-    kind = value_kind_of(volume, ctx).domain
+    bg = background
+    kind = value_kind.domain
     if kind in ("complex", "real_signed"):
         return _gaussian_trace(volume, bg, kind)
     if not bg.usable:

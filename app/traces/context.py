@@ -1,22 +1,24 @@
-"""Per-Volume shared state: results computed once and reused by several analysers."""
+"""What every step of one analysis shares: the frames it reads and the notes it adds.
+
+The analysis plan (:mod:`app.traces.plan`) builds one :class:`Scope` and one
+:class:`Notes` per Volume and hands them to the shared steps and analysers that
+name ``scope`` or ``notes`` in their signature.
+"""
 
 from __future__ import annotations
 
-import contextlib
 import threading
-from collections.abc import Callable, Iterator
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 
-from app.io.volume import Volume
-
 
 def evenly_spaced(indices: Any, k: int) -> np.ndarray:
     """At most ``k`` evenly spaced entries of ``indices`` (the first and last included).
 
-    Every stated frame subset (the context's, the background's, the JPEG and
+    Every stated frame subset (the scope's, the background's, the JPEG and
     resampling tests', the previews) is chosen by this rule.
     """
     idx = np.asarray(indices, dtype=int)
@@ -25,102 +27,58 @@ def evenly_spaced(indices: Any, k: int) -> np.ndarray:
     return idx[np.unique(np.linspace(0, idx.size - 1, k).round().astype(int))]
 
 
-class SharedStepBusy(BaseException):
-    """Raised by :meth:`AnalysisContext.cached` in a thread that must not wait.
+class Notes:
+    """Sentences added to the report's warnings, each once (thread-safe)."""
 
-    A ``BaseException``, so that analysers' own ``except Exception`` handlers let
-    it through to the scheduler, which runs the analyser again later.
-    """
+    def __init__(self) -> None:
+        self._lock = threading.Lock()
+        self._items: list[str] = []
+
+    def add(self, text: str) -> None:
+        """Add ``text`` unless it is there already."""
+        with self._lock:
+            if text not in self._items:
+                self._items.append(text)
+
+    def sorted(self) -> list[str]:
+        """The notes in a fixed order (steps run in threads add them in any order)."""
+        with self._lock:
+            return sorted(self._items)
 
 
-_THREAD = threading.local()
-
-
-def waiting_allowed(allowed: bool) -> None:
-    """Whether ``cached`` in the calling thread waits for a step another thread computes."""
-    _THREAD.no_wait = not allowed
-
-
-@dataclass
-class AnalysisContext:
-    """What analysers share while one Volume is analysed.
+@dataclass(frozen=True)
+class Scope:
+    """How one Volume is read by every step.
 
     Attributes
     ----------
-    volume : Volume
-    workers : int
-        Threads for ``scipy.fft`` (``workers=``).
+    frames : ndarray
+        Flat frame indices to analyse: all, or an evenly spaced stated subset.
     batch : int
         Frames per slice batch when streaming through the volume.
-    max_frames : int or None
-        Upper bound on frames analysed; when the volume has more, an evenly spaced
-        subset is used and the report states it.
-    options : dict
-        Reader/CLI options (``domain``, ``coil_axis``, ``dataset``).
-    notes : list of str
-        Sentences added to the report's warnings (for example a stated subsampling).
+    workers : int
+        Threads for ``scipy.fft`` (``workers=``) and for the plan's steps.
+    options : Mapping
+        Reader and CLI options (``domain``, ``coil_axis``, ``dataset``,
+        ``pixels_decoded``).
     """
 
-    volume: Volume
-    workers: int = 2
+    frames: np.ndarray
     batch: int = 16
-    max_frames: int | None = None
-    options: dict[str, Any] = field(default_factory=dict)
-    notes: list[str] = field(default_factory=list)
-    _cache: dict[str, Any] = field(default_factory=dict, repr=False)
-    _locks: dict[str, threading.Lock] = field(default_factory=dict, repr=False)
-    _guard: threading.Lock = field(default_factory=threading.Lock, repr=False)
+    workers: int = 2
+    options: Mapping[str, Any] = field(default_factory=dict)
 
-    def cached(self, key: str, factory: Callable[[], Any]) -> Any:
-        """Compute ``factory()`` once per Volume under ``key`` and reuse it.
+    @classmethod
+    def of(cls, n_frames: int, *, max_frames: int | None = None, batch: int = 16,
+           workers: int = 2, options: Mapping[str, Any] | None = None,
+           notes: Notes | None = None) -> Scope:
+        """The scope of a Volume of ``n_frames`` frames, at most ``max_frames`` of them.
 
-        Safe when analysers run in threads: the first caller computes, later
-        callers of the same key wait for its result. An exception raised by the
-        factory is cached too and raised again, so a shared step that fails is
-        not recomputed by every analyser.
+        A subset is stated in ``notes``.
         """
-        if key not in self._cache:
-            with self._guard:
-                lock = self._locks.setdefault(key, threading.Lock())
-            if not lock.acquire(blocking=not getattr(_THREAD, "no_wait", False)):
-                raise SharedStepBusy(key)
-            try:
-                if key not in self._cache:
-                    try:
-                        value = (True, factory())
-                    except Exception as exc:  # noqa: BLE001 - re-raised to each caller
-                        value = (False, exc)
-                    self._cache[key] = value
-            finally:
-                lock.release()
-        ok, value = self._cache[key]
-        if not ok:
-            raise value
-        return value
-
-    @contextlib.contextmanager
-    def waiting(self) -> Iterator[None]:
-        """Within this block ``cached`` waits for a step another thread computes
-        (for analysers that have done their own costly work and would lose it if
-        run again later)."""
-        before = getattr(_THREAD, "no_wait", False)
-        _THREAD.no_wait = False
-        try:
-            yield
-        finally:
-            _THREAD.no_wait = before
-
-    def note(self, text: str) -> None:
-        """Add a sentence to the report's warnings once (thread-safe)."""
-        with self._guard:
-            if text not in self.notes:
-                self.notes.append(text)
-
-    def frame_indices(self) -> Any:
-        """Flat frame indices to analyse (all, or an evenly spaced stated subset)."""
-        n = self.volume.n_slices
-        if self.max_frames is None or n <= self.max_frames:
-            return np.arange(n)
-        idx = evenly_spaced(np.arange(n), self.max_frames)
-        self.note(f"analysed {len(idx)} of {n} frames, evenly spaced")
-        return idx
+        idx = np.arange(n_frames)
+        if max_frames is not None and n_frames > max_frames:
+            idx = evenly_spaced(idx, max_frames)
+            if notes is not None:
+                notes.add(f"analysed {len(idx)} of {n_frames} frames, evenly spaced")
+        return cls(idx, batch, max(1, int(workers)), dict(options or {}))

@@ -22,6 +22,7 @@ codes). ITU-T T.81 Annex K with libjpeg's quality scaling
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -63,6 +64,43 @@ XFORM_NAME = {0: "unknown", 1: "scanner", 2: "aligned to another image", 3: "Tal
 _REFORMAT_WORDS = {"MPR", "CSA MPR", "REFORMATTED", "RESAMPLED", "MIP", "MINIP", "PROJECTION",
                    "CURVED", "CSA RESAMPLED", "MOSAIC", "SUBTRACTION", "FILTERED"}
 _INTERP_TOLERANCE = 0.05
+
+
+@dataclass(frozen=True)
+class HeaderFacts:
+    """What the file headers declare (the shared ``header`` step).
+
+    Attributes
+    ----------
+    declared : dict
+        Flat JSON-able facts (see :func:`provenance`).
+    notes : list of str
+        Plain-English sentences for the report's header section.
+    error : str or None
+        Why the header could not be interpreted, when it could not.
+    """
+
+    declared: dict[str, Any] = field(default_factory=dict)
+    notes: list[str] = field(default_factory=list)
+    error: str | None = None
+
+
+def header_step(volume: Volume) -> HeaderFacts:
+    """The shared step: interpret the Volume's header once per dataset.
+
+    A header that cannot be interpreted is not fatal: the facts are empty and the
+    reason is kept.
+
+    References
+    ----------
+    NEMA PS3.3 C.7.6.1.1.2, C.7.6.1.1.5, C.8.3.1; NIfTI-1 ``nifti1.h``.
+    """
+    try:
+        declared, notes = provenance(volume)
+    except Exception as exc:  # noqa: BLE001 - a header we cannot interpret is not fatal
+        return HeaderFacts({"lossy_compression": None},
+                           [f"header could not be interpreted: {exc}"], str(exc))
+    return HeaderFacts(declared, notes)
 
 
 def provenance(volume: Volume) -> tuple[dict[str, Any], list[str]]:

@@ -54,14 +54,15 @@ from scipy import ndimage
 from app.io.volume import Volume
 from app.traces.background import (
     FFT_TOLERANCE,
+    Background,
     analysed_frames,
-    background_of,
     constant_share,
     image_blocks,
     lattice_step,
 )
 from app.traces.base import Trace, inconclusive, register
-from app.traces.magnitude_only import value_kind_of
+from app.traces.context import Scope
+from app.traces.value_kind import ValueKind
 
 TRACE_ID = "intensity_quantization"
 MAX_FRAMES = 32
@@ -304,16 +305,17 @@ def _histogram(stats: LevelStats) -> dict[str, Any]:
 @register(TRACE_ID, version="1", order=70,
           default_estimates={"distinct_levels": None, "effective_bits": None,
                              "clipped_fraction": None})
-def analyse(volume: Volume, ctx: Any) -> Trace:
+def analyse(volume: Volume, *, scope: Scope, background: Background | None = None,
+            value_kind: ValueKind | None = None) -> Trace:
     """Count grey levels, look for a comb-shaped histogram and for clipping.
 
     References
     ----------
     Widrow and Kollar 2008; Stamm and Liu, IEEE TIFS 2010; DICOM PS3.3 C.7.6.3.
     """
-    frames = analysed_frames(volume.n_slices, ctx.frame_indices(), MAX_FRAMES)
-    from_images = (volume.domain == "kspace"
-                   and value_kind_of(volume, ctx).domain in ("magnitude", "real_signed"))
+    frames = analysed_frames(volume.n_slices, scope.frames, MAX_FRAMES)
+    from_images = (volume.domain == "kspace" and value_kind is not None
+                   and value_kind.domain in ("magnitude", "real_signed"))
     if from_images:
         # k-space synthesised from real images: the grey levels are those images'
         values, tol = _kspace_image_values(volume, frames)
@@ -329,8 +331,8 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
     masked_low = False
     if clip["low_pile"]:
         try:
-            bg = background_of(volume, ctx)
-            const = constant_share(bg) if bg.usable else None
+            bg = background
+            const = constant_share(bg) if bg is not None and bg.usable else None
             if const is not None and const.masked and const.value is not None:
                 if from_images:
                     # both come from the inverse FFT: equal within its round-off

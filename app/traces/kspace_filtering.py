@@ -43,8 +43,8 @@ from scipy import ndimage
 
 from app.io.volume import Volume
 from app.traces import spectrum as sp
-from app.traces import zero_filling as zf
-from app.traces.base import Trace, inconclusive, register
+from app.traces import support as zf
+from app.traces.base import Trace, register
 
 TRACE_ID = "kspace_filtering"
 RATIO = 0.6
@@ -228,14 +228,14 @@ def fit_axis(lines_db: np.ndarray, half_support: float, *, axis: str, scale_free
                    float(plain_rms[0]), float(rms[best]), att, model_db[best], k, fam, par)
 
 
-def detect(spec: sp.Spectrum) -> dict[str, AxisFit]:
+def detect(spec: sp.Spectrum, support: dict[str, zf.AxisSupport]) -> dict[str, AxisFit]:
     """Window fits per axis (``rows``, ``cols``) from a spectrum.
 
     References
     ----------
     .. [1] Bernstein, Fain and Riederer, J. Magn. Reson. Imaging 14:270-280, 2001.
     """
-    zf_axes = zf.detect(spec)
+    zf_axes = support
     out = {}
     for i, ax in enumerate(("rows", "cols")):
         other = zf_axes["cols" if ax == "rows" else "rows"].support_fraction
@@ -251,9 +251,9 @@ def detect(spec: sp.Spectrum) -> dict[str, AxisFit]:
     return out
 
 
-def trace_from(spec: sp.Spectrum) -> Trace:
+def trace_from(spec: sp.Spectrum, support: dict[str, zf.AxisSupport]) -> Trace:
     """Build the ``kspace_filtering`` trace from a spectrum."""
-    fits = detect(spec)
+    fits = detect(spec, support)
     evidence = {
         "profiles_db": sp.profile_db_evidence(spec),
         "fits": {
@@ -290,7 +290,8 @@ def trace_from(spec: sp.Spectrum) -> Trace:
 
 
 @register(TRACE_ID, version="1", order=50, default_estimates=DEFAULT_ESTIMATES)
-def analyse(volume: Volume, ctx: Any) -> Trace:
+def analyse(volume: Volume, *, spectrum: sp.Spectrum,
+            support: dict[str, zf.AxisSupport]) -> Trace:
     """Measure k-space apodization (see module docstring).
 
     References
@@ -298,7 +299,4 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
     .. [1] Harris, F. J. Proc. IEEE 66(1):51-83, 1978.
     .. [2] Bernstein, Fain and Riederer, J. Magn. Reson. Imaging 14:270-280, 2001.
     """
-    small = sp.too_small(volume)
-    if small:
-        return inconclusive(TRACE_ID, small)
-    return trace_from(sp.spectrum_of(volume, ctx))
+    return trace_from(spectrum, support)

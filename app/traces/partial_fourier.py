@@ -45,8 +45,8 @@ import numpy as np
 
 from app.io.volume import Volume
 from app.traces import spectrum as sp
-from app.traces import zero_filling as zf
-from app.traces.base import Trace, inconclusive, register
+from app.traces import support as zf
+from app.traces.base import Trace, register
 
 TRACE_ID = "partial_fourier"
 #: complex data: fractions below this are called partial Fourier
@@ -158,14 +158,14 @@ def _magnitude_axis(spec: sp.Spectrum, i: int, ax: str, other: float,
     return AxisFraction(ax, frac, True, "magnitude_step", (c - d, c + d), best, best)
 
 
-def detect(spec: sp.Spectrum) -> dict[str, AxisFraction]:
+def detect(spec: sp.Spectrum, support: dict[str, zf.AxisSupport]) -> dict[str, AxisFraction]:
     """Acquired fraction per axis (``rows``, ``cols``) from a spectrum.
 
     References
     ----------
     .. [1] Noll, Nishimura and Macovski, IEEE Trans. Med. Imaging 10:154-163, 1991.
     """
-    zf_axes = zf.detect(spec)
+    zf_axes = support
     complex_like = spec.complex_input or spec.domain == "kspace"
     out = {}
     for i, ax in enumerate(("rows", "cols")):
@@ -180,9 +180,9 @@ def detect(spec: sp.Spectrum) -> dict[str, AxisFraction]:
     return out
 
 
-def trace_from(spec: sp.Spectrum) -> Trace:
+def trace_from(spec: sp.Spectrum, support: dict[str, zf.AxisSupport]) -> Trace:
     """Build the ``partial_fourier`` trace from a spectrum."""
-    axes = detect(spec)
+    axes = detect(spec, support)
     estimates = {ax: {"fraction": round(a.fraction, 4)} for ax, a in axes.items()}
     evidence = {
         "profiles_db": sp.profile_db_evidence(spec),
@@ -214,7 +214,8 @@ def trace_from(spec: sp.Spectrum) -> Trace:
 
 
 @register(TRACE_ID, version="1", order=60, default_estimates=DEFAULT_ESTIMATES)
-def analyse(volume: Volume, ctx: Any) -> Trace:
+def analyse(volume: Volume, *, spectrum: sp.Spectrum,
+            support: dict[str, zf.AxisSupport]) -> Trace:
     """Measure partial Fourier sampling (see module docstring).
 
     References
@@ -222,7 +223,4 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
     .. [1] Noll, Nishimura and Macovski, IEEE Trans. Med. Imaging 10:154-163, 1991.
     .. [2] McGibney et al., Magn. Reson. Med. 30:51-59, 1993.
     """
-    small = sp.too_small(volume)
-    if small:
-        return inconclusive(TRACE_ID, small)
-    return trace_from(sp.spectrum_of(volume, ctx))
+    return trace_from(spectrum, support)

@@ -6,14 +6,8 @@ The contract is in ``shared/REPORT_CONTRACT.md`` (schema ``rawproof.report/1``);
 
 from __future__ import annotations
 
-import functools
-import importlib
 import math
-import pkgutil
 import threading
-import time
-import traceback
-from collections import deque
 from collections.abc import Callable
 from typing import Any
 
@@ -22,34 +16,18 @@ import numpy as np
 import app
 from app.io.volume import Volume
 from app.perf import tune_allocator
-from app.traces import base
-from app.traces.context import AnalysisContext, SharedStepBusy, waiting_allowed
+from app.traces import base, plan
+from app.traces.header import HeaderFacts
 
 SCHEMA = "rawproof.report/1"
-_SKIP = {"base", "context", "report", "previews", "jpeg_tables", "header"}
 _SEVERITY = {"present": 2, "inconclusive": 1, "absent": 0}
 
 ProgressFn = Callable[[str], None]
 
 
 def analysers() -> dict[str, base.Analyser]:
-    """Import every module of ``app.traces`` once and return the registry.
-
-    A new analyser is one new module that calls :func:`app.traces.base.register`;
-    nothing else needs to change.
-    """
-    _discover()
-    return base.registered()
-
-
-@functools.cache
-def _discover() -> None:
-    """Import the analyser modules (once per process: the package does not change)."""
-    import app.traces as pkg
-
-    for info in pkgutil.iter_modules(pkg.__path__):
-        if info.name not in _SKIP and not info.name.startswith("_"):
-            importlib.import_module(f"app.traces.{info.name}")
+    """The analysers of the plan (:data:`app.traces.plan.ANALYSERS`), in report order."""
+    return plan.analysers()
 
 
 def analyser_versions() -> dict[str, str]:
@@ -60,13 +38,17 @@ def analyser_versions() -> dict[str, str]:
 def verdict_of(traces: dict[str, dict]) -> str:
     """The contract's verdict rule.
 
-    ``processed`` when any trace is present, ``raw-like`` when every trace is
-    absent, else ``inconclusive``.
+    ``processed`` when any trace is present with origin ``processing`` (the default
+    when a trace carries no origin); ``raw-like`` when every trace is absent or
+    present only with origin ``acquisition`` (a property of a genuine acquisition,
+    such as partial Fourier delivered with its missing part as zeros); else
+    ``inconclusive``.
     """
-    statuses = [t["status"] for t in traces.values()]
-    if any(s == "present" for s in statuses):
+    statuses = [(t["status"], t.get("origin", "processing")) for t in traces.values()]
+    if any(s == "present" and o == "processing" for s, o in statuses):
         return "processed"
-    if statuses and all(s == "absent" for s in statuses):
+    if statuses and all(s == "absent" or (s == "present" and o == "acquisition")
+                        for s, o in statuses):
         return "raw-like"
     return "inconclusive"
 
@@ -113,13 +95,6 @@ def _jsonable(obj: Any) -> Any:
     return obj
 
 
-def _header_section(volume: Volume) -> dict[str, Any]:
-    from app.traces import header as header_mod
-
-    declared, notes = header_mod.provenance(volume)
-    return {"declared": declared, "notes": notes}
-
-
 def _input_section(volume: Volume, path: str, fmt: str, n_files: int) -> dict[str, Any]:
     return {
         "path": path,
@@ -130,43 +105,6 @@ def _input_section(volume: Volume, path: str, fmt: str, n_files: int) -> dict[st
         "domain": volume.domain,
         "value_type": volume.value_type,
     }
-
-
-def _run_threaded(registry: dict[str, Any], run_one: Callable[[str, Any], Any],
-                  threads: int) -> dict[str, Any]:
-    """Run ``run_one(tid, analyser)`` for every analyser on ``threads`` threads."""
-    queue: deque[tuple[str, Any, bool]] = deque((t, a, False) for t, a in registry.items())
-    lock = threading.Lock()
-    done: dict[str, Any] = {}
-    failure: list[BaseException] = []
-
-    def lane() -> None:
-        while True:
-            with lock:
-                if not queue or failure:
-                    return
-                tid, an, deferred = queue.popleft()
-            waiting_allowed(deferred)
-            try:
-                done[tid] = run_one(tid, an)
-            except SharedStepBusy:
-                with lock:
-                    queue.append((tid, an, True))
-            except BaseException as exc:  # noqa: BLE001 - re-raised in the caller's thread
-                with lock:
-                    failure.append(exc)
-            finally:
-                waiting_allowed(True)
-
-    pool = [threading.Thread(target=lane, name=f"analyser-{i}", daemon=True)
-            for i in range(threads)]
-    for th in pool:
-        th.start()
-    for th in pool:
-        th.join()
-    if failure:
-        raise failure[0]
-    return done
 
 
 def analyse_volume(
@@ -203,56 +141,23 @@ def analyse_volume(
         ``schema``, ``tool_version``, ``input``, ``verdict``, ``traces``,
         ``header``, ``warnings``, and ``timing`` (seconds per analyser).
     """
-    ctx = AnalysisContext(
-        volume, workers=workers, max_frames=max_frames, options=dict(options or {})
-    )
-    warnings: list[str] = []
-    try:
-        header = _header_section(volume)
-    except Exception as exc:  # noqa: BLE001 - a header we cannot interpret is not fatal
-        header = {"declared": {}, "notes": [f"header could not be interpreted: {exc}"]}
-    ctx.options.setdefault("header_declared", header["declared"])
-    registry = analysers()
     progress_lock = threading.Lock()
-    started: set[str] = set()
 
-    def run_one(tid: str, an: Any) -> tuple[dict, float]:
+    def said(tid: str) -> None:
         if progress:
-            with progress_lock:  # one line per analyser, also when it is run again
-                if tid not in started:
-                    started.add(tid)
-                    progress(f"{volume.name or path}: {tid}")
-        t0 = time.perf_counter()
-        try:
-            trace = an.func(volume, ctx)
-            if trace.id != tid:
-                raise RuntimeError(f"analyser returned trace id {trace.id!r}")
-            missing = set(an.default_estimates) - set(trace.estimates)
-            if missing:
-                raise RuntimeError(f"analyser left out required estimates {sorted(missing)}")
-        except Exception as exc:  # noqa: BLE001 - one failing analyser never sinks a report
-            trace = base.inconclusive(
-                tid,
-                f"The {tid} analyser failed on this input: {exc}",
-                error=f"{type(exc).__name__}: {exc}",
-                traceback=traceback.format_exc(limit=4)[-2000:],
-            )
-        return _jsonable(trace.to_dict()), round(time.perf_counter() - t0, 4)
+            with progress_lock:
+                progress(f"{volume.name or path}: {tid}")
 
-    # analysers are independent except for the shared steps behind ctx.cached, which
-    # computes each once; numpy and scipy release the GIL in their array work, so a
-    # second thread uses the second core. A thread does not wait for a shared step
-    # that the other thread is computing: the analyser goes to the back of the
-    # queue and is run again (waiting) after the rest.
-    threads = max(1, min(int(workers), len(registry)))
-    if threads > 1:
-        done = _run_threaded(registry, run_one, threads)
-    else:
-        done = {tid: run_one(tid, an) for tid, an in registry.items()}
-    traces = {tid: done[tid][0] for tid in registry}
-    timing = {tid: done[tid][1] for tid in registry}
-    # sorted: with analysers in threads, the order notes are added in is not fixed
-    warnings.extend(sorted(ctx.notes))
+    result = plan.execute(volume, extra_steps=["header"], workers=workers,
+                          max_frames=max_frames, options=options, progress=said)
+    traces_obj, seconds, steps = result.traces, result.seconds, result.steps
+    facts = steps["header"]
+    header = ({"declared": facts.declared, "notes": facts.notes}
+              if isinstance(facts, HeaderFacts) else
+              {"declared": {}, "notes": [f"header could not be interpreted: {facts}"]})
+    traces = {tid: _jsonable(t.to_dict()) for tid, t in traces_obj.items()}
+    timing = {k: v for k, v in seconds.items()}
+    warnings: list[str] = list(result.notes)
     report = {
         "schema": SCHEMA,
         "tool_version": app.__version__,
@@ -264,7 +169,7 @@ def analyse_volume(
         "header": _jsonable(header),
         "warnings": warnings,
         "caution": app.CAUTION,
-        "analyser_versions": {tid: a.version for tid, a in registry.items()},
+        "analyser_versions": analyser_versions(),
         "timing": timing,
     }
     return report

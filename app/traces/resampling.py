@@ -67,10 +67,11 @@ import scipy.fft as sfft
 from scipy import ndimage
 
 from app.io.volume import Volume
-from app.traces import lossy_compression
 from app.traces import spectrum as sp
 from app.traces.base import Trace, inconclusive, register
-from app.traces.context import evenly_spaced
+from app.traces.context import Notes, Scope, evenly_spaced
+from app.traces.jpeg_pixels import PixelFinding
+from app.traces.support import FOUND_SUPPORT, AxisSupport
 
 TRACE_ID = "resampling"
 #: Kirchner's fixed linear predictor (MM&Sec 2008, section 4), the fallback
@@ -212,8 +213,8 @@ def pmap(image: np.ndarray, predictor: np.ndarray | None = None) -> np.ndarray:
     return np.where(valid, p, fill)
 
 
-def _frames(volume: Volume, ctx: Any) -> tuple[list[np.ndarray], list[str]]:
-    idx = np.asarray(ctx.frame_indices())
+def _frames(volume: Volume, scope: Scope) -> tuple[list[np.ndarray], list[str]]:
+    idx = np.asarray(scope.frames)
     notes = []
     # one frame in eight, at least MIN_FRAMES, at most MAX_FRAMES
     keep = min(MAX_FRAMES, max(MIN_FRAMES, int(np.ceil(len(idx) / 8))))
@@ -221,7 +222,7 @@ def _frames(volume: Volume, ctx: Any) -> tuple[list[np.ndarray], list[str]]:
         idx = evenly_spaced(idx, keep)
         notes.append(f"resampling analysed {len(idx)} of {volume.n_slices} frames, evenly spaced")
     frames = []
-    for _, block in volume.iter_slices(ctx.batch, indices=idx):
+    for _, block in volume.iter_slices(scope.batch, indices=idx):
         for f in block:
             img = np.abs(f) if np.iscomplexobj(f) else f
             if img.ndim == 3:  # coils: root-sum-of-squares
@@ -435,7 +436,9 @@ def trace_from(result: ResamplingResult) -> Trace:
 
 
 @register(TRACE_ID, version="1", order=55, default_estimates=DEFAULT_ESTIMATES)
-def analyse(volume: Volume, ctx: Any) -> Trace:
+def analyse(volume: Volume, *, scope: Scope, notes: Notes,
+            jpeg_pixels: PixelFinding | None = None,
+            support: dict[str, AxisSupport] | None = None) -> Trace:
     """Detect grid resampling (Kirchner 2008; see module docstring).
 
     References
@@ -450,25 +453,19 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
         return Trace(TRACE_ID, "absent", 0.5,
                      "k-space input: no image grid to have been resampled.",
                      {"rows": {"factor": 1.0}, "cols": {"factor": 1.0}}, {})
-    frames, notes = _frames(volume, ctx)
-    for note in notes:
-        ctx.note(note)
+    frames, subset = _frames(volume, scope)
+    for note in subset:
+        notes.add(note)
     if min(frames[0].shape) < 16:
         return Trace(TRACE_ID, "inconclusive", 0.0, "The image is too small to test.",
                      dict(DEFAULT_ESTIMATES), {})
-    ratio = spectrum_ratio(frames, workers=ctx.workers)
-    # the shared findings below are waited for: the costly p-maps are done already
-    with ctx.waiting():
-        # when the JPEG test found 8 x 8 blocks in the pixels (shared with the lossy
-        # analyser), their 1/8-periodic peaks are not counted as interpolation
-        try:
-            jpeg = lossy_compression.jpeg_pixels_of(volume, ctx)
-        except Exception:  # noqa: BLE001 - the lossy analyser reports its own failure
-            jpeg = None
-        # zero-filling k-space by s is interpolation by s (a sinc kernel): its
-        # periodicity is already reported by the zero_filling trace, not counted twice
-        explained = _zero_fill_explained(volume, ctx)
-    blocks = bool(jpeg is not None and getattr(jpeg, "status", None) == "present")
+    ratio = spectrum_ratio(frames, workers=scope.workers)
+    # when the JPEG test found 8 x 8 blocks in the pixels (the shared step the lossy
+    # analyser reports), their 1/8-periodic peaks are not counted as interpolation;
+    # zero-filling k-space by s is interpolation by s (a sinc kernel): its
+    # periodicity is already reported by the zero_filling trace, not counted twice
+    explained = _zero_fill_explained(support)
+    blocks = bool(jpeg_pixels is not None and jpeg_pixels.status == "present")
     trace = trace_from(find_peaks(ratio, len(frames), exclude_block_grid=blocks,
                                   explained=explained))
     trace.evidence["block_grid_excluded"] = blocks
@@ -483,18 +480,14 @@ def analyse(volume: Volume, ctx: Any) -> Trace:
     return trace
 
 
-def _zero_fill_explained(volume: Volume, ctx: Any) -> dict[str, float]:
+def _zero_fill_explained(support: dict[str, AxisSupport] | None) -> dict[str, float]:
     """``rows``/``cols`` -> p-map frequency explained by the zero-filling found, if any."""
-    from app.traces import zero_filling as zf
-
-    try:
-        axes = zf.detect(sp.spectrum_of(volume, ctx))
-    except Exception:  # noqa: BLE001 - the zero_filling analyser reports its own failure
+    if support is None:
         return {}
     out = {}
     for ax in ("rows", "cols"):
-        a = axes.get(ax)
-        if a is not None and a.found and a.support_fraction < zf.FOUND_SUPPORT \
+        a = support.get(ax)
+        if a is not None and a.found and a.support_fraction < FOUND_SUPPORT \
                 and a.padding_factor > 1.05:
             out[ax] = zero_fill_frequency(a.padding_factor)
     return out

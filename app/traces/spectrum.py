@@ -6,8 +6,8 @@ accumulates per-axis energy profiles (averaged over frames and over the other
 axis). Only the profiles, one representative power map and, for 3D volumes, a
 through-plane profile from a subset of columns are kept, so memory stays bounded.
 
-The spectral analysers (zero-filling, k-space filtering, partial Fourier) read
-the result through :func:`spectrum_of`, which caches it on the analysis context.
+The spectral analysers (zero-filling, k-space filtering, partial Fourier) take
+the result from the analysis plan's ``spectrum`` step (:func:`spectrum_step`).
 
 References
 ----------
@@ -72,9 +72,6 @@ class Spectrum:
     noise_floor_db : dict
         Axis -> level (dB) of the mean-power profile's outermost sixteenth, the floor
         the spectrum reaches at the edge of k-space.
-    derived : dict
-        Results that analysers derive from this spectrum and share (for example the
-        zero-filling support, which k-space filtering and partial Fourier reuse).
     """
 
     shape: tuple[int, int]
@@ -90,7 +87,6 @@ class Spectrum:
     kspace_shifted: bool | None = None
     notes: list[str] = field(default_factory=list)
     noise_floor_db: dict[str, float] = field(default_factory=dict)
-    derived: dict[str, Any] = field(default_factory=dict, repr=False)
 
 
 def to_db(power: Any) -> np.ndarray:
@@ -351,25 +347,36 @@ def noise_floor_db(profile: Any, fraction: float = 1 / 16) -> float:
     return float(np.median(np.r_[db[:m], db[len(db) - m:]]))
 
 
-def spectrum_of(volume: Volume, ctx: Any) -> Spectrum:
-    """The Volume's :class:`Spectrum`, computed once per analysis context.
+def spectrum_step(volume: Volume, scope: Any, notes: Any) -> Spectrum:
+    """The shared step: the Volume's :class:`Spectrum` over the analysed frames.
 
     Parameters
     ----------
     volume : Volume
-    ctx : AnalysisContext
-        Supplies ``workers``, ``batch``, ``frame_indices()`` and ``cached()``.
+    scope : Scope
+        Supplies ``frames``, ``batch`` and ``workers``.
+    notes : Notes
+        Receives the spectrum's own notes (stated subsampling, skipped axes).
 
-    Returns
-    -------
-    Spectrum
+    Raises
+    ------
+    StepUnavailableError
+        When the frames are too small for a spectral analysis.
+
+    References
+    ----------
+    .. [1] Bracewell, R. N. *The Fourier Transform and Its Applications*, 2000.
     """
-    return ctx.cached(
-        "spectrum",
-        lambda: compute_spectrum(
-            volume, frame_indices=ctx.frame_indices(), batch=ctx.batch, workers=ctx.workers
-        ),
-    )
+    from app.traces.base import StepUnavailableError
+
+    small = too_small(volume)
+    if small:
+        raise StepUnavailableError(small)
+    spec = compute_spectrum(volume, frame_indices=scope.frames, batch=scope.batch,
+                            workers=scope.workers)
+    for note in spec.notes:
+        notes.add(note)
+    return spec
 
 
 # ----- evidence helpers -------------------------------------------------------------------

@@ -1,0 +1,365 @@
+"""The acquired region of k-space per axis (a shared step).
+
+Interpolation by zero-filling pads the acquired k-space with zeros before the
+inverse FFT. A complex image keeps exact zeros outside the acquired region; a
+magnitude or root-sum-of-squares image does not, because the magnitude step is
+nonlinear and spreads a low, structured echo (up to twice the acquired width)
+outside it. Either way the mean log-power of the spectrum falls in a sharp step
+at the edge of the acquired region and stays below the in-band level beyond it.
+
+Method: the frame-averaged log-power map (one FFT pass, :mod:`app.traces.spectrum`)
+is read line by line along the axis, over a band of the other axis's frequencies
+inside its acquired region that avoids its DC line (where the object's straight
+edges put ripples), and the lines are combined by their median. Each outward side
+of that profile is scored for a sustained level drop: the median level after a
+candidate edge against the median before it, less the decay that a line fitted
+before it predicts (a smooth decay scores low, a ripple that recovers scores
+low). An edge must also show in the inner and the outer half of the band at the
+same place (the edge of zero-filled k-space is a straight line in the map, a ring
+of the object's spectrum is not) and, when its drop is below 9 dB (what smooth
+roll-offs of the object reach), at the same distance within 2 samples or 4 % in
+both halves (a ring sits closer to DC in the outer half). It is placed where the
+profile has fallen
+30 % of the drop, with sub-sample interpolation. The support fraction is the width
+between the two edges over the axis size, the padding factor its inverse. A second
+edge at twice the distance (the end of the magnitude echo) is recognised as such.
+Magnitude images broaden the visible support by the bandwidth of the object's
+phase (about a sample per side); complex data give it to the sample.
+
+References
+----------
+.. [1] Bernstein, M. A., Fain, S. B. and Riederer, S. J. "Effect of windowing and
+   zero-filled reconstruction of MRI data on spatial resolution and acquisition
+   strategy", J. Magn. Reson. Imaging 14(3):270-280, 2001.
+.. [2] Canny, J. "A computational approach to edge detection", IEEE Trans. PAMI
+   8(6):679-698, 1986 (step detection against a local model).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from app.traces import spectrum as sp
+
+#: a step of at least this many dB (median over the band) marks an edge
+STEP_THRESHOLD_DB = 4.5
+#: band of the other axis assumed before it is measured (fraction of its size)
+DEFAULT_BAND_SUPPORT = 0.4
+#: an edge at half the distance of the best one is the true edge (the best one the end
+#: of the magnitude echo) when its score reaches this fraction of the best score
+HALF_RULE_RATIO = 0.6
+#: the edge may sit this many samples apart in the two halves of the band (at most)
+HALVES_TOLERANCE = 2.0
+HALVES_RELATIVE = 0.04
+#: drops at least this large skip that check (no smooth roll-off seen reaches it)
+RING_CHECK_BELOW_DB = 9.0
+#: the edge is where the profile has fallen this fraction of the drop
+CROSSING_LEVEL = 0.3
+#: support fractions below this are not searched (padding above 5x)
+MIN_SUPPORT = 0.2
+#: an axis counts as zero-filled when its acquired region is below this share
+FOUND_SUPPORT = 0.985
+
+
+@dataclass
+class AxisSupport:
+    """The acquired region found along one axis.
+
+    Attributes
+    ----------
+    axis : str
+    size : int
+        Samples along the axis.
+    found : bool
+        Whether a step edge was found.
+    support_fraction : float
+        Width of the acquired region over ``size`` (1.0 when none was found).
+    edges : tuple of int or None
+        First and last index (centred order) inside the region.
+    drop_db : float or None
+        Level drop across the edge.
+    score_db : float
+        Strongest step score (dB) on this axis.
+    noise_floor_db : float or None
+        Level (mean power, dB) of the outer part of the region.
+    asymmetry : float
+        For complex input: positive-side minus negative-side extent, in samples.
+    x_pos, x_neg : float or None
+        Distance from DC of the edge on the positive / negative side (None: no edge
+        on that side), each side judged on its own.
+    """
+
+    axis: str
+    size: int
+    found: bool
+    support_fraction: float
+    edges: tuple[int, int] | None
+    drop_db: float | None
+    score_db: float
+    noise_floor_db: float | None
+    asymmetry: float = 0.0
+    x_pos: float | None = None
+    x_neg: float | None = None
+
+    @property
+    def padding_factor(self) -> float:
+        return 1.0 / self.support_fraction
+
+
+def line_window(n: int) -> int:
+    """Samples per fitted line: 4 to 8, fewer on short axes so that the windows fit."""
+    w = int(np.clip(round(n / 40), 4, 8))
+    return int(max(2, min(w, (n // 2 - 2) // 6)))
+
+
+def band_lines(mean_log: np.ndarray, axis: int, other_support: float = 0.4) -> np.ndarray:
+    """Lines along ``axis`` over a band of the other axis that avoids its DC line.
+
+    The band spans ``|k| / m`` from ``other_support / 16`` to ``0.4 * other_support``,
+    inside the other axis's acquired region (assumed 0.4 until it is measured). Lines
+    that are empty (more than 40 dB below the strongest line of the band: the missing
+    side of partial-Fourier complex data) are left out.
+    """
+    a = mean_log if axis == 0 else mean_log.T
+    m = a.shape[1]
+    cm = m // 2
+    lo = max(1, int(round(m * other_support / 16)))
+    hi = max(lo + 1, int(round(m * other_support * 0.4)))
+    cols = np.r_[cm - hi:cm - lo + 1, cm + lo:min(m, cm + hi + 1)]
+    cols = cols[(cols >= 0) & (cols < m)]
+    level = np.median(a[:, cols], axis=0)
+    keep = cols[level >= level.max() - 40.0]
+    return a[:, keep]
+
+
+def edge_scores(prof: np.ndarray, w: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Sustained, trend-corrected level drop after each sample of an outward side.
+
+    ``drop[d]`` is the median level of the ``v = 2 w`` samples ending at ``d`` minus
+    that of the ``v`` samples starting at ``d + 2``: a zero-filled edge keeps the level
+    low beyond it, while a ripple of the object's spectrum recovers within a few
+    samples. The decay that a line fitted to the ``2 v`` samples before ``d`` predicts
+    over the same distance is subtracted, so that a steep natural decay scores low.
+
+    Returns ``(score, inside, outside)``, NaN where the windows do not fit.
+    """
+    n = len(prof)
+    v = 2 * w
+    score = np.full(n, np.nan)
+    inside = np.full(n, np.nan)
+    outside = np.full(n, np.nan)
+    if n < 3 * v + 2:
+        return score, inside, outside
+    med = np.median(np.lib.stride_tricks.sliding_window_view(prof, v), axis=1)
+    fit = np.lib.stride_tricks.sliding_window_view(prof, 2 * v)
+    xc = np.arange(2 * v) - (2 * v - 1) / 2.0
+    slope = fit @ xc / float((xc**2).sum())  # slope[k] over [k, k + 2v - 1]
+    d = np.arange(2 * v - 1, n - v - 1)
+    inside[d] = med[d - v + 1]
+    outside[d] = med[d + 2]
+    trend = np.maximum(0.0, -slope[d - 2 * v + 1] * (v + 1.5))
+    score[d] = inside[d] - outside[d] - trend
+    return score, inside, outside
+
+
+def crossing(prof: np.ndarray, d: int, w: int, mid: float) -> float:
+    """Sub-sample distance from DC where the profile first falls below ``mid`` near ``d``.
+
+    The profile is smoothed by a 3-sample median first; the crossing is interpolated
+    linearly between the last sample above and the first below.
+    """
+    n = len(prof)
+    v = 2 * w
+    sm = prof.copy()
+    sm[1:-1] = np.median(np.stack([prof[:-2], prof[1:-1], prof[2:]]), axis=0)
+    lo, hi = max(1, d - v), min(n - 1, d + v)
+    below = np.nonzero(sm[lo:hi + 1] < mid)[0]
+    if len(below) == 0:
+        return d + 0.5
+    k = lo + int(below[0])
+    a, b = sm[k - 1], sm[k]
+    frac = (a - mid) / (a - b) if a > b else 0.5
+    return k - 1 + float(np.clip(frac, 0.0, 1.0))
+
+
+def _side_scores(
+    prof: np.ndarray, n: int, w: int, halves: tuple[np.ndarray, np.ndarray] | None
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Edge scores of one outward side (NaN where not searched), inside and outside levels.
+
+    With ``halves`` (the profiles of the inner and outer halves of the band), an edge
+    must show in both at the same place: the edge of zero-filled k-space is a straight
+    line across the band, a ring of the object's spectrum is not.
+    """
+    dmin = max(w, int(np.ceil(MIN_SUPPORT * n / 2)))
+    score, inside, outside = edge_scores(prof, w)
+    if halves is not None:
+        near = [np.fmax(np.fmax(h, np.roll(h, 1)), np.roll(h, -1))
+                for h in (edge_scores(hp, w)[0] for hp in halves)]
+        score = np.minimum(score, 2.0 * np.minimum(near[0], near[1]))
+    score[:dmin] = np.nan
+    return score, inside, outside
+
+
+def _side_edge(
+    prof: np.ndarray, n: int, w: int, halves: tuple[np.ndarray, np.ndarray] | None = None
+) -> tuple[float | None, float, float | None]:
+    """Best edge on one outward side: (crossing distance or None, best score, drop)."""
+    score, inside, outside = _side_scores(prof, n, w, halves)
+    if not np.any(np.isfinite(score)):
+        return None, float("-inf"), None
+    d = int(np.nanargmax(score))
+    best = float(score[d])
+    if best < STEP_THRESHOLD_DB:
+        return None, best, None
+    # the magnitude echo ends at twice the acquired extent: prefer the inner edge
+    half = (d + 1) // 2
+    lo, hi = max(0, half - 3), min(len(score), half + 3)
+    if hi > lo and np.any(np.isfinite(score[lo:hi])):
+        j = lo + int(np.nanargmax(score[lo:hi]))
+        if score[j] >= max(STEP_THRESHOLD_DB, HALF_RULE_RATIO * best):
+            d = j
+    # the echo just outside a magnitude image's region is strongest near the edge, so
+    # the crossing level sits nearer the in-band level than the mid-point
+    level = inside[d] - CROSSING_LEVEL * (inside[d] - outside[d])
+    x = crossing(prof, d, w, level)
+    if halves is not None and inside[d] - outside[d] < RING_CHECK_BELOW_DB:
+        # a straight edge sits at the same distance in both halves of the band; a ring
+        # of the object's spectrum sits closer to DC in the outer half (checked for
+        # the weaker drops a smooth roll-off of the object can produce)
+        xs = []
+        for hp in halves:
+            _, h_in, h_out = edge_scores(hp, w)
+            if not (np.isfinite(h_in[d]) and np.isfinite(h_out[d])):
+                return None, best, None
+            xs.append(crossing(hp, d, w, h_in[d] - CROSSING_LEVEL * (h_in[d] - h_out[d])))
+        if abs(xs[0] - xs[1]) > max(HALVES_TOLERANCE, HALVES_RELATIVE * x):
+            return None, best, None
+    return x, best, float(inside[d] - outside[d])
+
+
+def axis_support(
+    lines_db: np.ndarray, power_profile: np.ndarray, *, axis: str, symmetric: bool
+) -> AxisSupport:
+    """Find the acquired region along one axis.
+
+    Parameters
+    ----------
+    lines_db : ndarray
+        ``(n,)`` or ``(n, m)``: log-power (dB) lines along the axis, centred order.
+    power_profile : ndarray
+        ``(n,)`` mean power profile (for the noise-floor evidence).
+    axis : str
+    symmetric : bool
+        Whether the spectrum is Hermitian-symmetric (real-valued images), so one side
+        describes both.
+
+    Returns
+    -------
+    AxisSupport
+
+    References
+    ----------
+    .. [1] Bernstein, Fain and Riederer, J. Magn. Reson. Imaging 14:270-280, 2001.
+    """
+    lines = lines_db if lines_db.ndim == 2 else lines_db[:, None]
+    n = lines.shape[0]
+    c = n // 2
+    w = line_window(n)
+    pos, neg = lines[c:], lines[c::-1]
+    p_pos, p_neg = np.median(pos, axis=1), np.median(neg, axis=1)
+    h_pos = h_neg = None
+    if lines.shape[1] >= 8:
+        # band columns run from the outer negative end to the outer positive end
+        order = np.argsort(np.abs(np.arange(lines.shape[1]) - (lines.shape[1] - 1) / 2))
+        inner, outer = order[: len(order) // 2], order[len(order) // 2:]
+        h_pos = (np.median(pos[:, inner], axis=1), np.median(pos[:, outer], axis=1))
+        h_neg = (np.median(neg[:, inner], axis=1), np.median(neg[:, outer], axis=1))
+    if symmetric:
+        # one side holds everything; the positive side is one sample shorter for even n
+        p_neg, h_neg = p_pos, h_pos
+    x_pos, s_pos, drop_pos = _side_edge(p_pos, n, w, h_pos)
+    x_neg, s_neg, drop_neg = (x_pos, s_pos, drop_pos) if symmetric else _side_edge(
+        p_neg, n, w, h_neg)
+    score = max(s_pos, s_neg)
+    prof_db = sp.to_db(power_profile)
+    if x_pos is None or x_neg is None or drop_pos is None or drop_neg is None:
+        return AxisSupport(axis, n, False, 1.0, None, None, score,
+                           sp.noise_floor_db(power_profile), x_pos=x_pos, x_neg=x_neg)
+    width = min(float(n), x_pos + x_neg)
+    hi = min(n - 1, c + int(np.floor(x_pos)))
+    lo = max(0, c - int(np.floor(x_neg)))
+    inner = prof_db[max(lo, c - int(0.9 * x_neg)):min(hi, c + int(0.9 * x_pos)) + 1]
+    edge = max(1, (hi - lo) // 20)
+    band = np.r_[prof_db[lo:lo + edge], prof_db[hi - edge + 1:hi + 1]]
+    noise_floor = float(np.median(band)) if band.size else float(np.median(inner))
+    return AxisSupport(
+        axis,
+        n,
+        True,
+        width / n,
+        (lo, hi),
+        min(drop_pos, drop_neg),
+        score,
+        noise_floor,
+        asymmetry=float(x_pos - x_neg),
+        x_pos=x_pos,
+        x_neg=x_neg,
+    )
+
+
+def detect(spec: sp.Spectrum) -> dict[str, AxisSupport]:
+    """Per-axis acquired regions from a :class:`~app.traces.spectrum.Spectrum`.
+
+    Returns
+    -------
+    dict
+        ``rows``, ``cols`` (and ``slices`` when the spectrum has a through-plane
+        profile) -> :class:`AxisSupport`.
+
+    References
+    ----------
+    .. [1] Bernstein, Fain and Riederer, J. Magn. Reson. Imaging 14:270-280, 2001.
+    """
+    symmetric = not spec.complex_input and spec.domain == "image"
+    out: dict[str, AxisSupport] = {}
+    # the band of the other axis must sit inside that axis's acquired region, which
+    # is not known yet: a first pass assumes a band that fits padding up to 2.5x, a
+    # second uses what the first found (the whole axis where nothing was: a wide band
+    # keeps the object's rings out), a third retries an axis still without an edge
+    # inside a narrower region found on the other axis
+    def run(i: int, ax: str, other_support: float) -> AxisSupport:
+        return axis_support(band_lines(spec.mean_log, i, other_support), spec.profiles[ax],
+                            axis=ax, symmetric=symmetric)
+
+    names = ("rows", "cols")
+    first = {ax: run(i, ax, DEFAULT_BAND_SUPPORT) for i, ax in enumerate(names)}
+    for i, ax in enumerate(names):
+        out[ax] = run(i, ax, first[names[1 - i]].support_fraction)
+    for i, ax in enumerate(names):
+        other = out[names[1 - i]]
+        if not out[ax].found and other.found and other.support_fraction < DEFAULT_BAND_SUPPORT:
+            retry = run(i, ax, other.support_fraction)
+            if retry.found:
+                out[ax] = retry
+    if "slices" in spec.log_profiles:
+        out["slices"] = axis_support(
+            spec.log_profiles["slices"], spec.profiles["slices"], axis="slices",
+            symmetric=symmetric,
+        )
+    return out
+
+
+def support_step(spectrum: sp.Spectrum) -> dict[str, AxisSupport]:
+    """The shared step: per-axis acquired regions of the dataset's spectrum.
+
+    Computed once by the analysis plan and handed to ``zero_filling``,
+    ``kspace_filtering``, ``partial_fourier`` and ``resampling``.
+
+    References
+    ----------
+    .. [1] Bernstein, Fain and Riederer, J. Magn. Reson. Imaging 14:270-280, 2001.
+    """
+    return detect(spectrum)
