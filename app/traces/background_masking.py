@@ -32,7 +32,7 @@ import numpy as np
 from scipy import ndimage
 
 from app.io.volume import Volume
-from app.traces.background import Background, constant_share
+from app.traces.background import MASKED_SHARE, Background, constant_share
 from app.traces.base import Trace, inconclusive, register
 
 TRACE_ID = "background_masking"
@@ -106,6 +106,9 @@ def analyse(volume: Volume, *, background: Background) -> Trace:
         "nan_fraction": float(f"{bg.nan_fraction:.4g}"),
     }
     estimates = {"zero_background_fraction": evidence["zero_background_fraction"]}
+    evidence["decision"] = {"statistic": "constant_background_share", "value": const.share,
+                            "threshold": MASKED_SHARE, "false_alarm_rate": None,
+                            "p_value": None}
     if const.masked:
         kind = ("masked or skull-stripped, a noise-free simulation, or air flattened by "
                 "lossy compression" if const.share >= 0.999

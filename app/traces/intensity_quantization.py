@@ -302,6 +302,18 @@ def _histogram(stats: LevelStats) -> dict[str, Any]:
             "counts": [int(x) for x in counts]}
 
 
+def _decision(distinct: int, comb: float, clipped: float) -> dict[str, Any]:
+    """The number the call rests on, for calibration: the largest of three margins,
+    each zero at its own threshold and positive beyond it: ``log2(256 / levels)``
+    (fewer levels than 8 bits hold), ``(comb - 0.08) / 0.08`` (share of empty levels in
+    the used range) and ``log10(clipped / 0.002)`` (samples piled on an end value)."""
+    margins = [np.log2(SQUEEZED_LEVELS / max(distinct, 1)),
+               (comb - COMB_SCORE) / COMB_SCORE,
+               np.log10(max(clipped, 1e-12) / CLIP_FRACTION)]
+    return {"statistic": "quantisation_margin", "value": float(max(margins)), "threshold": 0.0,
+            "false_alarm_rate": None, "p_value": None}
+
+
 @register(TRACE_ID, version="1", order=70,
           default_estimates={"distinct_levels": None, "effective_bits": None,
                              "clipped_fraction": None})
@@ -378,6 +390,7 @@ def analyse(volume: Volume, *, scope: Scope, background: Background | None = Non
     }
     estimates = {"distinct_levels": stats.distinct, "effective_bits": round(eff, 2),
                  "clipped_fraction": float(f"{clipped:.4g}")}
+    evidence["decision"] = _decision(stats.distinct, score, clipped)
     findings = []
     if squeezed:
         of = f" of the {bits} bits stated" if bits else ""

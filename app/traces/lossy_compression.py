@@ -28,7 +28,7 @@ import numpy as np
 from app.io.volume import Volume
 from app.traces.base import Trace, register
 from app.traces.header import HeaderFacts
-from app.traces.jpeg_pixels import MAX_FIT_ERROR, PixelFinding, trimmed_match
+from app.traces.jpeg_pixels import MAX_FIT_ERROR, MIN_MEASURED, PixelFinding, trimmed_match
 from app.traces.jpeg_tables import scaled_table
 
 TRACE_ID = "lossy_compression"
@@ -276,7 +276,22 @@ def combine(pix: PixelFinding, head: HeaderFinding) -> Trace:
             conf = 0.3
         estimates = dict(DEFAULTS)
     evidence["disagreement"] = disagreement
+    evidence["decision"] = decision_statistic(pix, head)
     return Trace(TRACE_ID, status, conf, summary, estimates, evidence)
+
+
+#: A declaration of lossy coding outranks any count of quantised frequencies (64 at most).
+DECLARED_VALUE = 65.0
+
+
+def decision_statistic(pix: PixelFinding, head: HeaderFinding) -> dict[str, Any]:
+    """The number the call rests on, for calibration: DCT frequencies that show a JPEG
+    quantiser step on the best 8 x 8 grid (0-64), or 65 when the header declares lossy
+    coding (a declaration is the stronger evidence; DICOM PS3.3 C.7.6.1.1.5)."""
+    measured = float(pix.grid.n_measured) if pix.grid is not None else None
+    value = DECLARED_VALUE if head.lossy else measured
+    return {"statistic": "quantised_dct_frequencies", "value": value,
+            "threshold": float(MIN_MEASURED), "false_alarm_rate": None, "p_value": None}
 
 
 @register(TRACE_ID, version="1", order=50, default_estimates=DEFAULTS)
