@@ -278,3 +278,30 @@ def test_threaded_analysis_gives_the_sequential_report():
     assert reports[0]["traces"]["zero_filling"]["status"] == "present"
     assert json.dumps(reports[1], sort_keys=True) == json.dumps(reports[0], sort_keys=True)
     assert json.dumps(reports[2], sort_keys=True) == json.dumps(reports[0], sort_keys=True)
+
+
+def test_confidence_is_the_calibration_maps_probability(monkeypatch):
+    """With a map fitted on (statistic, truth) pairs, a present call's confidence is the
+    map's P(present | statistic) and an absent call's is 1 - P; without a statistic the
+    analyser's own probability stays, and the basis says which (isotonic calibration,
+    Zadrozny and Elkan 2002: the map is the observed frequency of the positive class)."""
+    from app.traces import calibration
+    from app.traces.report import calibrated
+
+    # truth: statistic below 0 -> never present, above 1 -> always present
+    values = [-2.0] * 50 + [2.0] * 50
+    present = [False] * 50 + [True] * 50
+    cmap = calibration.fit_map(values, present, statistic="s")
+    monkeypatch.setattr(calibration, "load_maps", lambda: {"t": cmap})
+    dec = {"statistic": "s", "value": 2.0}
+    hi = calibrated(base.Trace("t", "present", 0.5, "x", {}, {"decision": dict(dec)}))
+    assert hi.confidence == pytest.approx(cmap(2.0)) and hi.confidence > 0.95
+    lo = calibrated(base.Trace("t", "absent", 0.5, "x", {},
+                               {"decision": {"statistic": "s", "value": -2.0}}))
+    assert lo.confidence == pytest.approx(1 - cmap(-2.0)) and lo.confidence > 0.95
+    assert lo.evidence["confidence_basis"].startswith("calibration map")
+    wrong = calibrated(base.Trace("t", "absent", 0.5, "x", {},
+                                  {"decision": {"statistic": "s", "value": 2.0}}))
+    assert wrong.confidence < 0.05
+    bare = calibrated(base.Trace("t", "present", 0.42, "x", {}, {}))
+    assert bare.confidence == 0.42 and bare.evidence["confidence_basis"].startswith("analyser")

@@ -16,7 +16,7 @@ import numpy as np
 import app
 from app.io.volume import Volume
 from app.perf import tune_allocator
-from app.traces import base, plan
+from app.traces import base, calibration, plan
 from app.traces.header import HeaderFacts
 
 SCHEMA = "rawproof.report/1"
@@ -95,6 +95,28 @@ def _jsonable(obj: Any) -> Any:
     return obj
 
 
+def calibrated(trace: base.Trace) -> base.Trace:
+    """The trace with its confidence turned into a calibrated probability.
+
+    Where the trace states its decision statistic (``evidence["decision"]``) and a
+    calibration map was fitted for it (:mod:`app.traces.calibration`, on the
+    in-sample generator and the second simulator's development split only), the
+    confidence is the map's probability that the reported status is right; else it
+    stays the analyser's own model-based probability. ``evidence["confidence_basis"]``
+    says which.
+    """
+    dec = trace.evidence.get("decision") if isinstance(trace.evidence, dict) else None
+    value = dec.get("value") if isinstance(dec, dict) else None
+    basis = "analyser's own probability model"
+    if value is not None and trace.status in ("present", "absent"):
+        p = calibration.probability_present(trace.id, value, statistic=dec.get("statistic"))
+        if p is not None:
+            trace.confidence = p if trace.status == "present" else 1.0 - p
+            basis = "calibration map fitted on development data"
+    trace.evidence["confidence_basis"] = basis
+    return trace
+
+
 def _input_section(volume: Volume, path: str, fmt: str, n_files: int) -> dict[str, Any]:
     return {
         "path": path,
@@ -155,7 +177,7 @@ def analyse_volume(
     header = ({"declared": facts.declared, "notes": facts.notes}
               if isinstance(facts, HeaderFacts) else
               {"declared": {}, "notes": [f"header could not be interpreted: {facts}"]})
-    traces = {tid: _jsonable(t.to_dict()) for tid, t in traces_obj.items()}
+    traces = {tid: _jsonable(calibrated(t).to_dict()) for tid, t in traces_obj.items()}
     timing = {k: v for k, v in seconds.items()}
     warnings: list[str] = list(result.notes)
     report = {
