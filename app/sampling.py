@@ -69,6 +69,51 @@ _PARAMS = {
 _AXES = {"rows": 0, "cols": 1}
 
 
+def support_from_report(report: dict[str, Any]) -> dict[str, Any]:
+    """The image size and true k-space support of a rawproof report (its contract dict).
+
+    The one rule the ``sampling`` command and the web page's calculator share: the
+    last two entries of ``input.shape``, and per in-plane axis the ``zero_filling``
+    trace's ``support_fraction`` estimate, 1.0 (the full grid) where the report
+    has none or a value outside (0, 1].
+
+    Parameters
+    ----------
+    report : dict
+        A report of ``shared/REPORT_CONTRACT.md``.
+
+    Returns
+    -------
+    dict
+        ``shape`` ([rows, cols]), ``support`` ([rows, cols] fractions) and
+        ``zero_filling_status`` (the trace's status, or None).
+
+    Raises
+    ------
+    InputError
+        ``not_a_report`` when the report says no image size of two axes or more.
+    """
+    if not isinstance(report, dict) or "error" in report:
+        raise InputError("not_a_report", "the file is not a rawproof report with results")
+    shape = (report.get("input") or {}).get("shape") if isinstance(report.get("input"),
+                                                                   dict) else None
+    try:
+        size = [int(n) for n in shape[-2:]] if isinstance(shape, list) and len(shape) >= 2 \
+            else None
+    except (TypeError, ValueError):
+        size = None
+    if size is None:
+        raise InputError("not_a_report", "the report does not say the image size")
+    trace = ((report.get("traces") or {}).get("zero_filling") or {})
+    est = trace.get("estimates") or {}
+    support = []
+    for axis in ("rows", "cols"):
+        entry = est.get(axis)
+        f = entry.get("support_fraction") if isinstance(entry, dict) else None
+        support.append(float(f) if isinstance(f, int | float) and 0 < f <= 1 else 1.0)
+    return {"shape": size, "support": support, "zero_filling_status": trace.get("status")}
+
+
 def default_parameters(family: str) -> dict[str, Any]:
     """The parameters a family takes (``calib`` included) with their defaults."""
     if family not in FAMILIES:

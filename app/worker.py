@@ -16,7 +16,6 @@ where the dataset page reads it.
 from __future__ import annotations
 
 import concurrent.futures as cf
-import importlib.util
 import json
 import logging
 import multiprocessing
@@ -92,17 +91,10 @@ def analyse_job(path: str, progress_file: str, previews_out: str, limits: Any,
     def progress(line: str) -> None:
         _record_progress(progress_file, line)
 
-    want_previews = importlib.util.find_spec("app.traces.previews") is not None
-    previews: dict[str, Any] | None = {} if want_previews else None
+    previews: dict[str, Any] = {}
     try:
-        try:
-            report = analyse_path(path, workers=fft_workers, limits=limits, progress=progress,
-                                  previews=previews)
-        except ImportError as exc:
-            if "previews" not in str(exc):
-                raise
-            previews = None
-            report = analyse_path(path, workers=fft_workers, limits=limits, progress=progress)
+        report = analyse_path(path, workers=fft_workers, limits=limits, progress=progress,
+                              previews=previews)
     except InputError as exc:
         return {"input_error": exc.to_dict()}
     except Exception as exc:  # noqa: BLE001 - reported on the dataset page
@@ -365,7 +357,11 @@ class Worker:
 
 
 def run_inline(settings: Settings, *, limit: int | None = None) -> int:
-    """Process queued jobs one by one in this process (no pool); return how many ran."""
+    """Process queued jobs one by one in this process (no pool); return how many ran.
+
+    For ``rawproof worker --once``, the demo loader and tests: the same claim,
+    lease and store path as :class:`Worker`, without a process pool.
+    """
     owner = f"inline:{_owner_id()}"
     db = database(settings)
     ran = 0

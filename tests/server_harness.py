@@ -48,7 +48,7 @@ from typing import Any
 
 import httpx
 
-from app.web.cli import RAWPROOF_ARGV as RAWPROOF
+from app.cli import RAWPROOF_ARGV as RAWPROOF
 
 REPO = Path(__file__).resolve().parents[1]
 _CSRF_RE = re.compile(r'name="csrf_token" value="([^"]+)"')

@@ -21,7 +21,7 @@ from pathlib import Path
 
 import pytest
 
-from app.web.cli import RAWPROOF_ARGV
+from app.cli import RAWPROOF_ARGV
 from tests.server_harness import REPO, running_server, zero_filled_npy
 
 PW = {"ada": "ada-password-1", "ben": "ben-password-1"}

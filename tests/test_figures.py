@@ -268,13 +268,13 @@ def test_effective_curve_marks_the_calculators_value() -> None:
 
 def test_calculator_support_rule_matches_sampling_command(tmp_path) -> None:
     """The page reads the true support from a report exactly as ``rawproof sampling
-    --from-report`` does (app.sampling_cli.support_from_report, the reference), and
+    --from-report`` does (app.sampling.support_from_report, the reference), and
     its answer is app.sampling.effective_rate's with the command's defaults
     (20 masks, seed 0). Truth: cols support 0.5 of 256, rows full."""
     import json
 
     from app import sampling
-    from app.sampling_cli import support_from_report
+    from app.cli.sampling import support_from_report_file
     from app.web import evidence
 
     rep = {"input": {"shape": [3, 256, 256]}, "traces": {"zero_filling": {
@@ -283,7 +283,7 @@ def test_calculator_support_rule_matches_sampling_command(tmp_path) -> None:
             "cols": {"support_fraction": 0.5, "padding_factor": 2.0}}}}}
     path = tmp_path / "r.json"
     path.write_text(json.dumps(rep))
-    ref = support_from_report(str(path))
+    ref = support_from_report_file(str(path))
     sup = evidence.measured_support(rep)
     assert sup["shape"] == ref["shape"] and sup["support"] == ref["support"] == [1.0, 0.5]
     got = evidence.effective_summary(rep, family="polynomial", acceleration=4.0, dims=1,

@@ -26,8 +26,9 @@ from app.store import jobs as jobq
 from app.store import migrate, service
 from app.store.db import database, session_scope
 from app.store.errors import DecisionConflictError, SchemaError, SelfDecisionError
-from app.store.models import Base, Job, Report, utcnow
+from app.store.models import Base, Job, Report, User, utcnow
 from app.store.registry import filter_rows, registry_rows
+from app.worker import run_inline
 from tests.server_harness import RAWPROOF, REPO, zero_filled_npy
 
 
@@ -48,7 +49,7 @@ def _people(settings: Settings) -> tuple[int, int, int]:
 
 def _dataset(settings: Settings, uploader_id: int, content: bytes, name: str = "Set") -> int:
     with session_scope(settings) as db:
-        user = db.get(service.User, uploader_id)
+        user = db.get(User, uploader_id)
         ds = service.create_dataset(
             db, settings, uploader=user, name=name, source="https://data.example.org/x",
             licence="CC BY 4.0", description="", intended_use="", files=[("scan.npy", content)])
@@ -118,20 +119,20 @@ def test_decisions_keep_history_and_refuse_self_and_stale(settings: Settings) ->
     with session_scope(settings) as db:
         ds = service.get_dataset(db, ds_id)
         with pytest.raises(SelfDecisionError):
-            service.record_decision(db, dataset=ds, reviewer=db.get(service.User, uma),
+            service.record_decision(db, dataset=ds, reviewer=db.get(User, uma),
                                     outcome="rejected", rationale="mine", expected_current_id=0)
-        first = service.record_decision(db, dataset=ds, reviewer=db.get(service.User, rei),
+        first = service.record_decision(db, dataset=ds, reviewer=db.get(User, rei),
                                         outcome="downstream_only", rationale="zero-filled 2x",
                                         expected_current_id=0)
         first_id = first.id
     with session_scope(settings) as db:
         ds = service.get_dataset(db, ds_id)
         with pytest.raises(DecisionConflictError) as info:
-            service.record_decision(db, dataset=ds, reviewer=db.get(service.User, kit),
+            service.record_decision(db, dataset=ds, reviewer=db.get(User, kit),
                                     outcome="rejected", rationale="saw nothing",
                                     expected_current_id=0)
         assert info.value.current.id == first_id
-        second = service.record_decision(db, dataset=ds, reviewer=db.get(service.User, kit),
+        second = service.record_decision(db, dataset=ds, reviewer=db.get(User, kit),
                                          outcome="rejected", rationale="magnitude only",
                                          expected_current_id=first_id)
         second_id = second.id
@@ -191,7 +192,7 @@ def test_inline_run_stores_the_headless_report(settings: Settings, tmp_path: Pat
     uma, _, _ = _people(settings)
     content = zero_filled_npy(14)
     ds_id = _dataset(settings, uma, content)
-    assert service.run_pending_jobs(settings) == 1
+    assert run_inline(settings) == 1
     direct_path = tmp_path / "scan.npy"
     direct_path.write_bytes(content)
     direct = analyse_path(str(direct_path))
@@ -208,7 +209,7 @@ def test_unreadable_file_fails_at_once_with_the_readers_message(settings: Settin
     """Bad input is not retried: the job fails on its first attempt with a readable reason."""
     uma, _, _ = _people(settings)
     _dataset(settings, uma, b"this is not a NumPy file")
-    service.run_pending_jobs(settings)
+    run_inline(settings)
     with session_scope(settings, write=False) as db:
         job = db.query(Job).one()
         assert (job.state, job.attempts) == ("failed", 1)
@@ -222,7 +223,7 @@ def test_registry_search_filter_and_sort(settings: Settings) -> None:
     b = _dataset(settings, rei, zero_filled_npy(16), name="Brain scans")
     with session_scope(settings) as db:
         service.record_decision(db, dataset=service.get_dataset(db, a),
-                                reviewer=db.get(service.User, rei), outcome="rejected",
+                                reviewer=db.get(User, rei), outcome="rejected",
                                 rationale="8-bit")
     with session_scope(settings, write=False) as db:
         rows = registry_rows(db)

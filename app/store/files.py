@@ -23,13 +23,6 @@ from app.store.errors import ValidationError
 
 CHUNK = 1 << 20
 
-_FORMATS = {
-    ".dcm": "dicom", ".dicom": "dicom", ".ima": "dicom",
-    ".nii": "nifti", ".gz": "nifti", ".npy": "npy", ".npz": "npz",
-    ".h5": "hdf5", ".hdf5": "hdf5", ".mat": "mat",
-    ".png": "png", ".jpg": "jpeg", ".jpeg": "jpeg", ".tif": "tiff", ".tiff": "tiff",
-    ".zip": "zip", ".json": "json", ".txt": "text", ".csv": "text",
-}
 _UNSAFE_CHARS = re.compile(r"[\x00-\x1f\x7f<>:\"|?*]")
 
 
@@ -117,17 +110,6 @@ def sanitise_relative_name(name: str) -> str:
         if part:
             parts.append(part[:200])
     return str(PurePosixPath(*parts)) if parts else "file"
-
-
-def guess_format(name: str) -> str:
-    """A short format word from a file name (``"dicom"``, ``"npy"``...; ``""`` if unknown)."""
-    lower = name.lower()
-    if lower.endswith(".nii.gz"):
-        return "nifti"
-    suffix = PurePosixPath(lower).suffix
-    if not suffix and "/" in lower:
-        return "dicom"  # DICOM series often have bare names inside a folder
-    return _FORMATS.get(suffix, suffix.lstrip(".")[:16])
 
 
 @dataclass

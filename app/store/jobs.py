@@ -16,8 +16,9 @@ from typing import Any
 from sqlalchemy import and_, or_, select, update
 from sqlalchemy.orm import Session
 
+from app.store.analyses import store_report
+from app.store.audit import audit
 from app.store.models import Dataset, Job, Report, utcnow
-from app.store.service import audit, store_report
 
 MAX_ATTEMPTS = 3
 

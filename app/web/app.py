@@ -6,7 +6,6 @@ member; pages redirect to the sign-in form, JSON callers get 401.
 
 from __future__ import annotations
 
-import importlib
 from urllib.parse import quote, urlsplit
 
 from fastapi import FastAPI, Request
@@ -20,6 +19,7 @@ from app.config import Settings
 from app.errors import InputError
 from app.store.db import Database
 from app.store.errors import StoreError
+from app.web import evidence
 from app.web.deps import ForbiddenError, NotSignedInError
 from app.web.paths import STATIC_DIR
 from app.web.ratelimit import LoginLimiter
@@ -103,15 +103,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         return PlainTextResponse("ok")
 
     application.include_router(auth.public)
-    for mod in (auth, registry, datasets, uploads, reviews, api, admin):
+    for mod in (auth, registry, datasets, uploads, reviews, api, admin, evidence):
         application.include_router(mod.router)
     application.include_router(api.uploads_router)
-    try:
-        evidence = importlib.import_module("app.web.evidence")
-    except ModuleNotFoundError as exc:
-        if exc.name != "app.web.evidence":
-            raise
-    else:
-        application.include_router(evidence.router)
     application.mount("/static", StaticFiles(directory=str(STATIC_DIR)), name="static")
     return application

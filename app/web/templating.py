@@ -17,7 +17,7 @@ from starlette.responses import Response
 import app
 from app.store.models import OUTCOMES
 from app.web import labels
-from app.web.paths import STATIC_DIR, TEMPLATES_DIR
+from app.web.paths import TEMPLATES_DIR
 from app.web.security import csrf_token
 
 templates = Jinja2Templates(directory=str(TEMPLATES_DIR))
@@ -44,11 +44,6 @@ def day(dt: datetime | None) -> str:
     return "" if dt is None else f"{dt:%Y-%m-%d}"
 
 
-def static_exists(name: str) -> bool:
-    """True when ``static/<name>`` exists (optional assets owned by other modules)."""
-    return (STATIC_DIR / name).is_file()
-
-
 templates.env.globals.update(
     caution=app.CAUTION,
     csrf_token=csrf_token,
@@ -58,7 +53,6 @@ templates.env.globals.update(
     status_label=labels.status_label,
     outcome_label=labels.outcome_label,
     verdict_label=labels.verdict_label,
-    static_exists=static_exists,
 )
 templates.env.filters.update(
     filesize=filesize,

@@ -14,7 +14,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from app.cli import COMMANDS, EXIT_BAD_INPUT, EXIT_OK
+from app.cli.common import EXIT_BAD_INPUT, EXIT_OK, Command, settings_from
 
 
 def _add_backup(p: argparse.ArgumentParser) -> None:
@@ -25,7 +25,6 @@ def _add_backup(p: argparse.ArgumentParser) -> None:
 
 def _run_backup(args: Any) -> int:
     from app.backup import BackupError, backup
-    from app.web.cli import settings_from
 
     settings = settings_from(args)
     try:
@@ -60,5 +59,7 @@ def _run_restore(args: Any) -> int:
     return EXIT_OK
 
 
-COMMANDS["backup"] = (_add_backup, _run_backup)
-COMMANDS["restore"] = (_add_restore, _run_restore)
+BACKUP = Command("backup", "copy the database and stored files to a folder, with a manifest",
+                 _add_backup, _run_backup)
+RESTORE = Command("restore", "fill a fresh data folder from a verified backup", _add_restore,
+                  _run_restore)

@@ -17,7 +17,7 @@ from pathlib import Path
 from typing import Any
 
 import app
-from app.cli import COMMANDS
+from app.cli.common import Command
 from app.errors import InputError
 
 
@@ -81,6 +81,7 @@ def load_demo(data_dir: Path, *, only: list[str] | None = None,
     from app.config import Settings
     from app.store import migrate, service
     from app.store.db import session_scope
+    from app.worker import run_inline
 
     say = say or (lambda _line: None)
     gen = _generator()
@@ -106,7 +107,7 @@ def load_demo(data_dir: Path, *, only: list[str] | None = None,
             entry["dataset_id"] = ds.id
             say(f"registered {entry['name']} ({len(files)} file(s) from {base})")
     say("running the analyses (synchronously)")
-    ran = service.run_pending_jobs(settings)
+    ran = run_inline(settings)
     say(f"{ran} analysis job(s) finished")
     with session_scope(settings) as s:
         users = {m["username"]: service.get_user(s, m["username"]) for m in manifest["members"]}
@@ -155,4 +156,4 @@ def _run(args: Any) -> int:
     return 0
 
 
-COMMANDS["demo"] = (_add, _run)
+DEMO = Command("demo", "generate the invented demo lab into a fresh data folder", _add, _run)

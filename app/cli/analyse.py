@@ -1,8 +1,9 @@
-"""The ``rawproof`` command.
+"""The ``analyse`` sub-command: the headless report of one file, folder or archive.
 
-Sub-commands: ``analyse`` (headless report), ``sampling`` (effective sampling
-rate), ``serve``, ``worker``, ``users``, ``demo``, ``backup``, ``restore``.
-Sub-commands register themselves in :data:`COMMANDS` from their modules.
+    rawproof analyse PATH [--json] [-o FILE] [--domain image|kspace] [--coil-axis N]
+                     [--dataset KEY] [--workers N] [--max-frames N] [--quiet]
+
+It runs the same readers and analysers as the web app, without the database.
 """
 
 from __future__ import annotations
@@ -10,17 +11,11 @@ from __future__ import annotations
 import argparse
 import json
 import sys
-from collections.abc import Callable
 from typing import Any
 
 import app
+from app.cli.common import EXIT_BAD_INPUT, EXIT_OK, Command
 from app.errors import InputError
-
-EXIT_OK = 0
-EXIT_BAD_INPUT = 2
-
-# name -> (add_arguments(parser), run(args) -> int); filled by _load_commands
-COMMANDS: dict[str, tuple[Callable[[argparse.ArgumentParser], None], Callable[[Any], int]]] = {}
 
 
 def _error_object(exc: InputError) -> dict:
@@ -102,63 +97,5 @@ def _run_analyse(args: Any) -> int:
     return EXIT_OK
 
 
-COMMANDS["analyse"] = (_add_analyse, _run_analyse)
-
-
-def _load_commands() -> None:
-    """Import the modules that add further sub-commands (if they exist yet)."""
-    import importlib
-
-    for mod in (
-        "app.sampling_cli",
-        "app.web.cli",
-        "app.store.cli",
-        "app.demo_cli",
-        "app.backup_cli",
-    ):
-        try:
-            importlib.import_module(mod)
-        except ModuleNotFoundError as exc:
-            if exc.name != mod:
-                raise
-
-
-def build_parser() -> argparse.ArgumentParser:
-    _load_commands()
-    parser = argparse.ArgumentParser(
-        prog="rawproof",
-        description="Find traces of hidden processing in candidate MRI datasets. " + app.CAUTION,
-    )
-    parser.add_argument("--version", action="version", version=f"rawproof {app.__version__}")
-    sub = parser.add_subparsers(dest="command", required=True)
-    for name, (add, _run) in COMMANDS.items():
-        sp = sub.add_parser(name)
-        add(sp)
-    return parser
-
-
-def main(argv: list[str] | None = None) -> int:
-    parser = build_parser()
-    args = parser.parse_args(argv)
-    _add, run = COMMANDS[args.command]
-    try:
-        return int(run(args) or 0)
-    except InputError as exc:
-        print(f"rawproof: {exc.message}", file=sys.stderr)
-        return EXIT_BAD_INPUT
-    except KeyboardInterrupt:
-        return 130
-    except BrokenPipeError:
-        # the reader of stdout went away (for example `| head`): not an error of ours
-        import os
-
-        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
-        return 0
-
-
-if __name__ == "__main__":
-    # Under ``python -m app.cli`` this file runs as ``__main__``, a second copy;
-    # sub-command modules register into ``app.cli``, so run that one.
-    from app.cli import main as _main
-
-    sys.exit(_main())
+ANALYSE = Command("analyse", "the report of one file, folder or .zip (no database)",
+                  _add_analyse, _run_analyse)

@@ -16,7 +16,7 @@ from typing import Any
 
 import app
 from app import sampling
-from app.cli import COMMANDS, EXIT_BAD_INPUT, EXIT_OK
+from app.cli.common import EXIT_BAD_INPUT, EXIT_OK, Command
 from app.errors import InputError
 
 SCHEMA = "rawproof.sampling/1"
@@ -59,8 +59,9 @@ def _parse_params(items: list[str]) -> dict[str, float]:
     return out
 
 
-def support_from_report(path: str) -> dict[str, Any]:
-    """Shape and true support per axis from a rawproof report file.
+def support_from_report_file(path: str) -> dict[str, Any]:
+    """Shape and true support per axis from a rawproof report file
+    (:func:`app.sampling.support_from_report`), with the file's path.
 
     Raises
     ------
@@ -72,26 +73,18 @@ def support_from_report(path: str) -> dict[str, Any]:
             report = json.load(fh)
     except (OSError, json.JSONDecodeError) as exc:
         raise InputError("unreadable", f"cannot read the report: {exc}", path) from exc
-    if not isinstance(report, dict) or "error" in report or "input" not in report:
-        raise InputError("not_a_report", "the file is not a rawproof report with results", path)
     try:
-        shape = [int(s) for s in report["input"]["shape"][-2:]]
-    except (KeyError, TypeError, ValueError) as exc:
-        raise InputError("not_a_report", "the report has no input shape", path) from exc
-    est = report.get("traces", {}).get("zero_filling", {}).get("estimates", {})
-    support = []
-    for ax in ("rows", "cols"):
-        f = (est.get(ax) or {}).get("support_fraction")
-        support.append(float(f) if isinstance(f, int | float) and 0 < f <= 1 else 1.0)
-    status = report.get("traces", {}).get("zero_filling", {}).get("status")
-    return {"shape": shape, "support": support, "zero_filling_status": status, "report": path}
+        source = sampling.support_from_report(report)
+    except InputError as exc:
+        raise InputError(exc.code, exc.message, path) from exc
+    return {**source, "report": path}
 
 
 def _run(args: Any) -> int:
     try:
         source: dict[str, Any] = {}
         if args.from_report:
-            source = support_from_report(args.from_report)
+            source = support_from_report_file(args.from_report)
         shape = args.shape or source.get("shape")
         if shape is None:
             raise InputError("bad_value", "give --shape ROWS COLS or --from-report REPORT.json")
@@ -140,4 +133,5 @@ def _run(args: Any) -> int:
     return EXIT_OK
 
 
-COMMANDS["sampling"] = (_add, _run)
+SAMPLING = Command("sampling", "effective sampling rate of undersampling masks on the true support",
+                   _add, _run)
