@@ -214,6 +214,64 @@ def running_server(data_dir: Path, **kwargs: Any) -> Iterator[Server]:
         srv.stop()
 
 
+class InProcessServer:
+    """The web app in this process, reached through FastAPI's ``TestClient``.
+
+    The same surface as :class:`Server` for route tests that need neither a real
+    socket nor a worker (``add_user(s)``, ``client``, ``login``, ``data_dir``):
+    accounts are made through the store's service layer instead of the command.
+    """
+
+    base_url = "http://testserver"
+
+    def __init__(self, data_dir: Path) -> None:
+        import dataclasses
+
+        from app.config import Settings
+        from app.store import migrate
+        from app.web.app import create_app
+
+        self.data_dir = data_dir
+        self.settings = dataclasses.replace(Settings(), data_dir=data_dir, database_url="")
+        migrate.upgrade(self.settings)
+        self.app = create_app(self.settings)
+
+    def add_user(self, name: str, password: str, *, admin: bool = False) -> None:
+        from app.store import service
+        from app.store.db import session_scope
+
+        with session_scope(self.settings) as db:
+            service.create_user(db, name, password, admin=admin)
+
+    def add_users(self, passwords: dict[str, str], *, admins: tuple[str, ...] = ()) -> None:
+        for name, password in passwords.items():
+            self.add_user(name, password, admin=name in admins)
+
+    def client(self, **kwargs: Any) -> Member:
+        """A client that is not signed in."""
+        from fastapi.testclient import TestClient
+
+        class _InProcessMember(Member, TestClient):
+            pass
+
+        return _InProcessMember(self.app, base_url=self.base_url, follow_redirects=False,
+                                **kwargs)
+
+    login = Server.login
+
+
+@contextlib.contextmanager
+def inprocess_server(data_dir: Path) -> Iterator[InProcessServer]:
+    """An :class:`InProcessServer` on a fresh data folder."""
+    srv = InProcessServer(data_dir)
+    try:
+        yield srv
+    finally:
+        from app.store.db import database
+
+        database(srv.settings).engine.dispose()
+
+
 def start_worker(data_dir: Path, *args: str, env: dict[str, str] | None = None,
                  log_name: str = "worker.log") -> subprocess.Popen:
     """Start a separate ``rawproof worker`` on the data folder (in its own process group)."""

@@ -24,6 +24,8 @@ import pytest
 from app.cli import RAWPROOF_ARGV
 from tests.server_harness import REPO, running_server, zero_filled_npy
 
+pytestmark = pytest.mark.server
+
 PW = {"ada": "ada-password-1", "ben": "ben-password-1"}
 
 

@@ -54,6 +54,8 @@ from tests.server_harness import (
     zero_filled_npy,
 )
 
+pytestmark = pytest.mark.server
+
 PW = {"ada": "ada-password-1", "ben": "ben-password-1", "cy": "cy-password-1"}
 
 

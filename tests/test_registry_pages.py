@@ -10,6 +10,7 @@ from __future__ import annotations
 import dataclasses
 import re
 
+import pytest
 from fastapi.testclient import TestClient
 
 from app.config import Settings
@@ -93,6 +94,7 @@ def test_registry_shows_every_change_at_once(tmp_path) -> None:
         assert "Set two" in client.get("/").text
 
 
+@pytest.mark.server
 def test_serve_with_two_processes_shares_sessions_and_data(tmp_path) -> None:
     """``rawproof serve --processes 2``: both uvicorn processes build the app from the
     same settings, so a member signed in through one is signed in on the other and

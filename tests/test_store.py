@@ -72,6 +72,7 @@ def test_sqlite_runs_in_wal_mode_with_busy_timeout(settings: Settings) -> None:
         assert conn.exec_driver_sql("PRAGMA foreign_keys").scalar() == 1
 
 
+@pytest.mark.server
 def test_newer_schema_refuses_to_start(settings: Settings) -> None:
     """A database stamped with a revision this code does not know is refused, clearly."""
     with database(settings).engine.begin() as conn:

@@ -19,6 +19,8 @@ from app.config import Settings
 from app.web.app import create_app
 from tests.server_harness import running_server, zero_filled_npy
 
+pytestmark = pytest.mark.server
+
 PW = {"ada": "ada-password-1", "ben": "ben-password-1", "cat": "cat-password-1",
       "limited": "limited-password-1"}
 PUBLIC = {"/login", "/healthz"}

@@ -1,4 +1,5 @@
-"""Comments, decisions, conflicts, exports and audit events against a real server.
+"""Comments, decisions, conflicts, exports and audit events through the web app's routes
+(in process, FastAPI's TestClient; no server process).
 
 The rules under test come from the design (shared/DESIGN.md, "People and
 rules"): the uploader cannot decide; every decision keeps its rationale and
@@ -14,7 +15,7 @@ import threading
 
 import pytest
 
-from tests.server_harness import running_server, zero_filled_npy
+from tests.server_harness import inprocess_server, zero_filled_npy
 
 PW = {"uma": "uma-password-1", "rei": "rei-password-1", "kit": "kit-password-1",
       "ada": "ada-password-1"}
@@ -22,7 +23,7 @@ PW = {"uma": "uma-password-1", "rei": "rei-password-1", "kit": "kit-password-1",
 
 @pytest.fixture(scope="module")
 def server(tmp_path_factory):
-    with running_server(tmp_path_factory.mktemp("reviews"), worker=False) as srv:
+    with inprocess_server(tmp_path_factory.mktemp("reviews")) as srv:
         srv.add_users(PW, admins=("ada",))
         yield srv
 

@@ -17,6 +17,8 @@ import pytest
 
 from tests.server_harness import running_server, zero_filled_npy
 
+pytestmark = pytest.mark.server
+
 LIMIT = 300_000
 PW = {"uma": "uma-password-1", "rei": "rei-password-1"}
 

@@ -21,6 +21,8 @@ from app.store.files import previews_file
 from app.worker import GATE_ENV
 from tests.server_harness import running_server, start_worker, stop_process_group, zero_filled_npy
 
+pytestmark = pytest.mark.server
+
 PW = {"uma": "uma-password-1", "rei": "rei-password-1"}
 
 
