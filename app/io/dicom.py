@@ -40,6 +40,7 @@ from app.io.dicom_pixels import (
     luminance,
     native_dtype,
     stored_range,
+    unmosaic,
 )
 from app.io.dicom_series import (
     DicomItem,
@@ -116,6 +117,7 @@ def _volume_of(items: list[DicomItem], opts: ReadOptions) -> Volume:
             opts.warnings.append(f"{series_name(ds0, first.path)}: colour ({photometric}) "
                                  "pixels were converted to luminance.")
     assert data is not None
+    data = unmosaic(data, hdr.fields)  # Siemens MOSAIC tiles become slices
     if one_scale:
         scale, offset = next(iter(slopes))
     else:

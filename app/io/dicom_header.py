@@ -17,7 +17,8 @@ from app.io.dicom_syntax import JPEG_DCT_SYNTAXES, syntax_of
 from app.io.jpeg_markers import parse_jpeg_markers
 from app.io.volume import Header
 
-__all__ = ["float_or_none", "header_fields", "int_or_none", "read_header_only", "shared_item"]
+__all__ = ["float_or_none", "header_fields", "int_or_none", "mosaic_count", "read_header_only",
+           "shared_item"]
 
 _RAW_SKIP = {"PixelData", "FloatPixelData", "DoubleFloatPixelData", "OverlayData"}
 
@@ -142,6 +143,7 @@ def header_fields(ds: Any) -> Header:
     if ps is not None and len(ps) == 2:
         f["pixel_spacing"] = [float(ps[0]), float(ps[1])]
     _functional_groups(ds, f)
+    _mr_declarations(ds, f)
     if ts in JPEG_DCT_SYNTAXES and "PixelData" in ds:
         tables, extra = _jpeg_tables(ds)
         if tables:
@@ -197,6 +199,97 @@ def _functional_groups(ds: Any, f: dict[str, Any]) -> None:
     if "acquisition_matrix" not in f and freq and phase and direction in ("ROW", "COL"):
         f["acquisition_matrix"] = [freq, 0, 0, phase] if direction == "COL" else [0, freq,
                                                                                   phase, 0]
+
+
+def _find(ds: Any, keyword: str) -> Any:
+    """``keyword`` at the top level, else in the first item of any sequence of the
+    shared, then the first per-frame, functional group (PS3.3 C.7.6.16)."""
+    v = ds.get(keyword)
+    if v not in (None, ""):
+        return v
+    for groups in ("SharedFunctionalGroupsSequence", "PerFrameFunctionalGroupsSequence"):
+        seq = ds.get(groups)
+        if not seq:
+            continue
+        for elem in seq[0]:
+            if elem.VR != "SQ" or not elem.value:
+                continue
+            v = elem.value[0].get(keyword)
+            if v not in (None, ""):
+                return v
+    return None
+
+
+def _words(value: Any) -> list[str]:
+    if value is None:
+        return []
+    vals = [value] if isinstance(value, str) else list(value)
+    return [str(v).strip().upper() for v in vals if str(v).strip()]
+
+
+def _mr_declarations(ds: Any, f: dict[str, Any]) -> None:
+    """MR attributes that declare processing, from the MR Image Module or the Enhanced
+    MR functional groups, and the Siemens CSA mosaic count.
+
+    PS3.3 C.8.3.1 MR Image Module (ScanOptions: PFP phase / PFF frequency partial
+    Fourier); C.8.13 Enhanced MR Image (MR Image Frame Type macro: FrameType;
+    MR Image Description macro: ComplexImageComponent; MR Modifier macro:
+    PartialFourier, PartialFourierDirection; KSpaceFiltering; MRAcquisition
+    FrequencyEncodingSteps / PhaseEncodingStepsInPlane). Section numbers recalled
+    from memory. The CSA header is Siemens-private; nibabel.nicom.csareader reads it.
+    """
+    opts = _words(ds.get("ScanOptions"))
+    if opts:
+        f["scan_options"] = opts
+    for key, name in (("ComplexImageComponent", "complex_image_component"),
+                      ("PartialFourier", "partial_fourier"),
+                      ("PartialFourierDirection", "partial_fourier_direction"),
+                      ("KSpaceFiltering", "kspace_filtering")):
+        v = _find(ds, key)
+        if v not in (None, ""):
+            f[name] = str(v).strip().upper()
+    ft = _find(ds, "FrameType")
+    if ft is not None:
+        f["frame_type"] = _words(ft)
+    if "acquisition_matrix" not in f:
+        freq = int_or_none(_find(ds, "MRAcquisitionFrequencyEncodingSteps"))
+        phase = int_or_none(_find(ds, "MRAcquisitionPhaseEncodingStepsInPlane"))
+        direction = str(_find(ds, "InPlanePhaseEncodingDirection") or "").strip().upper()
+        if freq and phase and direction in ("ROW", "COL"):
+            f["acquisition_matrix"] = ([freq, 0, 0, phase] if direction == "COL"
+                                       else [0, freq, phase, 0])
+            f.setdefault("phase_encoding_direction", direction)
+    n = mosaic_count(ds)
+    if n:
+        f["mosaic_images"] = n
+
+
+def mosaic_count(ds: Any) -> int | None:
+    """Number of images in a Siemens MOSAIC (CSA image header NumberOfImagesInMosaic),
+    or None when the file is not a mosaic or the count cannot be read.
+
+    ImageType must name MOSAIC (Siemens' further ImageType value, PS3.3
+    C.7.6.1.1.2 allows implementation-specific values); the count is read with
+    nibabel's CSA reader.
+    """
+    if "MOSAIC" not in _words(ds.get("ImageType")):
+        return None
+    try:
+        import warnings
+
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            from nibabel.nicom import csareader
+
+            csa = csareader.get_csa_header(ds, "image")
+            n = csareader.get_n_mosaic(csa) if csa else None
+    except Exception:  # noqa: BLE001 - an unreadable private header is no count
+        return None
+    try:
+        n = int(n) if n is not None else None
+    except (TypeError, ValueError):
+        return None
+    return n if n and n > 1 else None
 
 
 def read_header_only(path: str | Path) -> Header:

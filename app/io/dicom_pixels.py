@@ -137,3 +137,46 @@ def stored_range(data: np.ndarray) -> list[float]:
     if data.size == 0:
         return []
     return [float(np.min(data)), float(np.max(data))]
+
+
+def split_mosaic(arr: np.ndarray, n_images: int) -> np.ndarray | None:
+    """Cut a Siemens MOSAIC frame into its slices, ``(n_images, rows, cols)``.
+
+    The mosaic holds ``k x k`` equal tiles with ``k = ceil(sqrt(n_images))``,
+    filled row by row; tiles past ``n_images`` are blank padding. Returns None when
+    the frame cannot hold such a grid (the caller keeps the frame as it is).
+
+    References
+    ----------
+    Siemens MOSAIC layout as read by nibabel's ``nibabel.nicom.dicomwrappers``
+    (common practice, no published standard).
+    """
+    if arr.ndim != 2 or n_images < 2:
+        return None
+    k = int(np.ceil(np.sqrt(n_images)))
+    rows, cols = arr.shape
+    if rows % k or cols % k:
+        return None
+    tr, tc = rows // k, cols // k
+    tiles = arr.reshape(k, tr, k, tc).transpose(0, 2, 1, 3).reshape(k * k, tr, tc)
+    return np.ascontiguousarray(tiles[:n_images])
+
+
+def unmosaic(data: np.ndarray, fields: dict) -> np.ndarray:
+    """Split every MOSAIC frame of ``data`` (``(..., rows, cols)``) into its slices when
+    the header fields name a mosaic count (``mosaic_images``); the fields' ``rows``
+    and ``columns`` become the tile's and ``mosaic_grid`` records the split."""
+    n = fields.get("mosaic_images")
+    if not n or data.ndim < 2:
+        return data
+    lead = data.shape[:-2]
+    flat = data.reshape((-1,) + data.shape[-2:])
+    parts = [split_mosaic(f, int(n)) for f in flat]
+    if any(p is None for p in parts):
+        fields["mosaic_split_failed"] = True
+        return data
+    out = np.stack(parts)
+    out = out.reshape(lead + out.shape[1:]) if lead else out[0]
+    fields["mosaic_grid"] = [int(data.shape[-2]), int(data.shape[-1])]
+    fields["rows"], fields["columns"] = int(out.shape[-2]), int(out.shape[-1])
+    return out

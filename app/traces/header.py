@@ -61,8 +61,20 @@ XFORM_TARGET = {2: "image", 3: "template", 4: "template", 5: "template"}
 XFORM_NAME = {0: "unknown", 1: "scanner", 2: "aligned to another image", 3: "Talairach",
               4: "MNI 152", 5: "another template"}
 #: ImageType values (beyond the first two) that name a reformatted or computed image.
+#: (PS3.3 C.7.6.1.1.2 and C.8.16.1.1 defined terms; DIS2D/DIS3D are distortion
+#: corrections, which resample the grid; MOSAIC is a tiling, not a reformat).
 _REFORMAT_WORDS = {"MPR", "CSA MPR", "REFORMATTED", "RESAMPLED", "MIP", "MINIP", "PROJECTION",
-                   "CURVED", "CSA RESAMPLED", "MOSAIC", "SUBTRACTION", "FILTERED"}
+                   "PROJECTION IMAGE", "CSA MIP", "CURVED", "CSA RESAMPLED", "SUBTRACTION",
+                   "DIS2D", "DIS3D"}
+#: ImageType values naming which component of the complex image the pixels hold
+#: (MR Image Module, PS3.3 C.8.3.1.1.1: M magnitude, P phase, R real, I imaginary;
+#: Enhanced MR ComplexImageComponent, C.8.13.3.1.1 from memory).
+_COMPONENT_WORDS = {"M": "magnitude", "MAGNITUDE": "magnitude", "P": "phase", "PHASE": "phase",
+                    "R": "real", "REAL": "real", "I": "imaginary", "IMAGINARY": "imaginary"}
+#: NIfTI ``descrip`` words that common writers put there after a resampling step
+#: (SPM writes "spm - 3D normalized", "spm - realigned"; common practice, no source).
+_NIFTI_RESAMPLE_WORDS = ("normali", "realign", "reslic", "resampl", "regist", "warp",
+                         "coregist", "mni", "talairach")
 _INTERP_TOLERANCE = 0.05
 
 
@@ -139,6 +151,8 @@ def provenance(volume: Volume) -> tuple[dict[str, Any], list[str]]:
     _image_type(f, declared, notes)
     _compression(f, volume.format, declared, notes)
     _jpeg_tables(f, declared, notes)
+    _component(f, declared, notes)
+    _mr_modifiers(f, declared, notes)
     _acquisition(f, declared, notes)
     _bits(f, declared, notes)
     _nifti(f, declared, notes)
@@ -184,6 +198,76 @@ def _image_type(f: dict[str, Any], d: dict[str, Any], notes: list[str]) -> None:
                      " the grid was resampled.")
     if desc:
         notes.append(f"Derivation description: \"{desc}\".")
+
+
+def _component(f: dict[str, Any], d: dict[str, Any], notes: list[str]) -> None:
+    """Which component of the complex image the pixels hold, and MOSAIC tiling.
+
+    PS3.3 C.8.3.1.1.1 (MR ImageType value 3: M, P, R, I, ...) and the Enhanced MR
+    ComplexImageComponent (MAGNITUDE, PHASE, REAL, IMAGINARY, MIXED).
+    """
+    vals = [str(v).strip().upper() for v in (f.get("image_type") or [])]
+    vals += [str(v).strip().upper() for v in (f.get("frame_type") or [])]
+    kinds = {_COMPONENT_WORDS[v] for v in vals[2:] if v in _COMPONENT_WORDS}
+    cic = f.get("complex_image_component")
+    if cic in _COMPONENT_WORDS:
+        kinds.add(_COMPONENT_WORDS[cic])
+    if len(kinds) == 1:
+        kind = kinds.pop()
+        d["image_kind"] = kind
+        source = "ComplexImageComponent" if cic in _COMPONENT_WORDS else "ImageType"
+        notes.append(f"The header declares {kind} images ({source}).")
+    elif len(kinds) > 1:
+        d["image_kind"] = "mixed"
+        notes.append(f"The header names several image components ({', '.join(sorted(kinds))}).")
+    if "MOSAIC" in vals:
+        d["mosaic"] = True
+        if f.get("mosaic_grid"):
+            notes.append(f"A Siemens MOSAIC of {f.get('mosaic_images')} images (CSA header) was "
+                         f"cut from its {f['mosaic_grid'][0]} x {f['mosaic_grid'][1]} tiling into "
+                         "slices before analysis.")
+        else:
+            notes.append("ImageType names a Siemens MOSAIC, but its tiles could not be split "
+                         "(no readable image count in the CSA header): the pixel findings see "
+                         "the tiling.")
+    if f.get("mosaic_images"):
+        d["mosaic_images"] = int(f["mosaic_images"])
+
+
+def _mr_modifiers(f: dict[str, Any], d: dict[str, Any], notes: list[str]) -> None:
+    """Partial Fourier and k-space filtering declared by MR attributes.
+
+    PS3.3 C.8.3.1 MR Image Module ScanOptions (PFP: phase partial Fourier, PFF:
+    frequency partial Fourier); Enhanced MR (C.8.13, MR Modifier macro)
+    PartialFourier (YES/NO), PartialFourierDirection (PHASE, FREQUENCY,
+    SLICE_SELECT, COMBINATION) and KSpaceFiltering (NONE, COSINE, COSINE_SQUARED,
+    FERMI, GAUSSIAN, HAMMING, HANNING, LORENTZIAN, LRNTZ_GSS_TRNSFM, RIESZ, TUKEY,
+    USER_DEFINED; list recalled from memory).
+    """
+    opts = [str(v).upper() for v in (f.get("scan_options") or [])]
+    if opts:
+        d["scan_options"] = opts
+    pf_dirs = [{"PFP": "PHASE", "PFF": "FREQUENCY"}[o] for o in opts if o in ("PFP", "PFF")]
+    if f.get("partial_fourier") in ("YES", "NO"):
+        d["partial_fourier"] = f["partial_fourier"] == "YES"
+        if d["partial_fourier"] and f.get("partial_fourier_direction"):
+            pf_dirs.append(str(f["partial_fourier_direction"]))
+    elif pf_dirs:
+        d["partial_fourier"] = True
+    if pf_dirs:
+        d["partial_fourier_direction"] = sorted(set(pf_dirs))
+    if d.get("partial_fourier") is True:
+        how = ", ".join(d.get("partial_fourier_direction") or ["direction not given"])
+        notes.append(f"The header declares a partial-Fourier acquisition ({how}).")
+    elif d.get("partial_fourier") is False:
+        notes.append("The header declares no partial-Fourier acquisition (PartialFourier NO).")
+    kf = f.get("kspace_filtering")
+    if kf:
+        d["kspace_filtering"] = kf
+        if kf != "NONE":
+            notes.append(f"The header declares a k-space filter: KSpaceFiltering {kf}.")
+        else:
+            notes.append("The header declares no k-space filter (KSpaceFiltering NONE).")
 
 
 def _compression(f: dict[str, Any], fmt: str, d: dict[str, Any], notes: list[str]) -> None:
@@ -341,28 +425,48 @@ def _bits(f: dict[str, Any], d: dict[str, Any], notes: list[str]) -> None:
     if hi > top or lo < bottom:
         notes.append(f"Stored values {lo:g}..{hi:g} exceed what BitsStored = {stored} allows: "
                      "the header does not describe the pixels.")
-    elif used <= 8 < stored:
+    elif 0 < used <= 8 < stored:
         notes.append(f"The stored values span {used} bits ({lo:g}..{hi:g}) of the declared "
                      f"{stored}: the data may have passed through an 8-bit step.")
 
 
 def _nifti(f: dict[str, Any], d: dict[str, Any], notes: list[str]) -> None:
+    """NIfTI xform codes and the free-text fields.
+
+    Code 2 (NIFTI_XFORM_ALIGNED_ANAT) is what nibabel writes by default for any
+    image made from an array and an affine (``Nifti1Image(data, affine)`` sets the
+    sform code to 2; recalled from nibabel's documentation), so code 2 alone is no
+    evidence of registration. Codes 3-5 (Talairach, MNI 152, another template) put
+    the grid in a template space, which a scanner does not produce.
+    """
     if "sform_code" not in f and "qform_code" not in f:
         return
     s, q = int(f.get("sform_code", 0)), int(f.get("qform_code", 0))
     d["sform_code"], d["qform_code"] = s, q
     code = s if s in XFORM_TARGET else (q if q in XFORM_TARGET else None)
+    desc = f.get("descrip") or ""
+    aux = f.get("aux_file") or ""
+    said = [w for w in _NIFTI_RESAMPLE_WORDS if w in f"{desc} {aux}".lower()]
     if code is not None:
         d["grid_aligned_to"] = XFORM_TARGET[code]
         if code in (3, 4, 5):
             d["template_space"] = {3: "talairach", 4: "mni", 5: "template"}[code]
-        notes.append(f"The NIfTI {'sform' if code == s else 'qform'} code is {code} "
-                     f"({XFORM_NAME[code]}): the grid was registered to "
-                     f"{'another image' if code == 2 else 'a template space'}, so the volume "
-                     "has most likely been resampled.")
+            notes.append(f"The NIfTI {'sform' if code == s else 'qform'} code is {code} "
+                         f"({XFORM_NAME[code]}): the grid is in a template space, so the "
+                         "volume has most likely been resampled.")
+        else:
+            notes.append(f"The NIfTI {'sform' if code == s else 'qform'} code is 2 (aligned "
+                         "to another image). nibabel and other writers set this code by "
+                         "default, so on its own it is no evidence of resampling.")
     elif max(s, q) == 1:
         d["grid_aligned_to"] = "scanner"
-    desc = f.get("descrip")
     if desc:
         d["descrip"] = desc
         notes.append(f"NIfTI description: \"{desc}\".")
+    if aux:
+        d["aux_file"] = aux
+        notes.append(f"NIfTI aux_file: \"{aux}\".")
+    if said:
+        d["descrip_resampling_words"] = said
+        notes.append("The NIfTI description names a step that writes a new grid ("
+                     f"{', '.join(said)}): registration or reslicing, a resampling.")

@@ -17,6 +17,7 @@ import app
 from app.io.volume import Volume
 from app.perf import tune_allocator
 from app.traces import base, calibration, plan
+from app.traces.declared import reconcile
 from app.traces.header import HeaderFacts
 
 SCHEMA = "rawproof.report/1"
@@ -174,12 +175,14 @@ def analyse_volume(
                           max_frames=max_frames, options=options, progress=said)
     traces_obj, seconds, steps = result.traces, result.seconds, result.steps
     facts = steps["header"]
+    # header and pixels meet in each trace; blank inputs become inconclusive
+    traces_obj, joined = reconcile(traces_obj, facts, volume)
     header = ({"declared": facts.declared, "notes": facts.notes}
               if isinstance(facts, HeaderFacts) else
               {"declared": {}, "notes": [f"header could not be interpreted: {facts}"]})
     traces = {tid: _jsonable(calibrated(t).to_dict()) for tid, t in traces_obj.items()}
     timing = {k: v for k, v in seconds.items()}
-    warnings: list[str] = list(result.notes)
+    warnings: list[str] = list(result.notes) + joined
     report = {
         "schema": SCHEMA,
         "tool_version": app.__version__,
