@@ -10,10 +10,11 @@ step                function                                     needs
 ==================  ===========================================  =======================
 ``header``          :func:`app.traces.header.header_step`        volume
 ``spectrum``        :func:`app.traces.spectrum.spectrum_step`    volume, scope, notes
-``support``         :func:`app.traces.support.support_step`      spectrum
+``support``         :func:`app.traces.support.support_step`      spectrum, noise_reference?
 ``background``      :func:`app.traces.background.background_step`  volume, scope, notes
 ``value_kind``      :func:`app.traces.value_kind.value_kind_step`  volume, background
 ``jpeg_pixels``     :func:`app.traces.jpeg_pixels.jpeg_pixels_step`  volume, scope, notes
+``noise_reference`` :func:`app.traces.noise_reference.noise_reference_step`  spectrum, background?
 ==================  ===========================================  =======================
 
 ``volume``, ``scope`` (the frames read, batch size, FFT workers, reader options)
@@ -51,8 +52,10 @@ from app.traces import (
     intensity_quantization,
     jpeg_pixels,
     kspace_filtering,
+    kspace_synthesis,
     lossy_compression,
     magnitude_only,
+    noise_reference,
     partial_fourier,
     resampling,
     spectrum,
@@ -73,6 +76,7 @@ STEPS: dict[str, Callable[..., Any]] = {
     "background": background.background_step,
     "value_kind": value_kind.value_kind_step,
     "jpeg_pixels": jpeg_pixels.jpeg_pixels_step,
+    "noise_reference": noise_reference.noise_reference_step,
 }
 
 #: The analyser modules, in report order; each registers its ``analyse`` function.
@@ -86,6 +90,7 @@ ANALYSERS = (
     resampling,
     kspace_filtering,
     partial_fourier,
+    kspace_synthesis,
 )
 
 

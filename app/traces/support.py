@@ -38,6 +38,7 @@ References
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -102,6 +103,8 @@ class AxisSupport:
     asymmetry: float = 0.0
     x_pos: float | None = None
     x_neg: float | None = None
+    decision: dict | None = None
+    method: str = "step"
 
     @property
     def padding_factor(self) -> float:
@@ -352,14 +355,177 @@ def detect(spec: sp.Spectrum) -> dict[str, AxisSupport]:
     return out
 
 
-def support_step(spectrum: sp.Spectrum) -> dict[str, AxisSupport]:
+#: a k-space line counts as empty below this share of the thermal noise floor (complex
+#: data): receiver roll-off and coil correlation lower raw noise by far less
+EMPTY_SHARE = 0.25
+#: without a background noise level, a line is empty below this share of the weakest
+#: in-band line (a stricter margin for a weaker reference)
+EMPTY_SHARE_FALLBACK = 1e-3
+#: false-alarm rate of the empty-band test per dataset (split over the axis sides)
+FALSE_ALARM_RATE = 1e-3
+#: the drop of a magnitude step is tested against at most this much smooth decay
+STEP_NULL_DB = 3.0
+
+
+def _line_levels(spec: sp.Spectrum, axis: int) -> tuple[np.ndarray, int]:
+    """Mean power of each k-space line along ``axis`` over the other axis's occupied bins.
+
+    Returns the levels (centred order) and the number of bins averaged per line.
+    """
+    p = spec.mean_power if axis == 0 else spec.mean_power.T
+    col = p.mean(axis=0)
+    occupied = col > 1e-9 * float(np.median(col[col > 0])) if np.any(col > 0) else col >= 0
+    if not occupied.any():
+        occupied[:] = True
+    return p[:, occupied].mean(axis=1), int(occupied.sum()) * spec.n_frames
+
+
+class _Scaled:
+    """A noise reference with its floor rescaled (another FFT normalisation)."""
+
+    usable = True
+
+    def __init__(self, noise: Any, factor: float) -> None:
+        self.floor = float(noise.floor) * factor
+
+
+def _empty_run(levels: np.ndarray, limit: float) -> int:
+    """Number of outermost samples of an outward side that all lie below ``limit``."""
+    below = levels[::-1] < limit
+    return int(np.argmin(below)) if not below.all() else len(levels)
+
+
+def complex_axis_support(spec: sp.Spectrum, axis: int, noise: Any = None, *,
+                         slices: bool = False) -> AxisSupport:
+    """Acquired region of complex data (complex images, k-space) along one axis.
+
+    Complex data keep zero-filled k-space exactly empty: the thermal noise floor ends
+    at the edge of the acquired region. Each outward side's outermost run of lines
+    below ``EMPTY_SHARE`` of the white noise level (``noise.floor``; without a
+    background, ``EMPTY_SHARE_FALLBACK`` of the weakest in-band line) is tested as a
+    whole: under the null hypothesis (raw data: white noise of at least that level
+    in every line) the mean of its ``M`` periodogram bins is Gamma(M, level / M)
+    distributed (each bin is exponential: chi-square with 2 degrees of freedom over
+    2), and the run is called empty when that mean is below the Gamma quantile at
+    the per-side false-alarm rate.
+
+    References
+    ----------
+    .. [1] Kay, S. M. *Fundamentals of Statistical Signal Processing II: Detection
+       Theory*, 1998 (periodogram statistics of white Gaussian noise).
+    .. [2] Bernstein, Fain and Riederer, J. Magn. Reson. Imaging 14:270-280, 2001.
+    """
+    from scipy import stats
+
+    if slices:
+        # the through-plane profile: mean power over all rows and the sampled columns
+        name = "slices"
+        levels = np.asarray(spec.profiles["slices"], dtype=np.float64)
+        bins = spec.shape[0] * min(spec.shape[1], sp.SLICE_PROFILE_COLUMNS)
+        if noise is not None and getattr(noise, "usable", False):
+            # a white floor per in-plane bin is floor / (rows * cols) per pixel; the
+            # slice FFT of one pixel column carries slices * pixel variance
+            noise = _Scaled(noise, len(levels) / (spec.shape[0] * spec.shape[1]))
+    else:
+        name = ("rows", "cols")[axis]
+        levels, bins = _line_levels(spec, axis)
+    n = len(levels)
+    c = n // 2
+    usable = noise is not None and getattr(noise, "usable", False)
+    positive = levels[levels > 0]
+    if usable:
+        ref, share = float(noise.floor), EMPTY_SHARE
+    else:
+        ref = float(np.min(positive)) if positive.size else 0.0
+        inner = levels[max(0, c - n // 8):c + n // 8 + 1]
+        ref, share = float(np.min(inner)) if inner.size else ref, EMPTY_SHARE_FALLBACK
+    alpha = FALSE_ALARM_RATE / 4.0
+    sides = {}
+    for side, prof in (("pos", levels[c + 1:]), ("neg", levels[c - 1::-1])):
+        run = _empty_run(prof, share * ref) if ref > 0 else 0
+        if run:
+            m = run * bins
+            tail = float(prof[len(prof) - run:].mean())
+            p = float(stats.gamma.cdf(tail * m / (share * ref), m))
+            thr = float(stats.gamma.ppf(alpha, m)) * share * ref / m
+        else:
+            m, tail, p, thr = bins, float(prof[-1]) if len(prof) else ref, 1.0, 0.0
+        sides[side] = {"extent": len(prof) - run, "run": run, "tail": tail, "p": p,
+                       "threshold": thr, "bins": m}
+    found_sides = [s for s in sides.values() if s["run"] and s["p"] <= alpha]
+    # the decision statistic: how far (dB) the emptiest side lies below the floor
+    worst = min(sides.values(), key=lambda s: s["p"])
+    value = float(10 * np.log10(share * ref / max(worst["tail"], 1e-300))) if ref > 0 else 0.0
+    threshold = float(10 * np.log10(share * ref / worst["threshold"])) if \
+        worst["threshold"] > 0 else float("inf")
+    decision = {"statistic": "empty band below thermal noise floor (dB)",
+                "value": value, "threshold": threshold, "false_alarm_rate": FALSE_ALARM_RATE,
+                "p_value": min(1.0, 4.0 * worst["p"]),
+                "reference": "background noise" if usable else "weakest in-band line"}
+    xp, xn = sides["pos"]["extent"] + 0.5, sides["neg"]["extent"] + 0.5
+    if not found_sides:
+        return AxisSupport(name, n, False, 1.0, None, None, 0.0, sp.to_db(ref).item(),
+                           x_pos=None, x_neg=None, decision=decision, method="noise_floor")
+    if sides["pos"]["p"] > alpha:
+        xp = n - c - 0.5
+    if sides["neg"]["p"] > alpha:
+        xn = c + 0.5
+    # a partial-Fourier side is shorter: the zero-filled matrix is twice the longer side
+    width = min(float(n), xp + xn if abs(xp - xn) <= 1.0 else 2.0 * max(xp, xn))
+    lo, hi = c - int(np.floor(xn)), c + int(np.floor(xp))
+    return AxisSupport(name, n, width / n < FOUND_SUPPORT, width / n, (max(0, lo), min(n - 1, hi)),
+                       value, value, sp.to_db(ref).item(), asymmetry=float(xp - xn),
+                       x_pos=xp, x_neg=xn, decision=decision, method="noise_floor")
+
+
+def step_decision(a: AxisSupport, spec: sp.Spectrum, axis: int) -> dict:
+    """Decision record of a magnitude step edge: an F-test of the level drop.
+
+    The mean power of the ``v`` lines inside the edge over that of the ``v`` lines
+    beyond it is, for Gaussian periodogram bins of equal means, F(2M, 2M)
+    distributed; the null hypothesis allows a smooth decay of up to
+    ``STEP_NULL_DB`` over that distance (the object's own roll-off), so the
+    p-value is that of the observed ratio over ``10**(STEP_NULL_DB / 10)``.
+
+    References
+    ----------
+    .. [1] Snedecor, G. W. and Cochran, W. G. *Statistical Methods*, 8th ed., 1989
+       (the variance-ratio F test).
+    """
+    from scipy import stats
+
+    score = a.score_db if np.isfinite(a.score_db) else 0.0
+    m = max(1, spec.n_frames * max(1, spec.shape[1 - axis] // 10) * line_window(a.size))
+    drop = a.drop_db if a.drop_db is not None else score
+    ratio = 10 ** ((drop - STEP_NULL_DB) / 10.0)
+    p = float(stats.f.sf(ratio, 2 * m, 2 * m)) if a.found else 1.0
+    return {"statistic": "step score of the log-power profile (dB)", "value": float(score),
+            "threshold": STEP_THRESHOLD_DB, "false_alarm_rate": None,
+            "p_value": p, "reference": "step against the in-band level"}
+
+
+def support_step(spectrum: sp.Spectrum, noise_reference: Any = None) -> dict[str, AxisSupport]:
     """The shared step: per-axis acquired regions of the dataset's spectrum.
 
-    Computed once by the analysis plan and handed to ``zero_filling``,
-    ``kspace_filtering``, ``partial_fourier`` and ``resampling``.
+    Complex data (complex images, k-space) are judged against the thermal noise
+    floor (:func:`complex_axis_support`); magnitude and real images by the step of
+    their log-power profile (:func:`detect`), whose non-linear echo beyond the edge
+    keeps the floor test from applying. Computed once by the analysis plan and
+    handed to ``zero_filling``, ``kspace_filtering``, ``partial_fourier`` and
+    ``resampling``.
 
     References
     ----------
     .. [1] Bernstein, Fain and Riederer, J. Magn. Reson. Imaging 14:270-280, 2001.
     """
-    return detect(spectrum)
+    if spectrum.complex_input or spectrum.domain == "kspace":
+        out = {ax: complex_axis_support(spectrum, i, noise_reference)
+               for i, ax in enumerate(("rows", "cols"))}
+        if "slices" in spectrum.profiles:
+            out["slices"] = complex_axis_support(spectrum, 0, noise_reference, slices=True)
+        return out
+    out = detect(spectrum)
+    for i, ax in enumerate(("rows", "cols", "slices")):
+        if ax in out:
+            out[ax].decision = step_decision(out[ax], spectrum, min(i, 1))
+    return out

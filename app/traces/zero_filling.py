@@ -39,8 +39,6 @@ from __future__ import annotations
 
 from typing import Any
 
-import numpy as np
-
 from app.io.volume import Volume
 from app.traces import spectrum as sp
 from app.traces.base import Trace, register
@@ -53,9 +51,20 @@ DEFAULT_ESTIMATES: dict[str, Any] = {
 }
 
 
-def _confidence(found: list[AxisSupport]) -> float:
-    best = max(a.score_db for a in found)
-    return float(np.clip(0.5 + (best - STEP_THRESHOLD_DB) / 8.0, 0.5, 0.99))
+def _confidence(decision: dict | None) -> float:
+    """Probability that a present call is right: one minus the test's p-value."""
+    if not decision or decision.get("p_value") is None:
+        return 0.5
+    return float(1.0 - decision["p_value"])
+
+
+def _strongest(axes: dict[str, AxisSupport]) -> dict | None:
+    """The decision record of the axis with the most evidence (smallest p-value)."""
+    ds = [a.decision for a in axes.values() if a.decision]
+    if not ds:
+        return None
+    return min(ds, key=lambda d: (d.get("p_value") if d.get("p_value") is not None else 1.0,
+                                  -d["value"]))
 
 
 def trace_from(spec: sp.Spectrum, axes: dict[str, AxisSupport]) -> Trace:
@@ -67,6 +76,8 @@ def trace_from(spec: sp.Spectrum, axes: dict[str, AxisSupport]) -> Trace:
         }
         for ax, a in axes.items()
     }
+    found = [a for a in axes.values() if a.found and a.support_fraction < FOUND_SUPPORT]
+    decision = _strongest({a.axis: a for a in found} if found else axes)
     evidence: dict[str, Any] = {
         "profiles_db": sp.profile_db_evidence(spec),
         "edges": {ax: list(a.edges) if a.edges else None for ax, a in axes.items()},
@@ -75,21 +86,33 @@ def trace_from(spec: sp.Spectrum, axes: dict[str, AxisSupport]) -> Trace:
         "noise_floor_db": {ax: sp.round_sig(a.noise_floor_db) if a.noise_floor_db is not None
                            else None for ax, a in axes.items()},
         "step_score_db": {ax: sp.round_sig(a.score_db) for ax, a in axes.items()},
+        "method": {ax: a.method for ax, a in axes.items()},
+        "decisions": {ax: _rounded(a.decision) for ax, a in axes.items()},
+        "decision": _rounded(decision),
         "threshold_db": STEP_THRESHOLD_DB,
         "n_frames": spec.n_frames,
         **sp.map_evidence(spec),
     }
-    found = [a for a in axes.values() if a.found and a.support_fraction < FOUND_SUPPORT]
     if found:
         parts = ", ".join(
             f"{a.axis} {a.padding_factor:.2f}x (support {a.support_fraction:.3f})" for a in found
         )
-        summary = f"k-space is empty or only echo outside a central region: zero-filled by {parts}."
-        return Trace(TRACE_ID, "present", _confidence(found), summary, estimates, evidence)
-    best = max(a.score_db for a in axes.values())
-    conf = float(np.clip(0.6 + (STEP_THRESHOLD_DB - best) / 8.0, 0.5, 0.95))
+        how = ("holds no thermal noise" if found[0].method == "noise_floor"
+               else "is empty or only echo")
+        summary = f"k-space {how} outside a central region: zero-filled by {parts}."
+        return Trace(TRACE_ID, "present", _confidence(decision), summary, estimates, evidence)
+    p = decision.get("p_value") if decision else None
+    # absent: the probability of no zero-fill given the statistic; the step test has
+    # no exact null for "absent", so its p-value stands in (a calibration map refines it)
+    conf = float(p) if p is not None else 0.5
     summary = "The spectrum reaches the edge of k-space on every axis: no zero-filling found."
     return Trace(TRACE_ID, "absent", conf, summary, estimates, evidence)
+
+
+def _rounded(d: dict | None) -> dict | None:
+    if d is None:
+        return None
+    return {k: (sp.round_sig(v) if isinstance(v, float) else v) for k, v in d.items()}
 
 
 @register(TRACE_ID, version="1", order=10, default_estimates=DEFAULT_ESTIMATES)
