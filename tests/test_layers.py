@@ -1,0 +1,107 @@
+"""The import graph of ``app/`` keeps the design's one-way layers (shared/DESIGN.md,
+"Layout": a module knows only the layers below it). Read from the source with
+:mod:`ast`, every import counted, also those inside functions (common practice,
+no source)."""
+
+from __future__ import annotations
+
+import ast
+from pathlib import Path
+
+import pytest
+
+APP = Path(__file__).resolve().parents[1] / "app"
+
+
+def _module_name(path: Path) -> str:
+    parts = list(path.relative_to(APP.parent).with_suffix("").parts)
+    if parts[-1] == "__init__":
+        parts.pop()
+    return ".".join(parts)
+
+
+def _graph() -> dict[str, set[str]]:
+    """Module -> the ``app`` modules it imports (a package import names its ``__init__``)."""
+    files = {_module_name(p): p for p in APP.rglob("*.py")}
+    graph: dict[str, set[str]] = {}
+    for name, path in files.items():
+        is_pkg = path.name == "__init__.py"
+        deps: set[str] = set()
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+            targets: list[str] = []
+            if isinstance(node, ast.Import):
+                targets = [a.name for a in node.names]
+            elif isinstance(node, ast.ImportFrom):
+                base = node.module or ""
+                if node.level:
+                    pkg = name.split(".") if is_pkg else name.split(".")[:-1]
+                    pkg = pkg[:len(pkg) - node.level + 1]
+                    base = ".".join(pkg + ([base] if base else []))
+                targets = [f"{base}.{a.name}" for a in node.names] + [base]
+            for t in targets:
+                while t and t not in files:
+                    t = t.rpartition(".")[0]
+                if t and t != name:
+                    deps.add(t)
+        graph[name] = deps
+    return graph
+
+
+def _in(module: str, layer: str) -> bool:
+    return module == layer or module.startswith(layer + ".")
+
+
+@pytest.mark.parametrize(("lower", "upper"), [
+    ("app.io", "app.traces"),
+    ("app.io", "app.store"),
+    ("app.io", "app.web"),
+    ("app.io", "app.worker"),
+    ("app.store", "app.worker"),
+    ("app.store", "app.web"),
+    ("app.store", "app.cli"),
+    ("app.worker", "app.web"),
+    ("app.worker", "app.cli"),
+])
+def test_no_upward_import(lower, upper):
+    """``lower`` never imports ``upper``."""
+    bad = sorted(f"{m} -> {d}" for m, deps in _graph().items() if _in(m, lower)
+                 for d in deps if _in(d, upper))
+    assert not bad, bad
+
+
+def test_no_circle_outside_traces():
+    """No import circle among the modules outside ``app.traces`` (Tarjan's strongly
+    connected components; a component of more than one module is a circle)."""
+    graph = {m: {d for d in deps if not _in(d, "app.traces")}
+             for m, deps in _graph().items() if not _in(m, "app.traces")}
+    index: dict[str, int] = {}
+    low: dict[str, int] = {}
+    stack: list[str] = []
+    on: set[str] = set()
+    circles: list[list[str]] = []
+
+    def visit(v: str) -> None:
+        index[v] = low[v] = len(index)
+        stack.append(v)
+        on.add(v)
+        for w in graph.get(v, ()):
+            if w not in index:
+                visit(w)
+                low[v] = min(low[v], low[w])
+            elif w in on:
+                low[v] = min(low[v], index[w])
+        if low[v] == index[v]:
+            comp = []
+            while True:
+                w = stack.pop()
+                on.discard(w)
+                comp.append(w)
+                if w == v:
+                    break
+            if len(comp) > 1:
+                circles.append(sorted(comp))
+
+    for v in sorted(graph):
+        if v not in index:
+            visit(v)
+    assert not circles, circles
