@@ -57,7 +57,8 @@ EMPTY_DB = 60.0
 MAGNITUDE_STEP_DB = 7.0
 #: magnitude data: the inner step is searched between these fractions of the half-support
 SEARCH = (0.1, 0.85)
-DEFAULT_ESTIMATES: dict[str, Any] = {"rows": {"fraction": None}, "cols": {"fraction": None}}
+DEFAULT_ESTIMATES: dict[str, Any] = {"rows": {"fraction": None}, "cols": {"fraction": None},
+                                     "fill": None}
 
 
 @dataclass
@@ -88,6 +89,8 @@ class AxisFraction:
     edges: tuple[int, int] | None
     asymmetry_db: float | None
     score_db: float
+    fill: str | None = None
+    decision: dict | None = None
 
 
 def _empty_extent(side_db: np.ndarray) -> float | None:
@@ -158,8 +161,141 @@ def _magnitude_axis(spec: sp.Spectrum, i: int, ax: str, other: float,
     return AxisFraction(ax, frac, True, "magnitude_step", (c - d, c + d), best, best)
 
 
-def detect(spec: sp.Spectrum, support: dict[str, zf.AxisSupport]) -> dict[str, AxisFraction]:
+#: at most this many frames go into the conjugate-symmetry test
+SYMMETRY_FRAMES = 8
+#: false-alarm rate per dataset of the complex-data tests (split over axes and tests)
+FALSE_ALARM_RATE = 1e-3
+#: a correlation of mirrored outer bands at least this high is a conjugate copy
+CONJUGATE_R = 0.9
+#: the mirrored-band F-test allows raw outer bands to differ by this factor in power
+#: (object asymmetry, receiver roll-off)
+LEVEL_NULL_RATIO = 2.0
+#: raw complex data: outer-band conjugate correlation seen up to about 0.45 on the
+#: in-sample generator; the null hypothesis allows up to this
+RAW_R = 0.6
+#: the conjugate test reads the lines beyond this share of the axis from DC
+OUTER_START = 0.42
+
+
+def _kspace_frames(volume: Volume, spec: sp.Spectrum, frames: Any) -> np.ndarray:
+    """Centred complex k-space of a few frames, ``(frames * coils, rows, cols)``."""
+    from app.traces.context import evenly_spaced
+
+    idx = evenly_spaced(np.asarray(frames), SYMMETRY_FRAMES)
+    out = []
+    for _, block in volume.iter_slices(8, indices=idx):
+        b = np.nan_to_num(np.asarray(block)).astype(np.complex128)
+        b = b.reshape(-1, *b.shape[-2:])
+        if volume.domain == "kspace":
+            k = np.fft.fftshift(b, axes=(-2, -1)) if spec.kspace_shifted else b
+        else:
+            k = np.fft.fftshift(np.fft.fft2(b), axes=(-2, -1))
+        out.append(k)
+    return np.concatenate(out)
+
+
+def _mirror(k: np.ndarray, axis: int) -> np.ndarray:
+    """``K(-k)``: both in-plane axes reflected through DC at ``n // 2`` (centred order)."""
+    r = k
+    for ax in (-2, -1):
+        n = k.shape[ax]
+        idx = (2 * (n // 2) - np.arange(n)) % n
+        r = np.take(r, idx, axis=ax)
+    return r
+
+
+def conjugate_symmetry(k: np.ndarray, axis: int) -> dict[str, Any]:
+    """Correlation of ``K(k)`` with ``conj K(-k)`` per distance from DC along ``axis``.
+
+    ``r(d) = |sum K(k) K(-k)| / sqrt(sum |K(k)|^2 sum |K(-k)|^2)`` over the lines at
+    ``+d`` (all frames, coils and bins of the other axis). Independent complex
+    Gaussian noise gives ``M r^2`` about exponential with mean 1 (``M`` the bins
+    summed); a conjugate-synthesised side gives ``r`` near 1.
+
+    References
+    ----------
+    .. [1] Noll, Nishimura and Macovski, IEEE Trans. Med. Imaging 10:154-163, 1991.
+    .. [2] McGibney et al., Magn. Reson. Med. 30:51-59, 1993.
+    """
+    km = _mirror(k, axis)
+    a = np.moveaxis(k, -2 + axis, 0)
+    b = np.moveaxis(km, -2 + axis, 0)
+    n = a.shape[0]
+    c = n // 2
+    prod = (a * b).reshape(n, -1).sum(axis=1)
+    pa = (np.abs(a) ** 2).reshape(n, -1).sum(axis=1)
+    pb = (np.abs(b) ** 2).reshape(n, -1).sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        r = np.abs(prod) / np.sqrt(pa * pb)
+    r = np.nan_to_num(r)
+    d = np.arange(1, n - c)
+    return {"r": r[c + d], "bins": int(a[0].size), "d": d}
+
+
+def _complex_filled_axis(spec: sp.Spectrum, k: np.ndarray, i: int, ax: str) -> AxisFraction:
+    """A partial-Fourier side filled by synthesis: conjugate copy or an iterative fill."""
+    from scipy import stats
+
+    n = spec.shape[i]
+    sym = conjugate_symmetry(k, i)
+    r, m, d = sym["r"], sym["bins"], sym["d"]
+    alpha = FALSE_ALARM_RATE / 8.0
+    # the outer sixth of each side: noise-dominated in raw data, synthesised for every
+    # fraction up to 7/8
+    outer = d >= OUTER_START * n
+    if not outer.any():
+        return AxisFraction(ax, 1.0, False, "none", None, None, 0.0)
+    # Fisher's z of the correlation, one unit per line pair (lines of one object are
+    # not independent, so this is conservative), tested against the highest
+    # correlation an object's own near-Hermitian spectrum gives raw data
+    lines = int(outer.sum())
+    r_out = float(np.sqrt(np.mean(r[outer] ** 2)))
+    z = np.arctanh(min(r_out, 0.999999))
+    p_corr = float(stats.norm.sf((z - np.arctanh(RAW_R)) * np.sqrt(lines)))
+    del m
+    found = r_out >= CONJUGATE_R and p_corr <= alpha
+    rec = {"statistic": "conjugate-symmetry correlation of the outer bands", "value": r_out,
+           "threshold": CONJUGATE_R, "false_alarm_rate": FALSE_ALARM_RATE,
+           "p_value": min(1.0, 8.0 * p_corr)}
+    if not found:
+        return AxisFraction(ax, 1.0, False, "none", None, r_out, r_out, decision=rec)
+    # the synthesised region starts where the correlation stays high outwards
+    high = r >= 0.5 * (1.0 + CONJUGATE_R) - 0.2
+    start = len(high)
+    for j in range(len(high) - 1, -1, -1):
+        if not high[j]:
+            break
+        start = j
+    kc = float(d[start]) - 0.5 if start < len(d) else n / 2.0
+    frac = float(min(1.0, 0.5 + kc / n))
+    return AxisFraction(ax, frac, True, "conjugate_symmetry", None, r_out, r_out,
+                        fill="conjugate", decision=rec)
+
+
+def _zeros_decision(spec: sp.Spectrum, a: AxisFraction, i: int) -> dict[str, Any]:
+    """F-test of the mirrored outer bands' noise levels (acquired over missing side)."""
+    from scipy import stats
+
+    if a.asymmetry_db is None or not np.isfinite(a.asymmetry_db):
+        return {"statistic": "mirrored outer band level ratio (dB)", "value": 0.0,
+                "threshold": float("nan"), "false_alarm_rate": FALSE_ALARM_RATE,
+                "p_value": 1.0}
+    m = max(1, spec.n_frames * spec.shape[1 - i])
+    ratio_db = abs(float(a.asymmetry_db))
+    f = 10 ** (ratio_db / 10.0) / LEVEL_NULL_RATIO
+    p = float(stats.f.sf(f, 2 * m, 2 * m))
+    thr = 10 * np.log10(LEVEL_NULL_RATIO * stats.f.isf(FALSE_ALARM_RATE / 8, 2 * m, 2 * m))
+    return {"statistic": "mirrored outer band level ratio (dB)", "value": ratio_db,
+            "threshold": float(thr), "false_alarm_rate": FALSE_ALARM_RATE,
+            "p_value": min(1.0, 8.0 * p)}
+
+
+def detect(spec: sp.Spectrum, support: dict[str, zf.AxisSupport],
+           kspace: np.ndarray | None = None) -> dict[str, AxisFraction]:
     """Acquired fraction per axis (``rows``, ``cols``) from a spectrum.
+
+    ``kspace`` (centred complex k-space of a few frames, complex data only) enables
+    the conjugate-symmetry test of a synthesised side.
 
     References
     ----------
@@ -171,19 +307,51 @@ def detect(spec: sp.Spectrum, support: dict[str, zf.AxisSupport]) -> dict[str, A
     for i, ax in enumerate(("rows", "cols")):
         other = zf_axes["cols" if ax == "rows" else "rows"].support_fraction
         if complex_like:
-            out[ax] = _complex_axis(spec, i, ax, other)
+            a = _complex_axis(spec, i, ax, other)
+            a.decision = _zeros_decision(spec, a, i)
+            if a.found:
+                a.fill = "zeros"
+            elif kspace is not None:
+                a = _complex_filled_axis(spec, kspace, i, ax)
+            out[ax] = a
         else:
             a = zf_axes[ax]
             n = spec.shape[i]
             half = a.x_pos if a.found and a.x_pos is not None else n / 2.0
             out[ax] = _magnitude_axis(spec, i, ax, other, half)
+            out[ax].decision = _magnitude_decision(out[ax], spec, i)
     return out
 
 
-def trace_from(spec: sp.Spectrum, support: dict[str, zf.AxisSupport]) -> Trace:
+def _magnitude_decision(a: AxisFraction, spec: sp.Spectrum, i: int) -> dict[str, Any]:
+    """F-test record of the magnitude inner step (drop over a 3 dB smooth-decay null)."""
+    from scipy import stats
+
+    score = float(a.score_db) if np.isfinite(a.score_db) else 0.0
+    m = max(1, spec.n_frames * max(1, spec.shape[1 - i] // 10) * 3)
+    p = float(stats.f.sf(10 ** ((score - 3.0) / 10.0), 2 * m, 2 * m)) if a.found else 1.0
+    return {"statistic": "symmetric inner step of the magnitude spectrum (dB)",
+            "value": score, "threshold": MAGNITUDE_STEP_DB, "false_alarm_rate": None,
+            "p_value": p}
+
+
+def _rounded(d: dict | None) -> dict | None:
+    if d is None:
+        return None
+    return {k: (sp.round_sig(v) if isinstance(v, float) else v) for k, v in d.items()}
+
+
+def trace_from(spec: sp.Spectrum, support: dict[str, zf.AxisSupport],
+               kspace: np.ndarray | None = None) -> Trace:
     """Build the ``partial_fourier`` trace from a spectrum."""
-    axes = detect(spec, support)
-    estimates = {ax: {"fraction": round(a.fraction, 4)} for ax, a in axes.items()}
+    axes = detect(spec, support, kspace)
+    estimates: dict[str, Any] = {ax: {"fraction": round(a.fraction, 4)}
+                                 for ax, a in axes.items()}
+    found = [a for a in axes.values() if a.found]
+    decisions = [a.decision for a in (found or list(axes.values())) if a.decision]
+    decision = min(decisions, key=lambda d: d["p_value"]) if decisions else None
+    fill = found[0].fill if found else None
+    estimates["fill"] = fill
     evidence = {
         "profiles_db": sp.profile_db_evidence(spec),
         "asymmetry_db": {ax: sp.round_sig(a.asymmetry_db) if a.asymmetry_db is not None
@@ -192,29 +360,44 @@ def trace_from(spec: sp.Spectrum, support: dict[str, zf.AxisSupport]) -> Trace:
         "method": {ax: a.method for ax, a in axes.items()},
         "score_db": {ax: sp.round_sig(a.score_db) if np.isfinite(a.score_db) else None
                      for ax, a in axes.items()},
+        "decisions": {ax: _rounded(a.decision) for ax, a in axes.items()},
+        "decision": _rounded(decision),
     }
-    found = [a for a in axes.values() if a.found]
+    p = float(decision["p_value"]) if decision else 1.0
+    complex_like = spec.complex_input or spec.domain == "kspace"
     if found:
         parts = ", ".join(f"{a.axis} {a.fraction:.3f}" for a in found)
-        how = ("one side of k-space is missing" if found[0].method == "asymmetric_support"
-               else "the magnitude spectrum steps down symmetrically inside its support")
+        how = {"asymmetric_support": "one side of k-space is missing (zeros)",
+               "conjugate_symmetry": "one side of k-space is a conjugate copy of the other",
+               "magnitude_step": "the magnitude spectrum steps down symmetrically inside its "
+                                 "support"}[found[0].method]
         summary = f"Partial Fourier: {how}; acquired fraction {parts}."
-        conf = 0.9 if found[0].method == "asymmetric_support" else 0.6
-        return Trace(TRACE_ID, "present", conf, summary, estimates, evidence)
-    complex_like = spec.complex_input or spec.domain == "kspace"
+        origin = "acquisition" if fill == "zeros" else "processing"
+        if fill == "zeros":
+            summary += (" Zeros in place of the missing side are what a scanner delivers "
+                        "from a partial-Fourier acquisition.")
+        return Trace(TRACE_ID, "present", 1.0 - p, summary, estimates, evidence,
+                     origin=origin)
     if complex_like:
-        summary = "k-space is symmetric about its centre on every axis: no partial Fourier."
-        return Trace(TRACE_ID, "absent", 0.8, summary, estimates, evidence)
+        # absent: no test found its trace; the probability is the smallest p-value
+        p = min(float(a.decision["p_value"]) for a in axes.values() if a.decision) \
+            if decisions else 0.5
+        summary = ("k-space is symmetric about its centre on every axis and its outer bands "
+                   "hold independent noise: no partial Fourier.")
+        return Trace(TRACE_ID, "absent", p, summary, estimates, evidence)
     # a magnitude image's power spectrum is symmetric; the weak step partial Fourier
     # leaves in it is often below what raw images show (bench/accuracy_spectral.py)
-    summary = ("No strong partial-Fourier step in the magnitude spectrum; partial Fourier "
-               "(zero-filled or conjugate-synthesised) cannot be ruled out from a "
-               "magnitude image.")
-    return Trace(TRACE_ID, "inconclusive", 0.0, summary, estimates, evidence)
+    summary = ("Magnitude image: its power spectrum is symmetric about DC, so a missing "
+               "k-space side cannot show as asymmetry and a conjugate or iterative fill "
+               "leaves nothing a power spectrum can see; only a strong symmetric step at "
+               "the partial-Fourier boundary could show it, and none was found. Partial "
+               "Fourier cannot be ruled out.")
+    tr = Trace(TRACE_ID, "inconclusive", 0.0, summary, estimates, evidence)
+    return tr
 
 
-@register(TRACE_ID, version="1", order=60, default_estimates=DEFAULT_ESTIMATES)
-def analyse(volume: Volume, *, spectrum: sp.Spectrum,
+@register(TRACE_ID, version="2", order=60, default_estimates=DEFAULT_ESTIMATES)
+def analyse(volume: Volume, *, scope: Any, spectrum: sp.Spectrum,
             support: dict[str, zf.AxisSupport]) -> Trace:
     """Measure partial Fourier sampling (see module docstring).
 
@@ -223,4 +406,7 @@ def analyse(volume: Volume, *, spectrum: sp.Spectrum,
     .. [1] Noll, Nishimura and Macovski, IEEE Trans. Med. Imaging 10:154-163, 1991.
     .. [2] McGibney et al., Magn. Reson. Med. 30:51-59, 1993.
     """
-    return trace_from(spectrum, support)
+    kspace = None
+    if spectrum.complex_input or spectrum.domain == "kspace":
+        kspace = _kspace_frames(volume, spectrum, scope.frames)
+    return trace_from(spectrum, support, kspace)
