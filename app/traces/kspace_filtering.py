@@ -59,7 +59,7 @@ MIN_HALF_SUPPORT = 4.0
 MAX_FIT_SAMPLES = 1024
 ALPHAS = np.linspace(0.0, 5.0, 21)
 SCALES = np.linspace(0.3, 1.0, 15)
-DEFAULT_ESTIMATES: dict[str, Any] = {"window": None}
+DEFAULT_ESTIMATES: dict[str, Any] = {"window": None, "shape": None}
 
 
 def window_curve(family: str, param: float | None, u: np.ndarray) -> np.ndarray:
@@ -274,19 +274,46 @@ def trace_from(spec: sp.Spectrum, support: dict[str, zf.AxisSupport]) -> Trace:
         "ratio": RATIO,
     }
     called = [f for f in fits.values() if f.called]
+    decision = _decision(called or list(fits.values()))
+    evidence["decision"] = decision
     if called:
         best = min(called, key=lambda f: f.rms_window_db / max(f.rms_plain_db, 1e-9))
         par = "" if best.param is None else f" (parameter {best.param:g})"
         axes = ", ".join(f.axis for f in called)
         summary = (f"The in-band spectrum rolls off like a {best.window} window{par} along "
                    f"{axes}: k-space was apodized.")
-        gain = best.rms_window_db / max(best.rms_plain_db, 1e-9)
-        conf = float(np.clip(1.0 - gain, 0.5, 0.95))
-        return Trace(TRACE_ID, "present", conf, summary,
-                     {"window": best.window, "param": best.param}, evidence)
+        return Trace(TRACE_ID, "present", 1.0 - decision["p_value"], summary,
+                     {"window": best.window, "param": best.param, "shape": "separable"},
+                     evidence)
     summary = ("The in-band spectrum is a power law reaching a flat noise floor: no "
                "apodization window found.")
-    return Trace(TRACE_ID, "absent", 0.7, summary, {"window": None, "param": None}, evidence)
+    return Trace(TRACE_ID, "absent", decision["p_value"], summary,
+                 {"window": None, "param": None, "shape": None}, evidence)
+
+
+def _decision(fits: list[AxisFit]) -> dict[str, Any]:
+    """Decision record: the window model's gain over the unfiltered model, F-tested.
+
+    The squared residuals of the two least-squares fits over the same ``K`` band
+    samples (``K / SMOOTH`` independent after the running mean) give the variance
+    ratio ``(rms_plain / rms_window)**2``, F(K', K') distributed when the window
+    explains nothing; the p-value is that of the ratio over ``1 / RATIO**2`` (the
+    improvement an unfiltered profile's ripples give a free window fit).
+
+    References
+    ----------
+    .. [1] Snedecor, G. W. and Cochran, W. G. *Statistical Methods*, 8th ed., 1989.
+    """
+    from scipy import stats
+
+    best = max(fits, key=lambda f: f.rms_plain_db / max(f.rms_window_db, 1e-9))
+    k_eff = max(2, len(best.k) // SMOOTH)
+    ratio = (best.rms_plain_db / max(best.rms_window_db, 1e-9)) ** 2
+    p = float(stats.f.sf(ratio * RATIO ** 2, k_eff, k_eff))
+    return {"statistic": "window fit gain over the unfiltered model (dB rms)",
+            "value": float(best.rms_plain_db - best.rms_window_db),
+            "threshold": MIN_GAIN_DB, "false_alarm_rate": None,
+            "p_value": sp.round_sig(p) if p > 0 else 0.0}
 
 
 @register(TRACE_ID, version="1", order=50, default_estimates=DEFAULT_ESTIMATES)
