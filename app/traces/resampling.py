@@ -70,6 +70,7 @@ from app.io.volume import Volume
 from app.traces import spectrum as sp
 from app.traces.base import Trace, inconclusive, register
 from app.traces.context import Notes, Scope, evenly_spaced
+from app.traces.header import HeaderFacts
 from app.traces.jpeg_pixels import PixelFinding
 from app.traces.support import FOUND_SUPPORT, AxisSupport
 
@@ -111,6 +112,12 @@ class ResamplingResult:
     peaks: list[tuple[float, float, float]]
     axis_freq: dict[str, float | None]
     n_frames: int
+    n_tested: int = 0
+    off_axis_threshold: float = OFF_AXIS_RATIO
+    on_axis_threshold: float = PEAK_RATIO
+    excess: float = 0.0
+    n_on_axis: int = 0
+    tail: tuple[float, float, float] = (1.0, 1.0, 0.1)
     notes: list[str] = field(default_factory=list)
 
 
@@ -315,8 +322,15 @@ def spectrum_ratio(frames: list[np.ndarray], *, workers: int = 2) -> np.ndarray:
 
 
 def find_peaks(ratio: np.ndarray, n_frames: int, *, exclude_block_grid: bool = False,
-               explained: dict[str, float] | None = None) -> ResamplingResult:
-    """The peaks of :func:`spectrum_ratio` that count as interpolation (see :func:`detect`)."""
+               explained: dict[str, float] | None = None,
+               exclude_dyadic: bool = False) -> ResamplingResult:
+    """The peaks of :func:`spectrum_ratio` that count as interpolation (see :func:`detect`).
+
+    With ``exclude_dyadic``, bins whose coordinates are both within one bin of 0,
+    1/4 or 1/2 cycles/sample are set aside: the dyadic wavelet decomposition of
+    JPEG 2000 (ISO/IEC 15444-1 Annex F), with its deadzone quantiser zeroing
+    high-band coefficients, leaves periodicities at those frequencies.
+    """
     rows, cols = ratio.shape
     fy = (np.arange(rows) - rows // 2) / rows
     fx = (np.arange(cols) - cols // 2) / cols
@@ -326,6 +340,10 @@ def find_peaks(ratio: np.ndarray, n_frames: int, *, exclude_block_grid: bool = F
         def on_grid(f: np.ndarray, n: int) -> np.ndarray:
             return np.abs(f * 8 - np.round(f * 8)) <= 8.0 / n + 1e-9
         r = np.where(on_grid(fy, rows)[:, None] & on_grid(fx, cols)[None, :], 0.0, r)
+    if exclude_dyadic:
+        def dyadic(f: np.ndarray, n: int) -> np.ndarray:
+            return np.abs(np.abs(f) * 4 - np.round(np.abs(f) * 4)) <= 4.0 / n + 1e-9
+        r = np.where(dyadic(fy, rows)[:, None] & dyadic(fx, cols)[None, :], 0.0, r)
     if explained:
         def near(f: np.ndarray, n: int, ax: str) -> np.ndarray:
             out = np.abs(f) <= 1.0 / n + 1e-9
@@ -357,7 +375,34 @@ def find_peaks(ratio: np.ndarray, n_frames: int, *, exclude_block_grid: bool = F
             axis_freq["cols"] = _refine(r[y], x, cols)
         if abs(x - cols // 2) <= 1 and axis_freq["rows"] is None:
             axis_freq["rows"] = _refine(r[:, x], y, rows)
-    return ResamplingResult(ratio, peak_ratio, peaks, axis_freq, n_frames)
+    half = far & ((fy[:, None] > 0) | ((fy[:, None] == 0) & (fx[None, :] > 0)))
+    n_tested = int(np.count_nonzero(half))
+    n_on = int(np.count_nonzero(half & on_axis))
+    norm = (r / threshold)[half]
+    excess = float(norm.max()) if norm.size else 0.0
+    tail = _tail_model(norm)
+    return ResamplingResult(ratio, peak_ratio, peaks, axis_freq, n_frames, n_tested,
+                            float(off), float(PEAK_RATIO), excess, n_on, tail=tail)
+
+
+def _tail_model(values: np.ndarray) -> tuple[float, float, float]:
+    """An exponential tail fitted to the bins' own threshold-normalised ratios.
+
+    Returns ``(u, beta, share)``: above the 90th percentile ``u`` a bin exceeds
+    ``v`` with probability ``share * exp(-(v - u) / beta)``, ``beta`` the mean
+    excess over ``u`` of the bins between the 90th and 99.5th percentiles (the top
+    half-percent, where interpolation peaks sit, is left out of the fit). A
+    peaks-over-threshold model of the spectrum's own background (common practice,
+    no source), so the null follows each image's texture rather than white noise.
+    """
+    v = np.asarray(values, dtype=float)
+    v = v[np.isfinite(v)]
+    if v.size < 50:
+        return (1.0, 1.0, 0.1)
+    u, top = np.percentile(v, [90.0, 99.5])
+    body = v[(v > u) & (v <= top)]
+    beta = float(np.mean(body - u)) if body.size else 0.0
+    return (float(u), max(beta, 1e-3), 0.1)
 
 
 def _refine(line: np.ndarray, i: int, n: int) -> float:
@@ -395,6 +440,64 @@ def _axis_evidence(ratio: np.ndarray, axis: str, peaks: list) -> dict[str, Any]:
             "peaks": sp.round_sig(np.asarray(pk)) if pk else []}
 
 
+def decision_of(result: ResamplingResult) -> dict[str, Any]:
+    """The trace's decision: statistic, threshold, false-alarm rate and p-value.
+
+    The statistic is the largest ratio of a p-map spectrum bin to its threshold
+    (on the axes ``PEAK_RATIO``, off them the frame-dependent off-axis threshold),
+    so ``1.0`` is the threshold. The p-value is family-wise over the ``M`` bins
+    tested, ``1 - (1 - q(v)) ** M``, with ``q`` the exponential tail fitted to the
+    image's own bins (:func:`_tail_model`); the false-alarm rate is the same at
+    the threshold.
+
+    References
+    ----------
+    Kirchner 2008 (the p-map spectrum); peaks over threshold with an exponential
+    tail (common practice, no source).
+    """
+    u, beta, share = result.tail
+    m = max(1, result.n_tested)
+
+    def family(v: float) -> float:
+        q = share * float(np.exp(-(v - u) / beta)) if v > u else 1.0
+        q = min(q, 1.0 - 1e-12)
+        return float(-np.expm1(m * np.log1p(-q)))
+
+    return {"statistic": "peak_ratio_over_threshold", "value": round(result.excess, 4),
+            "threshold": 1.0, "false_alarm_rate": family(1.0),
+            "p_value": family(max(result.excess, 0.0))}
+
+
+def _confidence(status: str, decision: dict[str, Any]) -> float:
+    """The probability that ``status`` is right: a calibration map on the decision
+    statistic when one is fitted, else from the p-value (present: ``1 - p``;
+    absent: ``(1 + p) / 2``, the chance of the null at even prior odds when the
+    test's power is unknown, never above what the data allow)."""
+    from app.traces.calibration import confidence_for
+
+    p = float(decision["p_value"])
+    fallback = 1.0 - p if status == "present" else 0.5 * (1.0 + p)
+    return confidence_for(TRACE_ID, status, decision["value"], fallback,
+                          statistic=decision["statistic"])
+
+
+def factor_candidates(f: float) -> list[float]:
+    """Every scale factor whose interpolation leaves a periodicity at ``f``.
+
+    ``|1/s - round(1/s)| = f`` holds for the upsampling factors ``1/(1-f)`` and
+    ``1/f`` and the downsampling factors ``1/(1+f)`` and ``1/(2-f)`` (the aliases
+    Popescu and Farid 2005 and Kirchner 2008 note cannot be told apart by the
+    periodicity alone).
+    """
+    f = float(np.clip(f, 1e-6, 0.5))
+    vals = [1.0 / (1.0 - f), 1.0 / f, 1.0 / (1.0 + f), 1.0 / (2.0 - f)]
+    out: list[float] = []
+    for v in vals:
+        if all(abs(v - o) > 1e-3 for o in out):
+            out.append(round(v, 4))
+    return out
+
+
 def trace_from(result: ResamplingResult) -> Trace:
     """Build the ``resampling`` trace from a detection result."""
     estimates: dict[str, Any] = {}
@@ -405,9 +508,9 @@ def trace_from(result: ResamplingResult) -> Trace:
             estimates[ax] = {"factor": 1.0}
             alternatives[ax] = None
         else:
-            s1, s2 = factor_from_frequency(f)
+            s1, _ = factor_from_frequency(f)
             estimates[ax] = {"factor": round(s1, 4)}
-            alternatives[ax] = [round(s1, 4), round(s2, 4)]
+            alternatives[ax] = factor_candidates(f)
     evidence = {
         "periodicity": {ax: _axis_evidence(result.ratio, ax, result.peaks)
                         for ax in ("rows", "cols")},
@@ -417,28 +520,31 @@ def trace_from(result: ResamplingResult) -> Trace:
                      for a, b, c in result.peaks],
         "factor_alternatives": alternatives,
         "n_frames": result.n_frames,
+        "decision": decision_of(result),
     }
     if result.peaks:
         on_axis = [ax for ax in ("rows", "cols") if result.axis_freq[ax] is not None]
         if on_axis:
             parts = ", ".join(f"{ax} x{estimates[ax]['factor']:.3g}" for ax in on_axis)
-            summary = (f"Periodic interpolation correlations: the grid was scaled ({parts}; "
-                       "the factor could also be the alias listed in the evidence).")
+            alias = "; ".join(f"{ax}: {', '.join(f'{v:.3g}' for v in alternatives[ax])}"
+                              for ax in on_axis)
+            summary = (f"Periodic interpolation correlations: the grid was scaled ({parts}); "
+                       f"the periodicity fits these factors alike, up or down ({alias}).")
         else:
             summary = ("Periodic interpolation correlations off the grid axes: the image "
                        "was rotated or resliced obliquely.")
-        conf = float(np.clip(0.5 + (result.peak_ratio - PEAK_RATIO) / (2 * PEAK_RATIO), 0.5,
-                             0.97))
+        conf = _confidence("present", evidence["decision"])
         return Trace(TRACE_ID, "present", conf, summary, estimates, evidence)
     summary = "No periodic interpolation correlations: no spline or linear resampling found."
-    conf = float(np.clip(0.5 + (PEAK_RATIO - result.peak_ratio) / PEAK_RATIO, 0.5, 0.9))
+    conf = _confidence("absent", evidence["decision"])
     return Trace(TRACE_ID, "absent", conf, summary, estimates, evidence)
 
 
 @register(TRACE_ID, version="1", order=55, default_estimates=DEFAULT_ESTIMATES)
 def analyse(volume: Volume, *, scope: Scope, notes: Notes,
             jpeg_pixels: PixelFinding | None = None,
-            support: dict[str, AxisSupport] | None = None) -> Trace:
+            support: dict[str, AxisSupport] | None = None,
+            header: HeaderFacts | None = None) -> Trace:
     """Detect grid resampling (Kirchner 2008; see module docstring).
 
     References
@@ -466,8 +572,14 @@ def analyse(volume: Volume, *, scope: Scope, notes: Notes,
     # periodicity is already reported by the zero_filling trace, not counted twice
     explained = _zero_fill_explained(support)
     blocks = bool(jpeg_pixels is not None and jpeg_pixels.status == "present")
+    wavelet = lossy_jpeg2000(header)
     trace = trace_from(find_peaks(ratio, len(frames), exclude_block_grid=blocks,
-                                  explained=explained))
+                                  explained=explained, exclude_dyadic=wavelet))
+    trace.evidence["dyadic_excluded"] = wavelet
+    if wavelet:
+        trace.summary += (" Peaks at 1/4 and 1/2 cycles/sample were set aside: the header "
+                          "declares lossy JPEG 2000, whose dyadic wavelet leaves them (a 2x "
+                          "or 4/3x scaling cannot be told from it here).")
     trace.evidence["block_grid_excluded"] = blocks
     trace.evidence["zero_fill_explained"] = {ax: sp.round_sig(f) for ax, f in explained.items()}
     if blocks:
@@ -478,6 +590,26 @@ def analyse(volume: Volume, *, scope: Scope, notes: Notes,
         trace.summary += (f" Peaks at the frequency that the zero-filling found in k-space "
                           f"explains ({parts} cycles/sample) were set aside.")
     return trace
+
+
+def lossy_jpeg2000(header: HeaderFacts | None) -> bool:
+    """Whether the header declares irreversible JPEG 2000 in the image's history.
+
+    LossyImageCompression 01 with LossyImageCompressionMethod ISO_15444_1, or a
+    JPEG 2000 transfer syntax (PS3.3 C.7.6.1.1.5; PS3.5 8.2.4), or a derivation
+    description naming JPEG 2000.
+    """
+    if header is None or not isinstance(header, HeaderFacts):
+        return False
+    d = header.declared
+    if not d.get("lossy_compression"):
+        return False
+    text = " ".join(str(d.get(k) or "") for k in ("lossy_method", "derivation_description",
+                                                   "transfer_syntax_name")).upper()
+    ts = str(d.get("transfer_syntax") or "")
+    return ("15444" in text or "JPEG 2000" in text or "JPEG2000" in text
+            or ts in ("1.2.840.10008.1.2.4.91", "1.2.840.10008.1.2.4.93",
+                      "1.2.840.10008.1.2.4.203"))
 
 
 def _zero_fill_explained(support: dict[str, AxisSupport] | None) -> dict[str, float]:
