@@ -73,16 +73,21 @@ def test_complex_dtype_with_zero_imaginary_part_is_magnitude() -> None:
 
 
 def test_phase_corrected_real_is_real_signed() -> None:
-    """Real part of (real object + complex Gaussian noise): real_signed, absent, says real-valued.
+    """Real part of (real object + complex Gaussian noise): real_signed, present, says real-valued.
 
     Truth: the air holds N(0, sigma) noise, so about 50% of it is negative
-    (Gudbjartsson and Patz 1995); asserted within 0.4-0.6.
+    (Gudbjartsson and Patz 1995); asserted within 0.4-0.6. The FFT of any real
+    image is Hermitian-symmetric (common practice, no source), so the trace is
+    present (processing) and its decision statistic, the Hermitian share of the
+    spectral energy, is exactly 1.
     """
     rng = np.random.default_rng(5)
     obj = synth.phantom((96, 96), seed=rng, smooth_phase=False).real
     real = (obj + synth.complex_noise(obj.shape, 0.01, rng)).real.astype(np.float32)
     t = _run(real)
-    assert t.estimates["domain"] == "real_signed" and t.status == "absent"
+    assert t.estimates["domain"] == "real_signed" and t.status == "present"
+    assert t.origin == "processing"
+    assert t.evidence["decision"]["value"] == 1.0
     assert 0.4 <= t.evidence["negative_background_fraction"] <= 0.6
     assert "real-valued" in t.summary
     t2 = _run(real.astype(np.complex64))

@@ -6,10 +6,14 @@ non-negative: the phase was discarded) or ``real_signed`` (real values of both
 signs, as phase-corrected real reconstructions leave: zero-mean Gaussian noise
 in the air, about half of it negative).
 
-Status: ``present`` for ``magnitude``; ``absent`` for ``complex``; ``absent`` for
-``real_signed`` as well, because the phase was not simply discarded (it was
-removed by a phase correction that keeps the sign), with the summary saying
-that the data are nevertheless real-valued, not complex.
+Status: ``present`` for ``magnitude`` and for ``real_signed``; ``absent`` for
+``complex``. Any real-valued image has a Hermitian-symmetric Fourier transform
+(``F(-k) = conj(F(k))``): whatever the sign of its values, half of its k-space
+is a copy of the other half, so its FFT is synthetic by construction and not
+raw k-space. The test is direct: the energy of the anti-Hermitian part of the
+FFT equals, by Parseval's theorem, the energy of the image's imaginary part;
+the decision statistic is the Hermitian share of the spectral energy,
+``1 - imag_energy / total_energy`` (exactly 1 for real dtypes).
 
 A complex array whose imaginary part is zero is judged by its real part.
 K-space is judged by its images (centred inverse FFT): k-space synthesised
@@ -32,6 +36,8 @@ References
 
 from __future__ import annotations
 
+import numpy as np
+
 from app.io.volume import Volume
 from app.traces.base import Trace, inconclusive, register
 from app.traces.value_kind import ValueKind
@@ -39,11 +45,46 @@ from app.traces.value_kind import ValueKind
 TRACE_ID = "magnitude_only"
 
 
+HERMITIAN_SHARE = 1.0 - 1e-8
+
+
 def _r4(x: float | None) -> float | None:
     return None if x is None else float(f"{x:.4g}")
 
 
-@register(TRACE_ID, version="1", order=30, default_estimates={"domain": None})
+def hermitian_share(value_kind: ValueKind) -> float:
+    """Share of the spectral energy in the Hermitian part of the FFT (1 for real values).
+
+    By Parseval's theorem the anti-Hermitian part of the FFT of ``z`` carries the
+    energy of ``imag(z)``.
+
+    References
+    ----------
+    R. N. Bracewell, *The Fourier Transform and Its Applications*, McGraw-Hill,
+    2000 (symmetry of the transform of a real function; recalled from memory).
+    """
+    f = value_kind.imag_energy_fraction
+    return 1.0 if f is None else float(1.0 - f)
+
+
+def _decision(share: float) -> dict:
+    return {"statistic": "hermitian_energy_share", "value": share,
+            "threshold": HERMITIAN_SHARE, "false_alarm_rate": None, "p_value": None}
+
+
+def _confidence(share: float) -> float:
+    """How far the statistic lies from the threshold, in units of the threshold's margin.
+
+    The anti-Hermitian share of a complex image with noise is of order one half
+    of the noise energy, of a real image zero (up to round-off of 1e-16 in double
+    precision): the probability follows the distance on a log scale.
+    """
+    anti = max(1.0 - share, 1e-30)
+    margin = np.log10(anti) - np.log10(1.0 - HERMITIAN_SHARE)
+    return float(1.0 / (1.0 + np.exp(-abs(margin) * 3.0)))
+
+
+@register(TRACE_ID, version="2", order=30, default_estimates={"domain": None})
 def analyse(volume: Volume, *, value_kind: ValueKind) -> Trace:
     """Say whether the values are complex, magnitudes or signed real values.
 
@@ -64,36 +105,37 @@ def analyse(volume: Volume, *, value_kind: ValueKind) -> Trace:
         "dtype": str(volume.dtype),
         "n_coils": volume.n_coils,
         "measured_on": "inverse FFT of the k-space" if kspace else "stored values",
+        "decision": _decision(hermitian_share(vk)),
     }
+    conf = _confidence(hermitian_share(vk))
     estimates = {"domain": vk.domain}
     if vk.domain == "complex":
         coils = f" from {volume.n_coils} receive channels" if volume.n_coils > 1 else ""
         what = "Complex k-space whose images are complex" if kspace else "Complex values"
         summary = (f"{what}{coils} with a non-trivial phase (phase spread "
                    f"{vk.phase_spread:.2f} rad): the phase was kept.")
-        return Trace(TRACE_ID, "absent", 0.97, summary, estimates, evidence)
+        return Trace(TRACE_ID, "absent", conf, summary, estimates, evidence)
     if kspace:
         signs = "of both signs" if vk.domain == "real_signed" else "non-negative"
         summary = (f"The k-space is the Fourier transform of real, {signs} images (imaginary "
                    f"energy {vk.imag_energy_fraction:.1e} of the total): it was synthesised "
                    "from processed images, not measured.")
-        status = "present" if vk.domain == "magnitude" else "absent"
-        return Trace(TRACE_ID, status, 0.95, summary, estimates, evidence)
+        return Trace(TRACE_ID, "present", conf, summary, estimates, evidence)
     zero_imag = " (complex dtype with a zero imaginary part)" if vk.imag_energy_fraction \
         is not None else ""
     if vk.domain == "real_signed":
         bg_part = (f", {100 * vk.negative_background_fraction:.0f}% of the air"
                    if vk.negative_background_fraction is not None else "")
         summary = (f"Real values of both signs{zero_imag} ({100 * vk.negative_fraction:.1f}% "
-                   f"negative{bg_part}), as a phase-corrected real reconstruction leaves: "
-                   "the phase was not simply discarded, but the data are real-valued, not "
-                   "complex.")
-        return Trace(TRACE_ID, "absent", 0.8, summary, estimates, evidence)
+                   f"negative{bg_part}): real-valued images (a phase-corrected real "
+                   "part, or magnitudes shifted by a normalisation), whose FFT is Hermitian-"
+                   "symmetric by construction: half of that k-space is a copy, not raw "
+                   "data.")
+        return Trace(TRACE_ID, "present", conf, summary, estimates, evidence)
     note = ""
     if vk.negative_fraction > 0:
         note = (f"; {100 * vk.negative_fraction:.2f}% slightly negative values, as "
                 "interpolation overshoot leaves")
     summary = (f"Real, non-negative values{zero_imag}: magnitude images, the phase was "
                f"discarded{note}.")
-    conf = 0.95 if vk.negative_fraction == 0 else 0.8
     return Trace(TRACE_ID, "present", conf, summary, estimates, evidence)
