@@ -125,3 +125,24 @@ def test_bad_family_and_tiny_images_are_input_errors() -> None:
         probe.probe_kspace(k, spec, family="nonsense")
     with pytest.raises(InputError):
         probe.probe_kspace(k[..., :8, :8], crop.crop_spec((8, 8), {}))
+
+
+def test_cli_probe_json_and_bad_input(tmp_path, capsys, raw_images: np.ndarray) -> None:
+    """The documented rawproof.probe/1 keys (app/probe.py docstring, issue 20) on raw
+    data (truth: no zero-filling, so both routes have the nominal effective R = 4), and
+    exit code 2 with no traceback for a missing file (shared/CONVENTIONS.md)."""
+    import json
+
+    from app.cli import main
+
+    path = tmp_path / "raw.npy"
+    np.save(path, raw_images[:2])
+    assert main(["probe", str(path), "--json", "--slices", "2", "--quiet"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["schema"] == "rawproof.probe/1"
+    assert {"acceleration", "family", "slices", "routes", "gap", "seconds"} <= set(out)
+    for name in ("as_delivered", "support_cropped"):
+        assert {"nrmse", "ssim", "psnr", "effective_acceleration"} <= set(out["routes"][name])
+    assert out["routes"]["as_delivered"]["effective_acceleration"] == pytest.approx(4.0,
+                                                                                    rel=0.02)
+    assert main(["probe", str(tmp_path / "missing.npy")]) == 2

@@ -15,6 +15,7 @@ from app.cli.analyse import ANALYSE
 from app.cli.backup import BACKUP, RESTORE
 from app.cli.common import EXIT_BAD_INPUT, Command
 from app.cli.demo import DEMO
+from app.cli.probe import CROP, PROBE
 from app.cli.sampling import SAMPLING
 from app.cli.serve import SERVE, WORKER
 from app.cli.users import USERS
@@ -24,6 +25,8 @@ from app.errors import InputError
 COMMANDS: dict[str, Command] = {c.name: c for c in (
     ANALYSE,
     SAMPLING,
+    PROBE,
+    CROP,
     SERVE,
     WORKER,
     USERS,
