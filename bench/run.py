@@ -1,6 +1,6 @@
 """rawproof's performance benchmark: ratios against the physical floor, in one run.
 
-``python -m bench [--quick] [--only analysis,series,upload,pages] [--out FILE]``
+``python -m bench [--quick] [--only analysis,series,upload,pages,probe] [--out FILE]``
 prints a table and writes it as JSON (default ``bench/results/latest.json``).
 Every row is measured in this run; each measurement is repeated and the median
 reported, so machine-to-machine differences cancel in the ratios.
@@ -192,6 +192,12 @@ def markdown_table(result: dict) -> str:
                 f"{r['disk_mb_s']} MB/s, ratio {r['ratio']} (target >= 0.5); server peak RSS "
                 f"{r['server_peak_rss_mb']} MB (target < 200)"
             )
+        elif r["row"] == "probe":
+            lines.append(
+                f"- bias probe, {'x'.join(map(str, r['shape']))} at R = {r['acceleration']:g} "
+                f"({r['family']} lines): {r['seconds']} s (target < {r['target_s']:g} s), "
+                f"NRMSE gap {r['gap_nrmse']}"
+            )
         elif r["row"] == "pages":
             lines.append(
                 f"- {r['page']} ({r['datasets']} datasets, {r['clients']} clients, "
@@ -204,7 +210,7 @@ def markdown_table(result: dict) -> str:
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(prog="python -m bench")
     ap.add_argument("--quick", action="store_true", help="small sizes, one repeat (a smoke run)")
-    ap.add_argument("--only", default="analysis,series,upload,pages")
+    ap.add_argument("--only", default="analysis,series,upload,pages,probe")
     ap.add_argument("--repeats", type=int, default=3)
     ap.add_argument("--out", default=str(ROOT / "bench" / "results" / "latest.json"))
     args = ap.parse_args(argv)
@@ -233,6 +239,10 @@ def main(argv: list[str] | None = None) -> int:
                 result["rows"] += web_bench.bench_pages(
                     work, 50 if args.quick else 1000, requests_per_client=10 if args.quick else 40
                 )
+        if "probe" in parts:
+            from bench.probe_bench import bench_probe
+
+            result["rows"].append(bench_probe(work, repeats))
     out = Path(args.out)
     out.parent.mkdir(parents=True, exist_ok=True)
     out.write_text(json.dumps(result, indent=2))
