@@ -19,7 +19,7 @@ RASTER_SUFFIXES = {".png": "png", ".jpg": "jpeg", ".jpeg": "jpeg", ".tif": "tiff
 _SUFFIXES = {
     ".dcm": "dicom", ".dicom": "dicom", ".ima": "dicom",
     ".nii": "nifti", ".npy": "npy", ".npz": "npz",
-    ".h5": "hdf5", ".hdf5": "hdf5", ".hdf": "hdf5",
+    ".h5": "hdf5", ".hdf5": "hdf5", ".hdf": "hdf5", ".mrd": "hdf5",
     **RASTER_SUFFIXES,
     ".zip": "zip",
 }

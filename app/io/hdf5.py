@@ -2,9 +2,11 @@
 
 The dataset is ``opts.dataset`` if given, else one named like k-space
 (``kspace``, ``k_space``; domain k-space), else the largest numeric array with at
-least two dimensions. ``Volume.data`` is the h5py Dataset itself (slicing reads
-only what is asked for); the file stays open in ``opts.stack`` until the caller's
-context manager exits.
+least two dimensions. An ISMRMRD file (a group with ``xml`` and ``data``) is read
+by :mod:`app.io.ismrmrd`; an ``ismrmrd_header`` XML string beside the dataset
+adds its encoding facts to the header fields. ``Volume.data`` is the h5py
+Dataset itself (slicing reads only what is asked for); the file stays open in
+``opts.stack`` until the caller's context manager exits.
 
 References
 ----------
@@ -20,6 +22,7 @@ from typing import Any
 import numpy as np
 
 from app.errors import InputError
+from app.io import ismrmrd as ismrmrd_io
 from app.io.options import (
     ReadOptions,
     array_axes,
@@ -152,6 +155,35 @@ def _usable(ds: Any) -> bool:
     return len(shape) >= 2 and dt.fields is None and dt.kind in "biufc" and min(shape) > 0
 
 
+def _ismrmrd_header_beside(all_ds: dict[str, Any], key: str, path: Path,
+                           opts: ReadOptions) -> dict[str, Any]:
+    """Encoding facts of an ``ismrmrd_header`` XML string dataset beside the analysed one.
+
+    The layout public raw-data collections use: a ``kspace`` array with the
+    ISMRMRD header as a string dataset in the same group.
+
+    References
+    ----------
+    Inati et al., "ISMRM Raw data format", MRM 77(1):411-421, 2017.
+    """
+    parent = key.rsplit("/", 1)[0] + "/" if "/" in key else ""
+    hdr = all_ds.get(parent + "ismrmrd_header")
+    if hdr is None:
+        return {}
+    try:
+        value = hdr[()]
+        if isinstance(value, np.ndarray):
+            value = value.ravel()[0] if value.size else b""
+        fields = ismrmrd_io.header_fields(value if isinstance(value, bytes | str) else
+                                          str(value))
+    except Exception as exc:  # noqa: BLE001 - a damaged header is a warning, never a failure
+        opts.warnings.append(f"{path.name}: the ismrmrd_header dataset could not be read: "
+                             f"{one_line(exc)}")
+        return {}
+    fields["ismrmrd_header"] = True
+    return fields
+
+
 def _is_kspace_name(name: str) -> bool:
     leaf = name.rsplit("/", 1)[-1].lower().replace("-", "_")
     return leaf in ("kspace", "k_space", "ksp", "kdata") or "kspace" in leaf
@@ -174,6 +206,9 @@ def read_hdf5(path: Path, opts: ReadOptions) -> list[Volume]:
         raise InputError("unreadable", f"{path.name} is not a readable HDF5 file: {one_line(exc)}",
                          str(path)) from exc
     opts.stack.callback(f.close)
+    group = ismrmrd_io.is_ismrmrd_file(f) if opts.dataset is None else None
+    if group is not None:
+        return ismrmrd_io.read_ismrmrd(path, opts, group=group)
     try:
         all_ds = _datasets(f)
     except (OSError, RuntimeError, ValueError, KeyError) as exc:
@@ -218,6 +253,7 @@ def read_hdf5(path: Path, opts: ReadOptions) -> list[Volume]:
         opts.warnings.append(f"{path.name}:{key} is 4D k-space with no coil axis given; if an "
                              "axis holds receive coils, say so with --coil-axis.")
     fields: dict[str, Any] = {"dataset": key, "bit_depth": ds.dtype.itemsize * 8}
+    fields.update(_ismrmrd_header_beside(all_ds, key, path, opts))
     raw = _attributes(f, "", path, opts)
     raw.update(_attributes(ds, f"{key}.", path, opts))
     data: Any = CheckedReads(ds, path)

@@ -37,6 +37,16 @@ class Header:
         ``image_mode`` (Pillow mode), ``tiff_compression``, ``datatype``,
         ``intent_code``, ``aux_file`` (NIfTI), ``array_key`` (npz), ``dataset`` and
         ``coil_axis_in_file`` (HDF5).
+        ISMRMRD headers (app/io/ismrmrd.py): ``ismrmrd_encoded_matrix``,
+        ``ismrmrd_recon_matrix`` (``[x, y, z]``), ``ismrmrd_encoded_fov_mm``,
+        ``ismrmrd_recon_fov_mm``, ``ismrmrd_step1_limits``, ``ismrmrd_step2_limits``
+        (``{"minimum", "maximum", "center"}``), ``readout_oversampling`` (float),
+        ``partial_fourier_fraction`` (acquired share along encoding step 1),
+        ``padded_lines`` (int), ``parallel_acceleration`` (float), ``trajectory``,
+        ``receiver_channels``, ``field_strength_t``, ``ismrmrd_header`` (bool: an
+        XML header beside an HDF5 ``kspace`` array), ``acquisitions``,
+        ``acquired_lines``, ``noise_acquisitions`` (int) and
+        ``noise_variance_per_channel`` (list, from noise-measurement acquisitions).
     raw : dict
         A JSON-serialisable summary of the raw header (tag keyword -> str value).
     """
