@@ -23,7 +23,7 @@ from app.web import evidence
 from app.web.deps import ForbiddenError, NotSignedInError
 from app.web.paths import STATIC_DIR
 from app.web.ratelimit import LoginLimiter
-from app.web.routers import admin, api, auth, datasets, registry, reviews, uploads
+from app.web.routers import admin, api, auth, datasets, exports, registry, reviews, uploads
 from app.web.security import CsrfError, SecurityHeadersMiddleware, safe_next
 from app.web.templating import render
 
@@ -103,7 +103,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         return PlainTextResponse("ok")
 
     application.include_router(auth.public)
-    for mod in (auth, registry, datasets, uploads, reviews, api, admin, evidence):
+    for mod in (auth, registry, datasets, uploads, reviews, api, admin, evidence, exports):
         application.include_router(mod.router)
     application.include_router(api.uploads_router)
     application.mount("/static", StaticFiles(directory=str(STATIC_DIR)), name="static")
