@@ -37,7 +37,9 @@ def _graph() -> dict[str, set[str]]:
                     pkg = name.split(".") if is_pkg else name.split(".")[:-1]
                     pkg = pkg[:len(pkg) - node.level + 1]
                     base = ".".join(pkg + ([base] if base else []))
-                targets = [f"{base}.{a.name}" for a in node.names] + [base]
+                subs = [f"{base}.{a.name}" for a in node.names]
+                # ``from pkg import submodule`` takes the submodule, not the package's face
+                targets = subs + ([base] if any(t not in files for t in subs) else [])
             for t in targets:
                 while t and t not in files:
                     t = t.rpartition(".")[0]
