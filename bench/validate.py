@@ -203,6 +203,8 @@ def param_table(rows: Sequence[dict]) -> dict[str, dict]:
         if rep is None:
             continue
         for dotted, true in (r["truth"].get("params") or {}).items():
+            if true is None:  # a parameter the truth leaves open is not scored
+                continue
             tid, *path = dotted.split(".")
             tr = (rep.get("traces") or {}).get(tid)
             if tr is None or tr.get("status") != "present":
