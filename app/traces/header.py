@@ -13,7 +13,9 @@ References
 ----------
 NEMA PS3.3, C.7.6.1.1.2 (Image Type), C.7.6.1.1.5 (Lossy Image Compression),
 C.8.3.1 (MR Image Module: Acquisition Matrix, In-plane Phase Encoding Direction,
-Percent Phase Field of View, Percent Sampling). NEMA PS3.5 Section 8.2 and
+Percent Phase Field of View, Percent Sampling, Scan Options), C.8.13 (Enhanced MR
+Image: MR Image Frame Type, MR Modifier and MR FOV/Geometry macros; section
+numbers recalled from memory). NEMA PS3.5 Section 8.2 and
 PS3.6 Annex A (transfer syntax UIDs). NIfTI-1 ``nifti1.h`` (NIFTI_XFORM_*
 codes). ITU-T T.81 Annex K with libjpeg's quality scaling
 (:mod:`app.traces.jpeg_tables`).
@@ -136,7 +138,13 @@ def provenance(volume: Volume) -> tuple[dict[str, Any], list[str]]:
         ``derivation_description``, ``bits_stored``, ``bits_used``,
         ``sform_code``, ``qform_code``, ``grid_aligned_to`` (``"image"``,
         ``"template"`` or ``"scanner"``), ``template_space``, ``descrip``,
-        ``bit_depth`` (bits per stored sample of PNG, JPEG, TIFF and NIfTI files).
+        ``bit_depth`` (bits per stored sample of PNG, JPEG, TIFF and NIfTI files),
+        ``image_kind`` (``magnitude``, ``phase``, ``real``, ``imaginary`` or
+        ``mixed``), ``mosaic`` and ``mosaic_images``, ``scan_options``,
+        ``partial_fourier`` (bool) and ``partial_fourier_direction``,
+        ``kspace_filtering`` (the Enhanced MR defined term), ``aux_file`` and
+        ``descrip_resampling_words`` (NIfTI). :mod:`app.traces.declared` turns
+        these into per-trace declarations.
     notes : list of str
         Plain-English sentences for the report.
 
