@@ -86,7 +86,8 @@ def acquire(anatomy: Anatomy, array: LoopArray, matrix: tuple[int, int], *, n_sl
     nrng = np.random.default_rng(anatomy.seed)
     shape_f = (zf.size, yf.size, xf.size)
     noise = (fractal_field(shape_f, nrng), fractal_field(shape_f, nrng, beta=2.4))
-    obj_f = anatomy.render(xf[None, None, :], yf[None, :, None], zf[:, None, None], noise)
+    obj_f = anatomy.render(xf[None, None, :], yf[None, :, None], zf[:, None, None],
+                           noise).astype(np.complex64)
     sens_f = sensitivities(array, [zf, yf, xf] if is_3d or zf.size > 1 else [yf, xf])
     if sens_f.ndim == 3:
         sens_f = sens_f[:, None]

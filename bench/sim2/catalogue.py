@@ -39,7 +39,7 @@ def _acq_recipe(rng: np.random.Generator, quick: bool, *, is_3d: bool = False,
     if quick:
         sizes = [(64, 64), (96, 96), (96, 80), (80, 96), (128, 112), (112, 128)]
     elif is_3d:
-        sizes = [(96, 96), (96, 112), (112, 96), (128, 128), (128, 112)]
+        sizes = [(80, 80), (96, 96), (96, 112), (112, 96)]
     else:
         sizes = [(96, 128), (128, 128), (128, 96), (144, 160), (160, 160), (192, 160),
                  (192, 192), (192, 256), (256, 224), (256, 256)]
@@ -47,17 +47,20 @@ def _acq_recipe(rng: np.random.Generator, quick: bool, *, is_3d: bool = False,
             sizes = [(320, 320), (384, 320), (512, 448), (448, 512), (512, 512)]
     sizes = [s for s in sizes if max(s) <= max_px and s[0] % divisible == 0] or [(96, 96)]
     ny, nx = sizes[int(rng.integers(len(sizes)))]
-    budget = 40 * 128 * 128 * 2          # channels x pixels x oversampling kept small
-    chans = [c for c in (4, 6, 8, 12, 16, 20, 24, 32) if c * ny * nx <= budget] or [4]
+    os_mode = str(rng.choice(os_choices))
+    if max(ny, nx) > 256 or is_3d:
+        os_mode = "none"
+    os_factor = 2 if os_mode != "none" else 1
+    n_slices = int(rng.integers(8, 13)) if is_3d else int(rng.integers(1, 3))
+    if max(ny, nx) > 256:
+        n_slices = 1
+    # channels x pixels x oversampling x slices bounded: each case builds in about a second
+    budget = 12 * 128 * 128 * 2 * (3 if is_3d else 1)
+    chans = [c for c in (4, 6, 8, 12, 16, 20, 24, 32)
+             if c * ny * nx * os_factor * n_slices <= budget] or [4]
     if quick:
         chans = [c for c in chans if c <= 12]
     n_coils = int(chans[int(rng.integers(len(chans)))])
-    os_mode = str(rng.choice(os_choices))
-    if max(ny, nx) > 256 or is_3d:
-        os_mode = "none" if os_mode == "kept" else os_mode
-    n_slices = int(rng.integers(8, 17)) if is_3d else int(rng.integers(1, 4 if not quick else 3))
-    if max(ny, nx) > 256:
-        n_slices = 1
     seeds = rng.integers(2**31, size=3)
     rec = {"kind": str(rng.choice(kinds)), "matrix": [ny, nx], "n_coils": n_coils,
            "n_slices": n_slices, "is_3d": is_3d, "snr": float(np.exp(rng.uniform(np.log(5),
@@ -357,7 +360,7 @@ def _b_sense(rec, folder):
     if rec["fmt"] != "npy":
         img = np.abs(img)
     return _deliver_image(folder, "sense", img, rec["fmt"], rec, voxel=_voxel(rec, acq),
-                          derived=False, acquired=(rec["matrix"][0] // R, _grid_shape(rec)[1]))
+                          derived=False, acquired=_grid_shape(rec))
 
 
 def _s_partial_fourier(rng, quick, fill):
