@@ -266,3 +266,23 @@ def test_offset_floor_is_not_called_a_combination(offset: float) -> None:
     assert t.status == "inconclusive"
     assert t.evidence["lower_tail_ratio"] > 3
     assert "offset" in t.summary
+
+
+@pytest.mark.parametrize("channels", [1, 2, 3])
+def test_rayleigh_chi_split_pinned_at_two_and_three_channels(channels: int) -> None:
+    """Background drawn from scipy.stats.chi(df=2L): L = 1 is Rayleigh, L = 2 and 3 are chi.
+
+    Truth: 20000 samples of the central chi law with 2L degrees of freedom,
+    sigma 3 (scipy.stats; Constantinides, Atalar and McVeigh 1997); the split
+    sits at L = 1.5, so L = 1 must come out ``rayleigh`` and L = 2, 3
+    ``noncentral_chi`` with the estimated L within 0.25 of the truth.
+    """
+    from scipy import stats as st
+
+    from app.traces.coil_combination import fit_magnitude_background
+
+    x = st.chi(df=2 * channels, scale=3.0).rvs(20000, random_state=channels)
+    res = fit_magnitude_background(x)
+    expected = "rayleigh" if channels == 1 else "noncentral_chi"
+    assert res["chosen"] == expected
+    assert abs(res["channels"] - channels) < 0.25

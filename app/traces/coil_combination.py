@@ -10,6 +10,12 @@ with the Kolmogorov-Smirnov statistic and the law is picked by that test.
 Correlated channels (or channels of unequal noise) give an effective ``L``
 below the number of coils.
 
+Estimate ``combination``: ``rss`` for the non-central chi law with ``L >= 2``,
+``single`` for the Rayleigh law of one delivered magnitude image (one channel,
+or a combination that leaves single-channel statistics; a spatially varying
+sigma, as adaptive or Roemer weights leave, is not yet tested), ``unknown``
+otherwise (separate channels, complex or signed values, no law).
+
 Status: ``present`` for the non-central chi law with ``L >= 2`` (estimated
 ``L >= 1.5``), ``absent`` for the Gaussian and Rayleigh laws, ``inconclusive``
 when the background is missing, masked, noise-free, quantised more coarsely
@@ -54,7 +60,24 @@ CONTAMINATION_SKEW = 0.1
 L_GAUSSIAN = 64.0
 NOISE_FREE = 1e-5
 MIN_SIGMA_STEPS = 1.0
-_DEFAULTS = {"noise_model": "unknown", "effective_channels": None, "sigma": None}
+_DEFAULTS = {"noise_model": "unknown", "effective_channels": None, "sigma": None,
+             "combination": "unknown"}
+
+
+def _decision(res: dict | None) -> dict[str, Any]:
+    """The decision record: effective channel count against the split at L = 1.5.
+
+    ``p_value`` is the Kolmogorov-Smirnov p-value of the Rayleigh law (one
+    channel, the null of no root-sum-of-squares) on the tested samples.
+    """
+    if res is None:
+        return {"statistic": "effective_channels", "value": None, "threshold": L_SPLIT,
+                "false_alarm_rate": None, "p_value": None}
+    L = res["channels"]
+    ray = res["fits"].get("rayleigh")
+    return {"statistic": "effective_channels", "value": _r4(L) if np.isfinite(L) else None,
+            "threshold": L_SPLIT, "false_alarm_rate": None,
+            "p_value": _r4(ray.p_value) if ray is not None else None}
 
 
 def _r4(x: Any) -> Any:
@@ -222,7 +245,10 @@ def _gaussian_trace(volume: Volume, bg: Background, kind: str) -> Trace:
     evidence: dict[str, Any] = {"chosen": "gaussian", "effective_channels": None,
                                 "sigma": None, "n_background": int(bg.n_background),
                                 "n_coils": volume.n_coils}
-    estimates = {"noise_model": "gaussian", "effective_channels": None, "sigma": None}
+    estimates = {"noise_model": "gaussian", "effective_channels": None, "sigma": None,
+                 "combination": "unknown"}
+    evidence["separate_channels"] = volume.n_coils > 1
+    evidence["decision"] = _decision(None)
     comps = np.zeros(0)
     if bg.usable and bg.values is not None:
         v = np.asarray(bg.values).ravel()
@@ -319,8 +345,12 @@ def analyse(volume: Volume, *, background: Background,
                      "lower_tail_ratio": _r4(res["lower_tail_ratio"])})
     chosen = res["chosen"]
     L = res["channels"]
+    combination = {"noncentral_chi": "rss",
+                   "rayleigh": "unknown" if per_channel else "single"}.get(chosen, "unknown")
     estimates = {"noise_model": chosen, "sigma": _r4(res["sigma"]),
-                 "effective_channels": evidence["effective_channels"]}
+                 "effective_channels": evidence["effective_channels"],
+                 "combination": combination}
+    evidence["decision"] = _decision(res)
     stat = res["fits"].get(chosen)
     if chosen == "unknown":
         tail = res["lower_tail_ratio"]
