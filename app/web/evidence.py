@@ -20,6 +20,7 @@ from fastapi import APIRouter, Depends, Query, Request
 from fastapi.responses import JSONResponse, Response
 from sqlalchemy.orm import Session
 
+from app import sampling
 from app.config import Settings
 from app.errors import InputError
 from app.methods import methods_statement
@@ -125,27 +126,14 @@ MAX_ACCELERATION = 32.0
 def measured_support(report: dict[str, Any]) -> dict[str, Any]:
     """Image shape and true support fractions from a report, as ``rawproof sampling`` reads them.
 
-    The ``zero_filling`` estimates' ``support_fraction`` per in-plane axis, 1.0
-    where the report has none (the same rule as
-    :func:`app.sampling_cli.support_from_report`, so the page and the command
-    agree for the same report).
+    :func:`app.sampling.support_from_report` is the one rule the page and the
+    command share, so both give the same numbers for the same report.
     """
-    shape = (report.get("input") or {}).get("shape") or []
-    if len(shape) < 2:
-        raise ValidationError("The report does not say the image size.")
-    est = ((report.get("traces") or {}).get("zero_filling") or {}).get("estimates") or {}
-    support = []
-    for axis in ("rows", "cols"):
-        f = (est.get(axis) or {}).get("support_fraction") if isinstance(est.get(axis),
-                                                                        dict) else None
-        support.append(float(f) if isinstance(f, int | float) and 0 < f <= 1 else 1.0)
-    return {"shape": [int(shape[-2]), int(shape[-1])], "support": support}
-
-
-def _sampling() -> Any:
-    import app.sampling as sampling
-
-    return sampling
+    try:
+        sup = sampling.support_from_report(report)
+    except InputError as exc:
+        raise ValidationError(exc.message) from exc
+    return {"shape": sup["shape"], "support": sup["support"]}
 
 
 def _layout(dims: int, axis: str) -> tuple[int, str]:
@@ -167,7 +155,7 @@ def _check_inputs(family: str, acceleration: float, dims: int, axis: str) -> Non
 @functools.lru_cache(maxsize=1024)
 def _effective_rate_frozen(shape: tuple[int, int], support: tuple[float, float], family: str,
                            acceleration: float, dims: int, axis: str) -> str:
-    res = _sampling().effective_rate(shape, support, family, acceleration, dims=dims,
+    res = sampling.effective_rate(shape, support, family, acceleration, dims=dims,
                                      axis=axis, n_masks=CALC_MASKS, seed=CALC_SEED)
     return json.dumps(res)
 
@@ -205,7 +193,6 @@ def curves_for_report(report: dict[str, Any], *, family: str, dims: int = 1,
                       axis: str = "cols") -> dict[str, Any]:
     """Effective against nominal acceleration on the measured support and on a raw grid."""
     _check_inputs(family, 2.0, dims, axis)
-    sampling = _sampling()
     sup = measured_support(report)
     # 2D Poisson-disc masks are slow to draw: fewer masks and points keep the chart quick
     slow = family == "poisson" and dims == 2
@@ -230,11 +217,7 @@ def _default_layout(sup: dict[str, Any]) -> tuple[int, str]:
 
 
 def calculator_options(report: dict[str, Any]) -> dict[str, Any] | None:
-    """Form choices and the first answer for the panel; None without app.sampling."""
-    try:
-        _sampling()
-    except ImportError:
-        return None
+    """Form choices and the first answer for the panel."""
     sup = measured_support(report)
     dims, axis = _default_layout(sup)
     default = {"family": "polynomial", "acceleration": 4.0, "layout": f"{dims}-{axis}",
@@ -370,7 +353,7 @@ def methods_for(db: Session, dataset: Any, report: dict[str, Any] | None) -> str
     decision = {"outcome": dec.outcome, "rationale": dec.rationale} if dec else None
     try:
         eff = default_effective(report)
-    except (ValidationError, InputError, ImportError, ValueError):
+    except (ValidationError, InputError, ValueError):
         eff = None
     return methods_statement(report, decision, effective=eff)
 
