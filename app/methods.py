@@ -22,6 +22,8 @@ TRACE_NAMES: dict[str, str] = {
     "resampling": "grid resampling",
     "kspace_filtering": "k-space apodization",
     "partial_fourier": "partial Fourier acquisition",
+    "kspace_synthesis": "k-space samples computed by a reconstruction (parallel imaging or "
+                        "a partial-Fourier fill) rather than measured",
 }
 
 OUTCOME_NAMES = {
@@ -91,6 +93,11 @@ def _describe(tid: str, trace: dict[str, Any], shape: list[int]) -> str:
         if dom == "magnitude":
             return "the values are magnitudes with the phase discarded"
         return f"the values are {dom or 'not complex'} (no phase)"
+    if tid == "kspace_synthesis":
+        method = est.get("method") or "a reconstruction"
+        acc = _num(est.get("acceleration"))
+        s = f"k-space samples were computed ({str(method).replace('_', ' ')}"
+        return s + (f", acceleration about {_g(acc, 2)})" if acc is not None else ")")
     if tid == "coil_combination":
         law = LAW_NAMES.get(str(est.get("noise_model")), str(est.get("noise_model")))
         L, sigma = _num(est.get("effective_channels")), _num(est.get("sigma"))

@@ -14,6 +14,7 @@ TRACE_LABELS: dict[str, str] = {
     "resampling": "Resampled",
     "kspace_filtering": "k-space filtered",
     "partial_fourier": "Partial Fourier",
+    "kspace_synthesis": "Computed k-space",
 }
 
 STATUS_LABELS: dict[str, str] = {
