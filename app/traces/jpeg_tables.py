@@ -15,6 +15,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from app.io.jpeg_markers import ZIGZAG, natural_from_zigzag
+
 #: ITU-T T.81 Annex K, Table K.1, in natural (row-major) order.
 ANNEX_K_LUMINANCE = np.array(
     [
@@ -38,19 +40,6 @@ ANNEX_K_CHROMINANCE[:4, :4] = [
     [24, 26, 56, 99],
     [47, 66, 99, 99],
 ]
-
-#: Zig-zag scan order: ZIGZAG[k] is the natural (row-major) index of the k-th
-#: coefficient in a JPEG stream's DQT segment (T.81, Figure A.6).
-ZIGZAG = np.array(
-    [
-        0, 1, 8, 16, 9, 2, 3, 10, 17, 24, 32, 25, 18, 11, 4, 5,
-        12, 19, 26, 33, 40, 48, 41, 34, 27, 20, 13, 6, 7, 14, 21, 28,
-        35, 42, 49, 56, 57, 50, 43, 36, 29, 22, 15, 23, 30, 37, 44, 51,
-        58, 59, 52, 45, 38, 31, 39, 46, 53, 60, 61, 54, 47, 55, 62, 63,
-    ],
-    dtype=np.int32,
-)
-
 
 def quality_scale(quality: int) -> int:
     """libjpeg's percentage scale factor for an IJG quality 1-100.
@@ -84,14 +73,6 @@ def scaled_table(quality: int, *, base: np.ndarray = ANNEX_K_LUMINANCE,
     t = (base.astype(np.int64) * scale + 50) // 100
     t = np.clip(t, 1, 255 if baseline else 32767)
     return t.astype(np.int32)
-
-
-def natural_from_zigzag(values: list[int] | np.ndarray) -> np.ndarray:
-    """Reorder a 64-entry table from zig-zag (stream) order to natural 8 x 8."""
-    v = np.asarray(values, dtype=np.int32).reshape(64)
-    out = np.empty(64, dtype=np.int32)
-    out[ZIGZAG] = v
-    return out.reshape(8, 8)
 
 
 def match_quality(
@@ -139,3 +120,7 @@ def match_quality(
         if err < best[1] - 1e-12:
             best = (q, err, bool(np.all(t[ok] == ref[ok])))
     return best
+
+
+__all__ = ["ANNEX_K_CHROMINANCE", "ANNEX_K_LUMINANCE", "ZIGZAG", "match_quality",
+           "natural_from_zigzag", "quality_scale", "scaled_table"]

@@ -25,6 +25,7 @@ from typing import Any
 
 import numpy as np
 
+from app.io.dicom_syntax import JPEG_DCT_SYNTAXES, LOSSY_SYNTAXES, WAVELET_SYNTAXES, syntax_of
 from app.io.volume import Volume
 from app.traces.base import Trace, register
 from app.traces.header import HeaderFacts
@@ -36,25 +37,6 @@ DEFAULTS = {"method": None, "quality": None, "block_origin": None}
 
 #: Pixel and stored qualities further apart than this disagree.
 QUALITY_TOLERANCE = 5
-
-#: DICOM transfer syntaxes (PS3.5 section 10 and Annex A) that are lossy by definition.
-LOSSY_SYNTAXES = {
-    "1.2.840.10008.1.2.4.50": "JPEG baseline (process 1)",
-    "1.2.840.10008.1.2.4.51": "JPEG extended (processes 2 and 4)",
-    "1.2.840.10008.1.2.4.81": "JPEG-LS near-lossless",
-}
-#: Transfer syntaxes that may carry lossy data, decided by Lossy Image Compression.
-MAYBE_LOSSY_SYNTAXES = {
-    "1.2.840.10008.1.2.4.91": "JPEG 2000",
-    "1.2.840.10008.1.2.4.93": "JPEG 2000 Part 2 multi-component",
-    "1.2.840.10008.1.2.4.203": "High-Throughput JPEG 2000",
-}
-_JPEG_DCT_SYNTAXES = {"1.2.840.10008.1.2.4.50", "1.2.840.10008.1.2.4.51"}
-_WAVELET_SYNTAXES = {"1.2.840.10008.1.2.4.90", "1.2.840.10008.1.2.4.91",
-                     "1.2.840.10008.1.2.4.92", "1.2.840.10008.1.2.4.93",
-                     "1.2.840.10008.1.2.4.201", "1.2.840.10008.1.2.4.202",
-                     "1.2.840.10008.1.2.4.203"}
-
 
 @dataclass
 class HeaderFinding:
@@ -87,7 +69,7 @@ class HeaderFinding:
     @property
     def jpeg_dct(self) -> bool:
         """The header names a DCT-based JPEG process (stored table or JPEG syntax)."""
-        return self.stored_table is not None or self.transfer_syntax in _JPEG_DCT_SYNTAXES
+        return self.stored_table is not None or self.transfer_syntax in JPEG_DCT_SYNTAXES
 
 
 def _sig4(x: float | None) -> float | None:
@@ -150,8 +132,9 @@ def header_finding(volume: Volume, declared: dict[str, Any] | None) -> HeaderFin
             stored = None
     if lossy is None and ts in LOSSY_SYNTAXES:
         lossy = True
-    if method is None and ts is not None:
-        method = LOSSY_SYNTAXES.get(ts) or MAYBE_LOSSY_SYNTAXES.get(ts)
+    entry = syntax_of(ts)
+    if method is None and entry is not None and entry.compression != "lossless":
+        method = entry.name
     quality = pick("stored_jpeg_quality")
     fit = None
     if stored is not None and np.all(np.isfinite(stored)) and stored.min() >= 1:
@@ -162,7 +145,7 @@ def header_finding(volume: Volume, declared: dict[str, Any] | None) -> HeaderFin
         lossy=None if lossy is None else bool(lossy),
         method=None if method is None else str(method), transfer_syntax=ts, stored_table=stored,
         stored_quality=None if quality is None else int(quality), stored_fit_error=fit,
-        wavelet=ts in _WAVELET_SYNTAXES)
+        wavelet=ts in WAVELET_SYNTAXES)
 
 
 def _matched_table(pix: PixelFinding, head: HeaderFinding) -> list | None:
