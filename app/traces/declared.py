@@ -377,7 +377,9 @@ def combine(declaration: Declaration, trace: Trace) -> Trace:
                                 "measured_confidence": round(trace.confidence, 4)}
         summary = (f"Conflict: {said}, but the pixels say {trace.status} "
                    f"({_first_sentence(trace.summary)}); {_resolved(status)}")
-    conf = p if status == "present" else (1 - p if status == "absent" else 1 - abs(2 * p - 1))
+    # inconclusive: the probability of the less likely side, as the analysers'
+    # own inconclusive calls carry a low number
+    conf = p if status == "present" else (1 - p if status == "absent" else min(p, 1 - p))
     return Trace(trace.id, status, conf, summary, estimates, evidence, origin)
 
 
