@@ -23,6 +23,8 @@ def _error_object(exc: InputError) -> dict:
 
 
 def _summary_table(report: dict) -> str:
+    from app.methods import plain_answer, status_word, trace_label, usual_effective
+
     lines = [
         f"rawproof {report['tool_version']}  {report['input']['path']}",
         f"format {report['input']['format']}, {report['input']['n_files']} file(s), "
@@ -30,10 +32,13 @@ def _summary_table(report: dict) -> str:
         f"{report['input']['domain']}, {report['input']['value_type']}",
         f"verdict: {report['verdict']}",
         "",
-        f"{'trace':<24}{'status':<14}{'conf':>6}  summary",
+        plain_answer(report, effective=usual_effective(report))["text"],
+        "",
+        f"{'trace':<24}{'id':<24}{'status':<14}{'conf':>6}  analyser's note",
     ]
     for tid, t in report["traces"].items():
-        lines.append(f"{tid:<24}{t['status']:<14}{t['confidence']:>6.2f}  {t['summary']}")
+        lines.append(f"{trace_label(tid):<24}{tid:<24}{status_word(t['status']):<14}"
+                     f"{t['confidence']:>6.2f}  {t['summary']}")
     for note in report["header"].get("notes", []):
         lines.append(f"header: {note}")
     for w in report.get("warnings", []):
@@ -81,7 +86,7 @@ def _run_analyse(args: Any) -> int:
         if args.output:
             with open(args.output, "w", encoding="utf-8") as fh:
                 fh.write(text + "\n")
-        if args.json:
+        if args.json and not args.output:
             print(text)
         where = f" ({exc.path})" if exc.path else ""
         print(f"rawproof: cannot read input{where}: {exc.message}", file=sys.stderr)
@@ -90,9 +95,13 @@ def _run_analyse(args: Any) -> int:
     if args.output:
         with open(args.output, "w", encoding="utf-8") as fh:
             fh.write(text + "\n")
-    if args.json:
+    if args.output:
+        # the report goes to the file only; a short line says where
+        print(f"rawproof: report written to {args.output} (verdict: {report['verdict']})",
+              file=sys.stderr)
+    elif args.json:
         print(text)
-    elif not args.output:
+    else:
         print(_summary_table(report))
     return EXIT_OK
 

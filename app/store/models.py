@@ -16,6 +16,7 @@ from sqlalchemy import (
     BigInteger,
     Boolean,
     DateTime,
+    Float,
     ForeignKey,
     Index,
     Integer,
@@ -25,11 +26,10 @@ from sqlalchemy import (
 )
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, relationship
 
-OUTCOMES: dict[str, str] = {
-    "fit_for_reconstruction": "Fit for reconstruction research",
-    "downstream_only": "Downstream use only",
-    "rejected": "Rejected",
-}
+from app.methods import OUTCOME_LABELS
+
+#: The three outcomes (one source: :data:`app.methods.OUTCOME_LABELS`).
+OUTCOMES: dict[str, str] = OUTCOME_LABELS
 
 JOB_STATES = ("queued", "running", "done", "failed")
 
@@ -119,6 +119,11 @@ class Dataset(Base):
     # The id of the latest decision; updated by compare-and-swap so that two
     # reviewers deciding at once cannot silently overwrite each other.
     current_decision_id: Mapped[int | None] = mapped_column(Integer, nullable=True)
+    # Withdrawn datasets leave the default registry view and stay for the record;
+    # their files stay until an admin purges them (files_purged_at set).
+    withdrawn_at: Mapped[datetime | None] = mapped_column(DateTime, nullable=True)
+    withdrawn_reason: Mapped[str] = mapped_column(Text, default="")
+    files_purged_at: Mapped[datetime | None] = mapped_column(DateTime, nullable=True)
 
     uploader: Mapped[User] = relationship()
     files: Mapped[list[DatasetFile]] = relationship(
@@ -240,3 +245,36 @@ class AuditEvent(Base):
     detail: Mapped[dict[str, Any] | None] = mapped_column(JSON, nullable=True)
 
     actor: Mapped[User | None] = relationship()
+
+
+class ProbeRun(Base):
+    """One run of the bias probe (:mod:`app.probe`) on a dataset's current report.
+
+    queued -> running -> done | failed, run by the worker (:mod:`app.probe_jobs`);
+    ``result`` holds the ``rawproof.probe/1`` object, ``gap`` its NRMSE gap (for
+    sorting the registry).
+    """
+
+    __tablename__ = "probe_runs"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    dataset_id: Mapped[int] = mapped_column(
+        ForeignKey("datasets.id", ondelete="CASCADE"), index=True
+    )
+    report_id: Mapped[int | None] = mapped_column(Integer, nullable=True)
+    requested_by_id: Mapped[int | None] = mapped_column(ForeignKey("users.id"), nullable=True)
+    state: Mapped[str] = mapped_column(String(16), default="queued", index=True)
+    acceleration: Mapped[float] = mapped_column(Float, default=4.0)
+    family: Mapped[str] = mapped_column(String(32), default="polynomial")
+    slices: Mapped[int] = mapped_column(Integer, default=8)
+    progress: Mapped[dict[str, Any] | None] = mapped_column(JSON, nullable=True)
+    result: Mapped[dict[str, Any] | None] = mapped_column(JSON, nullable=True)
+    gap: Mapped[float | None] = mapped_column(Float, nullable=True)
+    error: Mapped[str | None] = mapped_column(Text, nullable=True)
+    lease_owner: Mapped[str | None] = mapped_column(String(200), nullable=True)
+    lease_expires_at: Mapped[datetime | None] = mapped_column(DateTime, nullable=True)
+    updated_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)
+    created_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)
+    finished_at: Mapped[datetime | None] = mapped_column(DateTime, nullable=True)
+
+    requested_by: Mapped[User | None] = relationship()

@@ -19,12 +19,13 @@ from app.store.models import (
     DatasetFile,
     Decision,
     Job,
+    ProbeRun,
     Report,
     StoredFile,
     User,
 )
 
-SORTS = ("updated", "created", "name", "size", "decision", "uploader")
+SORTS = ("updated", "created", "name", "size", "decision", "uploader", "gap")
 
 
 @dataclass
@@ -48,6 +49,9 @@ class RegistryRow:
     decided_by: str | None = None
     decided_at: datetime | None = None
     job_state: str | None = None
+    withdrawn: bool = False
+    #: the NRMSE gap of the latest finished bias probe (None when never probed)
+    gap: float | None = None
 
     @property
     def found(self) -> list[tuple[str, str]]:
@@ -79,6 +83,8 @@ def change_key(session: Session) -> tuple:
         select(func.max(Job.heartbeat_at)).where(Job.state == "running").scalar_subquery(),
         select(func.count(Dataset.id)).scalar_subquery(),
         select(func.max(User.id)).scalar_subquery(),
+        select(func.max(ProbeRun.updated_at)).scalar_subquery(),
+        select(func.count(ProbeRun.id)).scalar_subquery(),
     )).one())
 
 
@@ -105,6 +111,8 @@ def _read_rows(session: Session) -> list[RegistryRow]:
                      .group_by(Report.dataset_id).subquery())
     latest_job = (select(Job.dataset_id, func.max(Job.id).label("jid"))
                   .group_by(Job.dataset_id).subquery())
+    latest_probe = (select(ProbeRun.dataset_id, func.max(ProbeRun.id).label("pid"))
+                    .where(ProbeRun.state == "done").group_by(ProbeRun.dataset_id).subquery())
     reviewer = aliased(User)
     # Plain columns, not ORM entities: the registry reads ~20 values per dataset and
     # building six mapped objects per row dominated the page's time.
@@ -116,7 +124,7 @@ def _read_rows(session: Session) -> list[RegistryRow]:
             Report.verdict, Report.trace_status,
             Decision.outcome, Decision.created_at,
             reviewer.name, reviewer.display_name,
-            Job.state,
+            Job.state, Dataset.withdrawn_at, ProbeRun.gap,
         )
         .join(User, User.id == Dataset.uploader_id)
         .outerjoin(latest_report, latest_report.c.dataset_id == Dataset.id)
@@ -125,6 +133,8 @@ def _read_rows(session: Session) -> list[RegistryRow]:
         .outerjoin(reviewer, reviewer.id == Decision.reviewer_id)
         .outerjoin(latest_job, latest_job.c.dataset_id == Dataset.id)
         .outerjoin(Job, Job.id == latest_job.c.jid)
+        .outerjoin(latest_probe, latest_probe.c.dataset_id == Dataset.id)
+        .outerjoin(ProbeRun, ProbeRun.id == latest_probe.c.pid)
     )
     formats: dict[int, set[str]] = {}
     counts: dict[int, int] = {}
@@ -138,7 +148,7 @@ def _read_rows(session: Session) -> list[RegistryRow]:
     rows = []
     for (ds_id, name, source, licence, description, created, updated, size, up_name,
          up_display, verdict, trace_status, outcome, decided_at, rev_name, rev_display,
-         job_state) in session.execute(stmt):
+         job_state, withdrawn_at, gap) in session.execute(stmt):
         rows.append(RegistryRow(
             id=ds_id, name=name, source=source, licence=licence,
             description=description, uploader=up_name, uploader_label=up_display or up_name,
@@ -150,6 +160,8 @@ def _read_rows(session: Session) -> list[RegistryRow]:
             decided_by=(rev_display or rev_name) if rev_name else None,
             decided_at=decided_at,
             job_state=job_state,
+            withdrawn=withdrawn_at is not None,
+            gap=gap,
         ))
     return rows
 
@@ -163,6 +175,7 @@ def filter_rows(
     uploader: str = "",
     sort: str = "updated",
     descending: bool = True,
+    withdrawn: bool = False,
 ) -> list[RegistryRow]:
     """Search, filter and sort registry rows.
 
@@ -177,11 +190,16 @@ def filter_rows(
     uploader : str
         A user name.
     sort : str
-        One of :data:`SORTS`.
+        One of :data:`SORTS`; ``gap`` orders by the bias probe's NRMSE gap, datasets
+        never probed last in either direction.
+    withdrawn : bool
+        Include withdrawn datasets (hidden by default).
     """
     words = q.lower().split()
     out = []
     for r in rows:
+        if r.withdrawn and not withdrawn:
+            continue
         if words:
             hay = " ".join((r.name, r.source, r.licence, r.description, r.uploader,
                             r.uploader_label)).lower()
@@ -204,5 +222,9 @@ def filter_rows(
         "decision": lambda r: (r.decision or "", r.decided_at or datetime.min),
         "uploader": lambda r: r.uploader,
     }
+    if sort == "gap":
+        probed = sorted((r for r in out if r.gap is not None), key=lambda r: r.gap,
+                        reverse=descending)
+        return probed + [r for r in out if r.gap is None]
     out.sort(key=keys.get(sort, keys["updated"]), reverse=descending)
     return out

@@ -43,12 +43,18 @@ from app.store.analyses import (
 )
 from app.store.audit import audit
 from app.store.datasets import (
+    EDITABLE,
     MAX_FIELD,
     Duplicate,
     FileInput,
     create_dataset,
     duplicates_of,
+    edit_dataset,
+    edit_history,
     get_dataset,
+    purge_files,
+    restore_dataset,
+    withdraw_dataset,
 )
 from app.store.reviews import (
     MAX_COMMENT,
@@ -60,6 +66,8 @@ from app.store.reviews import (
 )
 
 __all__ = [
+    "EDITABLE", "edit_dataset", "edit_history", "purge_files", "restore_dataset",
+    "withdraw_dataset",
     "MAX_COMMENT", "MAX_FIELD", "MIN_PASSWORD", "NAME_RE", "Duplicate", "FileInput",
     "add_comment", "audit", "authenticate", "create_api_token", "create_dataset",
     "create_user", "create_web_session", "current_decision", "duplicates_of",

@@ -23,7 +23,7 @@ from sqlalchemy.orm import Session
 from app import sampling
 from app.config import Settings
 from app.errors import InputError
-from app.methods import methods_statement
+from app.methods import USUAL_ACCELERATION, methods_statement
 from app.store import files as filestore
 from app.store import service
 from app.store.errors import NotFoundError, ValidationError
@@ -238,10 +238,19 @@ def default_effective(report: dict[str, Any]) -> dict[str, Any] | None:
     if min(sup["support"]) >= 0.999:
         return None
     dims, axis = _default_layout(sup)
-    res = effective_summary(report, family="polynomial", acceleration=4.0, dims=dims,
-                            axis=axis)
-    res["family"] = f"polynomial variable-density line (along the {axis})"
+    res = effective_summary(report, family="polynomial", acceleration=USUAL_ACCELERATION,
+                            dims=dims, axis=axis)
+    # the words of app.methods.usual_effective, which the command's summary uses
+    res["family"] = f"polynomial variable-density line masks along the {axis}"
     return res
+
+
+def safe_default_effective(report: dict[str, Any]) -> dict[str, Any] | None:
+    """:func:`default_effective`, or None when the report has no usable support."""
+    try:
+        return default_effective(report)
+    except (ValidationError, InputError, ValueError):
+        return None
 
 
 # ---------------------------------------------------------------- routes
@@ -349,13 +358,12 @@ def methods_for(db: Session, dataset: Any, report: dict[str, Any] | None) -> str
     """The methods statement with the current decision and the default effective rate."""
     if not report:
         return ""
+    from app.probe_jobs import latest_result
+
     dec = service.current_decision(db, dataset)
     decision = {"outcome": dec.outcome, "rationale": dec.rationale} if dec else None
-    try:
-        eff = default_effective(report)
-    except (ValidationError, InputError, ValueError):
-        eff = None
-    return methods_statement(report, decision, effective=eff)
+    return methods_statement(report, decision, effective=safe_default_effective(report),
+                             probe=latest_result(db, dataset.id))
 
 
 def warm_cache(settings: Settings, report_id: int, report: dict[str, Any]) -> int:

@@ -1,27 +1,18 @@
-"""Short plain-English labels for trace ids, statuses and decision outcomes."""
+"""Labels for trace ids, statuses, verdicts and decision outcomes on the pages.
+
+Every name comes from :mod:`app.methods` (the one source the command line, the
+exports and the methods statement also read); this module only adds the
+verdict words and the lookups the templates call.
+"""
 
 from __future__ import annotations
 
-from app.store.models import OUTCOMES
+from app.methods import OUTCOME_LABELS, STATUS_WORDS, TRACE_LABELS, status_word, trace_label
 
-TRACE_LABELS: dict[str, str] = {
-    "zero_filling": "Zero-filled",
-    "magnitude_only": "Magnitude only",
-    "coil_combination": "Coil-combined",
-    "background_masking": "Masked background",
-    "lossy_compression": "Lossy compression",
-    "intensity_quantization": "Quantised",
-    "resampling": "Resampled",
-    "kspace_filtering": "k-space filtered",
-    "partial_fourier": "Partial Fourier",
-    "kspace_synthesis": "Computed k-space",
-}
+__all__ = ["OUTCOME_LABELS", "STATUS_LABELS", "TRACE_LABELS", "VERDICT_LABELS",
+           "outcome_label", "status_label", "trace_label", "verdict_label"]
 
-STATUS_LABELS: dict[str, str] = {
-    "present": "found",
-    "absent": "not found",
-    "inconclusive": "unclear",
-}
+STATUS_LABELS: dict[str, str] = STATUS_WORDS
 
 VERDICT_LABELS: dict[str, str] = {
     "processed": "Processed",
@@ -30,17 +21,13 @@ VERDICT_LABELS: dict[str, str] = {
 }
 
 
-def trace_label(trace_id: str) -> str:
-    """A short label for a trace id (falls back to the id in words)."""
-    return TRACE_LABELS.get(trace_id, trace_id.replace("_", " ").capitalize())
-
-
 def status_label(status: str) -> str:
-    return STATUS_LABELS.get(status, status)
+    """The status word (present, absent, inconclusive)."""
+    return status_word(status)
 
 
 def outcome_label(outcome: str | None) -> str:
-    return OUTCOMES.get(outcome or "", outcome or "")
+    return OUTCOME_LABELS.get(outcome or "", outcome or "")
 
 
 def verdict_label(verdict: str | None) -> str:

@@ -2,16 +2,18 @@
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Annotated, Any
 
-from fastapi import APIRouter, Depends, Request
+from fastapi import APIRouter, Depends, Form, Request
 from fastapi.responses import FileResponse, JSONResponse, RedirectResponse
 from sqlalchemy.orm import Session
 
 import app
+from app import probe_jobs
+from app.methods import CONFIDENCE_MEANING, finding_text, plain_answer
 from app.store import files as filestore
 from app.store import service
-from app.store.errors import NotFoundError
+from app.store.errors import NotFoundError, StoreError
 from app.store.models import OUTCOMES, DatasetFile, Job, Report, User
 from app.web.deps import CurrentUser, DbSession, SettingsDep, csrf_protect, current_user
 from app.web.pagecache import cached_page
@@ -70,6 +72,15 @@ def dataset_context(db: Session, settings, dataset_id: int, user: User,  # noqa:
     history = service.report_history(db, ds.id)
     newest = history[0] if history else None
     outdated = newest is not None and newest.tool_version != app.__version__
+    probe_run = probe_jobs.latest_probe(db, ds.id)
+    probe_result = probe_jobs.latest_result(db, ds.id)
+    answer = None
+    if report:
+        from app.web.evidence import safe_default_effective
+
+        answer = plain_answer(report, effective=safe_default_effective(report),
+                              probe=probe_result)
+    shape = [int(n) for n in ((report or {}).get("input") or {}).get("shape") or []]
     return {
         "dataset": ds,
         "report": report,
@@ -86,6 +97,19 @@ def dataset_context(db: Session, settings, dataset_id: int, user: User,  # noqa:
         "current_decision": current,
         "can_decide": user.id != ds.uploader_id,
         "trace_ids": list((report or {}).get("traces", {})),
+        "answer": answer,
+        "findings": {tid: finding_text(tid, t, shape)
+                     for tid, t in ((report or {}).get("traces") or {}).items()},
+        "confidence_meaning": CONFIDENCE_MEANING,
+        "probe_run": probe_run,
+        "probe_json": probe_jobs.probe_json(probe_run),
+        "probe_result": probe_result,
+        "probe_choices": {"families": probe_jobs.FAMILIES,
+                          "accelerations": probe_jobs.ACCELERATIONS,
+                          "max_slices": probe_jobs.MAX_SLICES},
+        "can_change": user.is_admin or user.id == ds.uploader_id,
+        "is_admin": user.is_admin,
+        "edit_history": service.edit_history(db, ds.id),
         "outcomes": OUTCOMES,
         "previews_available": bool(report_row and
                                    filestore.previews_file(settings, report_row.id).exists()),
@@ -111,7 +135,8 @@ def dataset_status(dataset_id: int, db: DbSession):
     ds = service.get_dataset(db, dataset_id)
     rep = service.get_current_report(db, ds.id)
     return {"dataset_id": ds.id, "job": job_status(service.latest_job(db, ds.id)),
-            "report_id": rep.id if rep else None}
+            "report_id": rep.id if rep else None,
+            "probe": probe_jobs.probe_json(probe_jobs.latest_probe(db, ds.id))}
 
 
 def _json_download(obj: Any, filename: str) -> JSONResponse:
@@ -177,3 +202,88 @@ def download_file(link_id: int, db: DbSession, settings: SettingsDep):
         headers={"content-disposition":
                  f'attachment; filename="{attachment_name(link.relative_name)}"'},
     )
+
+
+# ------------------------------------------------------------------ changes from the page
+def _page_with_error(request: Request, db: Session, settings, dataset_id: int,  # noqa: ANN001
+                     user: User, exc: StoreError, **extra: Any):
+    db.close()
+    with request.app.state.database.scope(write=False) as reader:
+        ctx = dataset_context(reader, settings, dataset_id, user)
+        ctx.update(extra)
+        return render(request, "dataset.html", ctx, status_code=exc.status_code)
+
+
+@router.post("/datasets/{dataset_id}/probe", dependencies=[Depends(csrf_protect)])
+def start_probe(request: Request, dataset_id: int, db: DbSession, user: CurrentUser,
+                settings: SettingsDep, acceleration: Annotated[str, Form()] = "4",
+                family: Annotated[str, Form()] = "polynomial",
+                slices: Annotated[str, Form()] = "8"):
+    """Queue the bias probe; the worker runs it and the page shows its progress."""
+    ds = service.get_dataset(db, dataset_id)
+    try:
+        probe_jobs.request_probe(db, ds, user=user, acceleration=acceleration, family=family,
+                                 slices=slices)
+    except StoreError as exc:
+        return _page_with_error(request, db, settings, dataset_id, user, exc,
+                                probe_error=exc.message)
+    db.commit()
+    return RedirectResponse(f"/datasets/{ds.id}#probe", status_code=303)
+
+
+@router.post("/datasets/{dataset_id}/edit", dependencies=[Depends(csrf_protect)])
+def edit_dataset(request: Request, dataset_id: int, db: DbSession, user: CurrentUser,
+                 settings: SettingsDep, name: Annotated[str, Form()] = "",
+                 source: Annotated[str, Form()] = "", licence: Annotated[str, Form()] = "",
+                 description: Annotated[str, Form()] = "",
+                 intended_use: Annotated[str, Form()] = ""):
+    ds = service.get_dataset(db, dataset_id)
+    form = {"name": name, "source": source, "licence": licence, "description": description,
+            "intended_use": intended_use}
+    try:
+        service.edit_dataset(db, ds, user=user, changes=form)
+    except StoreError as exc:
+        return _page_with_error(request, db, settings, dataset_id, user, exc,
+                                edit_error=exc.message, edit_form=form)
+    db.commit()
+    return RedirectResponse(f"/datasets/{ds.id}#about", status_code=303)
+
+
+@router.post("/datasets/{dataset_id}/withdraw", dependencies=[Depends(csrf_protect)])
+def withdraw_dataset(request: Request, dataset_id: int, db: DbSession, user: CurrentUser,
+                     settings: SettingsDep, reason: Annotated[str, Form()] = ""):
+    ds = service.get_dataset(db, dataset_id)
+    try:
+        service.withdraw_dataset(db, ds, user=user, reason=reason)
+    except StoreError as exc:
+        return _page_with_error(request, db, settings, dataset_id, user, exc,
+                                withdraw_error=exc.message)
+    db.commit()
+    return RedirectResponse(f"/datasets/{ds.id}", status_code=303)
+
+
+@router.post("/datasets/{dataset_id}/restore", dependencies=[Depends(csrf_protect)])
+def restore_dataset(request: Request, dataset_id: int, db: DbSession, user: CurrentUser,
+                    settings: SettingsDep):
+    ds = service.get_dataset(db, dataset_id)
+    try:
+        service.restore_dataset(db, ds, user=user)
+    except StoreError as exc:
+        return _page_with_error(request, db, settings, dataset_id, user, exc,
+                                withdraw_error=exc.message)
+    db.commit()
+    return RedirectResponse(f"/datasets/{ds.id}", status_code=303)
+
+
+@router.post("/datasets/{dataset_id}/purge", dependencies=[Depends(csrf_protect)])
+def purge_dataset_files(request: Request, dataset_id: int, db: DbSession, user: CurrentUser,
+                        settings: SettingsDep, confirm_name: Annotated[str, Form()] = ""):
+    """Delete a withdrawn dataset's stored files (admin; the typed name confirms)."""
+    ds = service.get_dataset(db, dataset_id)
+    try:
+        service.purge_files(db, settings, ds, user=user, confirm_name=confirm_name)
+    except StoreError as exc:
+        return _page_with_error(request, db, settings, dataset_id, user, exc,
+                                withdraw_error=exc.message)
+    db.commit()
+    return RedirectResponse(f"/datasets/{ds.id}", status_code=303)
