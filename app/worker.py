@@ -309,6 +309,9 @@ class Worker:
             log.info("removed %d upload or job file(s) left in tmp/ by killed processes", swept)
         beat = threading.Thread(target=self._heartbeat_loop, name="heartbeat", daemon=True)
         beat.start()
+        from app import probe_jobs  # bias probes run on their own thread
+
+        probe_jobs.start_thread(self.settings, self.stop, owner=self.owner)
         finished = 0
         try:
             while not self.stop.is_set() and not self._parent_gone():
@@ -376,4 +379,7 @@ def run_inline(settings: Settings, *, limit: int | None = None) -> int:
         _finish(settings, owner, act, result)
         shutil.rmtree(act.workdir, ignore_errors=True)
         ran += 1
+    from app import probe_jobs
+
+    probe_jobs.run_pending(settings, owner=owner)
     return ran
