@@ -34,7 +34,8 @@
   function showError(message) {
     errorBox.textContent = message;
     errorBox.hidden = false;
-    errorBox.focus && errorBox.focus();
+    errorBox.scrollIntoView({ block: "center" });
+    errorBox.focus({ preventScroll: true });
   }
 
   function describe() {

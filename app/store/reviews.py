@@ -84,7 +84,8 @@ def record_decision(
             "You uploaded this dataset, so another member must record its decision."
         )
     if outcome not in OUTCOMES:
-        raise ValidationError("Choose one of the three outcomes.")
+        raise ValidationError("Choose one of the three outcomes: " + ", ".join(
+            f"{key} ({label})" for key, label in OUTCOMES.items()) + ".")
     text = clean_field(rationale, "rationale", required=True, limit=MAX_COMMENT)
     session.refresh(dataset)
     seen = dataset.current_decision_id if expected_current_id is None else (

@@ -36,9 +36,28 @@ def _wants_json(request: Request) -> bool:
             or request.headers.get("authorization", "").lower().startswith("bearer "))
 
 
-def _error(request: Request, status: int, title: str, message: str):
+#: The stable error codes of JSON answers (documented in the README), one per kind.
+ERROR_CODES = ("not_signed_in", "forbidden", "form_expired", "not_found",
+               "method_not_allowed", "invalid_request", "invalid_field", "permission_denied",
+               "self_decision", "decision_conflict", "upload_too_large", "storage_full",
+               "http_error")
+
+
+def store_error_code(exc: StoreError) -> str:
+    """The snake_case code of a store error (its class name without ``Error``)."""
+    name = type(exc).__name__.removesuffix("Error")
+    snake = "".join("_" + c.lower() if c.isupper() else c for c in name).lstrip("_")
+    return {"validation": "invalid_field"}.get(snake, snake or "invalid_field")
+
+
+def error_body(code: str, message: str, **extra: object) -> dict:
+    """The one error object every JSON answer uses: ``{"error": {"code", "message"}}``."""
+    return {"error": {"code": code, "message": message, **extra}}
+
+
+def _error(request: Request, status: int, title: str, message: str, *, code: str):
     if _wants_json(request):
-        return JSONResponse({"error": {"code": title, "message": message}}, status_code=status)
+        return JSONResponse(error_body(code, message), status_code=status)
     return render(request, "error.html", {"title": title, "message": message,
                                           "status": status}, status_code=status)
 
@@ -47,7 +66,7 @@ def _install_handlers(application: FastAPI) -> None:
     @application.exception_handler(NotSignedInError)
     async def _not_signed_in(request: Request, exc: NotSignedInError):
         if _wants_json(request):
-            return JSONResponse({"error": {"code": "not_signed_in", "message": str(exc)}},
+            return JSONResponse(error_body("not_signed_in", str(exc)),
                                 status_code=401, headers={"www-authenticate": "Bearer"})
         if request.method in ("GET", "HEAD"):
             target = request.url.path + (f"?{request.url.query}" if request.url.query else "")
@@ -57,34 +76,35 @@ def _install_handlers(application: FastAPI) -> None:
 
     @application.exception_handler(ForbiddenError)
     async def _forbidden(request: Request, exc: ForbiddenError):
-        return _error(request, 403, "Not allowed", str(exc))
+        return _error(request, 403, "Not allowed", str(exc), code="forbidden")
 
     @application.exception_handler(CsrfError)
     async def _csrf(request: Request, exc: CsrfError):
-        return _error(request, 403, "Form expired", str(exc))
+        return _error(request, 403, "Form expired", str(exc), code="form_expired")
 
     @application.exception_handler(StoreError)
     async def _store(request: Request, exc: StoreError):
-        if _wants_json(request):
-            return _error(request, exc.status_code, type(exc).__name__, exc.message)
-        return _error(request, exc.status_code, exc.title, exc.message)
+        return _error(request, exc.status_code, exc.title, exc.message,
+                      code=store_error_code(exc))
 
     @application.exception_handler(InputError)
     async def _input(request: Request, exc: InputError):
-        return _error(request, 400, exc.code, exc.message)
+        return _error(request, 400, "Cannot read the input", exc.message, code=exc.code)
 
     @application.exception_handler(RequestValidationError)
     async def _validation(request: Request, exc: RequestValidationError):
         fields = ", ".join(".".join(str(p) for p in e.get("loc", ())) for e in exc.errors())
         return _error(request, 422, "Bad request", f"These fields are missing or malformed: "
-                      f"{fields or 'unknown'}.")
+                      f"{fields or 'unknown'}.", code="invalid_request")
 
     @application.exception_handler(StarletteHTTPException)
     async def _http(request: Request, exc: StarletteHTTPException):
         titles = {404: "Not found", 405: "Method not allowed"}
+        codes = {404: "not_found", 405: "method_not_allowed"}
         return _error(request, exc.status_code, titles.get(exc.status_code, "Error"),
                       str(exc.detail) if exc.status_code != 404 else
-                      "There is no page at this address.")
+                      "There is no page at this address.",
+                      code=codes.get(exc.status_code, "http_error"))
 
 
 def create_app(settings: Settings | None = None) -> FastAPI:

@@ -114,8 +114,10 @@ def _storage_error(exc: OSError) -> ValidationError:
 def _error(request: Request, settings: Settings, status: int, exc: StoreError,
            fields: dict[str, list[str]]):
     if _wants_json(request):
-        return JSONResponse({"error": {"code": type(exc).__name__, "message": exc.message}},
-                            status_code=status)
+        from app.web.app import error_body, store_error_code
+
+        code = {413: "upload_too_large", 507: "storage_full"}.get(status, store_error_code(exc))
+        return JSONResponse(error_body(code, exc.message), status_code=status)
     form = {k: (fields.get(k) or [""])[0] for k in FORM_FIELDS}
     return render(request, "upload.html", {"max_bytes": settings.max_upload_bytes,
                                            "form": form, "error": exc.message},
