@@ -101,10 +101,11 @@ def test_profiles_plot_measured_energy_and_edges(zf_report: dict) -> None:
 def test_profiles_with_downsampled_profile_scale_to_samples() -> None:
     """A 2048-sample axis whose profile was averaged to 1024 points is drawn on
     the original sample scale (-1024 .. 1022 in steps of 2)."""
-    rep = {"input": {"shape": [2048, 2048]}, "traces": {"kspace_filtering": {"evidence": {
-        "profiles_db": {"cols": list(np.linspace(0, 1, 1024))},
-        "fits": {"cols": {"window": "hann", "param": None,
-                          "curve_db": list(np.linspace(0, 1, 1024)), "error": 0.1}}}}}}
+    rep = {"input": {"shape": [2048, 2048]}, "traces": {"kspace_filtering": {
+        "status": "present", "estimates": {"window": "hann"}, "evidence": {
+            "profiles_db": {"cols": list(np.linspace(0, 1, 1024))},
+            "fits": {"cols": {"window": "hann", "param": None,
+                              "curve_db": list(np.linspace(0, 1, 1024)), "error": 0.1}}}}}}
     fig = figures.build_kspace_profiles(rep)
     x = fig.axes[0].get_lines()[0].get_xdata()
     assert x[0] == -1024 and x[-1] == 1022
@@ -112,14 +113,73 @@ def test_profiles_with_downsampled_profile_scale_to_samples() -> None:
     assert "fitted hann window" in labels
 
 
+def _profile_report(kf_status: str, pf_status: str, fit_window: str,
+                    estimate_window: str | None) -> dict:
+    ramp = list(np.linspace(0, 1, 64))
+    fits = {"cols": {"window": fit_window, "curve_db": ramp}}
+    return {"input": {"shape": [64, 64]}, "traces": {
+        "kspace_filtering": {"status": kf_status, "estimates": {"window": estimate_window},
+                             "evidence": {"profiles_db": {"cols": ramp}, "fits": fits}},
+        "partial_fourier": {"status": pf_status, "estimates": {},
+                            "evidence": {"edges": {"cols": [20, 64]}}}}}
+
+
+def test_profiles_draw_a_fit_and_a_band_only_where_the_trace_found_them() -> None:
+    """Issue 22 item 4 (common practice, no source: a figure shows what the finding
+    says): a raw dataset (both traces absent) gets neither a fitted window nor a
+    partial-Fourier band; a found window is named by the trace's estimate (the
+    finding text's field), not by the evidence's best-fitting family."""
+    quiet = figures.build_kspace_profiles(_profile_report("absent", "absent", "gaussian", None))
+    labels = [ln.get_label() for ln in quiet.axes[0].get_lines()]
+    assert not any("fitted" in lb for lb in labels)
+    assert not any("partial Fourier" in str(p.get_label()) for p in quiet.axes[0].patches)
+    found = figures.build_kspace_profiles(_profile_report("present", "present", "hamming",
+                                                          "gaussian"))
+    labels = [ln.get_label() for ln in found.axes[0].get_lines()]
+    assert "fitted gaussian window" in labels and "fitted hamming window" not in labels
+    assert any("partial Fourier" in str(p.get_label()) for p in found.axes[0].patches)
+
+
+def test_grey_levels_of_float_data_are_not_counted_as_levels() -> None:
+    """A float32 image has no 2**32 'possible' levels (IEEE 754 floats are not a
+    uniform grid); the title says floating-point storage instead, on two lines when long."""
+    ev = {"histogram": {"edges": [0.0, 1.0, 2.0], "counts": [5, 7]}, "distinct_levels": 70000,
+          "stated_bits": 32, "comb_score": 0.1}
+    rep = {"input": {"dtype": "float32"},
+           "traces": {"intensity_quantization": {"status": "absent", "evidence": ev}}}
+    title = figures.build_grey_levels(rep).axes[0].get_title()
+    assert "4,294,967,296" not in title and "float32 storage (floating point)" in title
+    rep["input"]["dtype"] = "uint16"
+    ev["stated_bits"] = 12
+    assert "12-bit storage (4,096 possible levels)" in figures.build_grey_levels(
+        rep).axes[0].get_title()
+
+
+def test_periodicity_marks_the_peaks_that_were_set_aside() -> None:
+    """The resampling trace sets aside 1/8-periodic peaks when the pixels carry a JPEG
+    block grid (Fridrich-style blocking, common practice); the figure marks them."""
+    line = {"freq": list(np.linspace(0, 0.5, 65)), "power": list(np.ones(65)), "peaks": []}
+    rep = {"traces": {"resampling": {"status": "absent", "evidence": {
+        "periodicity": {"rows": line, "cols": line}, "block_grid_excluded": True,
+        "dyadic_excluded": False, "zero_fill_explained": {"cols": 0.3}}}}}
+    fig = figures.build_periodicity(rep)
+    rows, cols = fig.axes[0], fig.axes[1]
+    xs = sorted(round(float(ln.get_xdata()[0]), 3) for ln in rows.get_lines()[1:])
+    assert xs == [0.125, 0.25, 0.375, 0.5]
+    labels = [ln.get_label() for ln in cols.get_lines()]
+    assert "set aside (JPEG 8 x 8 block grid)" in labels
+    assert "set aside (explained by zero-filling)" in labels
+
+
 def test_folded_window_fit_is_drawn_on_both_sides() -> None:
     """A fit given against distance from DC (``k``, the kspace_filtering analyser's
     folded profile) is drawn mirrored: at -k and +k with the same values."""
     k = np.arange(3, 40, dtype=float)
     curve = 100 - 0.02 * k ** 2
-    rep = {"input": {"shape": [96, 96]}, "traces": {"kspace_filtering": {"evidence": {
-        "profiles_db": {"rows": list(np.zeros(96))},
-        "fits": {"rows": {"window": "hann", "param": None, "k": k.tolist(),
+    rep = {"input": {"shape": [96, 96]}, "traces": {"kspace_filtering": {
+        "status": "present", "estimates": {"window": "hann"}, "evidence": {
+            "profiles_db": {"rows": list(np.zeros(96))},
+            "fits": {"rows": {"window": "hann", "param": None, "k": k.tolist(),
                           "curve_db": curve.tolist(), "error": 0.5}}}}}}
     fig = figures.build_kspace_profiles(rep)
     fit = next(ln for ln in fig.axes[0].get_lines() if ln.get_label() == "fitted hann window")

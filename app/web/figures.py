@@ -20,6 +20,8 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from app.methods import LAW_NAMES, window_name
+
 if TYPE_CHECKING:
     from matplotlib.figure import Figure
 
@@ -33,7 +35,6 @@ SKY = "#56B4E9"
 MAP = "cividis"
 DPI = 100
 AXES = ("rows", "cols")
-LAW_NAMES = {"gaussian": "Gaussian", "rayleigh": "Rayleigh", "noncentral_chi": "non-central chi"}
 LAW_STYLE = {"gaussian": (BLUE, "--", "o"), "rayleigh": (ORANGE, "-.", "s"),
              "noncentral_chi": (GREEN, "-", "^")}
 
@@ -53,6 +54,15 @@ class FigureSpec:
 def _trace(report: dict[str, Any], tid: str) -> dict[str, Any]:
     t = (report.get("traces") or {}).get(tid) or {}
     return t if isinstance(t, dict) else {}
+
+
+def _status(report: dict[str, Any], tid: str) -> str | None:
+    return _trace(report, tid).get("status")
+
+
+def _estimates(report: dict[str, Any], tid: str) -> dict[str, Any]:
+    est = _trace(report, tid).get("estimates") or {}
+    return est if isinstance(est, dict) else {}
 
 
 def _ev(report: dict[str, Any], tid: str) -> dict[str, Any]:
@@ -235,11 +245,15 @@ def build_kspace_profiles(report: dict[str, Any]) -> Figure | None:
             ax.text(0.02, 0.04, f"level drop at edge: {drop:.1f} dB", transform=ax.transAxes,
                     fontsize=8, color=INK, bbox={"facecolor": "white", "edgecolor": "#999999",
                                                 "boxstyle": "round,pad=0.2"})
-        fits = kf.get("fits") if isinstance(kf.get("fits"), dict) else {}
+        # a fitted window is drawn only where the kspace_filtering trace found one, and
+        # named from the trace's estimate (the finding text and the methods statement
+        # read the same field)
+        kf_found = _status(report, "kspace_filtering") == "present"
+        fits = kf.get("fits") if isinstance(kf.get("fits"), dict) and kf_found else {}
         fit = fits.get(axis) if isinstance(fits.get(axis), dict) else {}
         curve = _num_list(fit.get("curve_db"))
         kfit = _num_list(fit.get("k"))
-        name = fit.get("window") or fit.get("best_family") or "window"
+        name = window_name(_estimates(report, "kspace_filtering")) or "smooth"
         par = _num(fit.get("param"))
         label = f"fitted {name} window" + (f" ({par:.3g})" if par is not None else "")
         if curve is not None and kfit is not None and len(kfit) == len(curve):
@@ -249,7 +263,8 @@ def build_kspace_profiles(report: dict[str, Any]) -> Figure | None:
                     linewidth=1.6, label=label)
         elif curve is not None and len(curve) == n:
             ax.plot(k, curve, color=GREEN, linestyle="-.", linewidth=1.6, label=label)
-        pf_edges = pf.get("edges") if isinstance(pf.get("edges"), dict) else {}
+        pf_found = _status(report, "partial_fourier") == "present"
+        pf_edges = pf.get("edges") if isinstance(pf.get("edges"), dict) and pf_found else {}
         pe = _pair(pf_edges.get(axis))
         if pe is not None:
             ax.axvspan(pe[0] - size // 2, pe[1] - size // 2, color=SKY, alpha=0.18, hatch="//",
@@ -289,7 +304,9 @@ def build_background_noise(report: dict[str, Any]) -> Figure | None:
     ax.stairs(counts, edges, color="#666666", linewidth=0.8)
     x = _num_list(ev.get("density_x"))
     dens = ev.get("densities") if isinstance(ev.get("densities"), dict) else {}
-    chosen = ev.get("chosen")
+    # the law the trace reports (its estimate), so the legend, the finding text and
+    # the methods statement name the same one
+    chosen = _estimates(report, "coil_combination").get("noise_model") or ev.get("chosen")
     L = _num(ev.get("effective_channels"))
     stats = ev.get("statistics") if isinstance(ev.get("statistics"), dict) else {}
     if x is not None:
@@ -352,12 +369,20 @@ def build_grey_levels(report: dict[str, Any]) -> Figure | None:
     parts = []
     if isinstance(lv, int):
         parts.append(f"{lv:,} distinct levels")
-    if isinstance(bits, int):
-        parts.append(f"{bits}-bit storage ({2 ** bits:,} possible)")
+    dtype = str(((report.get("input") or {}).get("dtype")) or "")
+    if dtype.startswith(("float", "complex")):
+        # a float's bit count is not a number of levels: say what it is
+        parts.append(f"{dtype} storage (floating point)")
+    elif isinstance(bits, int):
+        parts.append(f"{bits}-bit storage ({2 ** bits:,} possible levels)")
     comb = _num(ev.get("comb_score"))
     if comb is not None:
         parts.append(f"comb score {comb:.2f}")
-    ax.set_title("Grey levels" + (": " + ", ".join(parts) if parts else ""), fontsize=10)
+    # two lines when long, so the title is never cut at the figure's edge
+    title = "Grey levels" + (": " + ", ".join(parts) if parts else "")
+    if len(title) > 60 and parts:
+        title = "Grey levels\n" + ", ".join(parts)
+    ax.set_title(title, fontsize=10)
     ax.set_xlabel("stored value (intensity units)", fontsize=9)
     ax.set_ylabel("count (log scale)", fontsize=9)
     _style(ax)
@@ -437,6 +462,20 @@ def build_block_signature(report: dict[str, Any]) -> Figure | None:
 
 
 # ---------------------------------------------------------------- resampling
+def _set_aside(ev: dict[str, Any], axis: str) -> list[tuple[float, str]]:
+    """The frequencies the resampling trace set aside on ``axis``, with the reason."""
+    out: list[tuple[float, str]] = []
+    if ev.get("block_grid_excluded"):
+        out += [(k / 8, "JPEG 8 x 8 block grid") for k in (1, 2, 3, 4)]
+    if ev.get("dyadic_excluded"):
+        out += [(0.25, "JPEG 2000 wavelet"), (0.5, "JPEG 2000 wavelet")]
+    zf = ev.get("zero_fill_explained")
+    f = _num(zf.get(axis)) if isinstance(zf, dict) else None
+    if f is not None:
+        out.append((f, "explained by zero-filling"))
+    return out
+
+
 def build_periodicity(report: dict[str, Any]) -> Figure | None:
     """Spectrum of the interpolation-residual map per axis, with its peaks.
 
@@ -466,6 +505,10 @@ def build_periodicity(report: dict[str, Any]) -> Figure | None:
             yv = np.interp(pk, f, p)
             ax.plot(pk, yv, linestyle="none", marker="v", markersize=8, color=ORANGE,
                     markeredgecolor=INK, label="peaks: " + ", ".join(f"{v:.3f}" for v in pk[:4]))
+        for j, (fx, why) in enumerate(_set_aside(ev, axis)):
+            ax.axvline(fx, color="#888888", linestyle=(0, (2, 2)), linewidth=1.2,
+                       label=f"set aside ({why})" if j == 0 or why != _set_aside(ev, axis)[
+                           j - 1][1] else None)
         ax.set_xlim(0, 0.5)
         ax.set_xlabel("frequency (cycles / sample)", fontsize=9)
         ax.set_ylabel("power (relative units)", fontsize=9)
