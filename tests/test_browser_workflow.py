@@ -85,8 +85,11 @@ def test_upload_analyse_comment_decide_and_find_it_in_the_registry(server, brows
     page.wait_for_url(f"{base}/datasets/*")
     dataset_url = page.url
 
-    # The page polls the job and reloads when the report is stored.
-    page.wait_for_selector("table.traces", timeout=150_000)
+    # The page polls the job and, when the report is stored, offers a link to it
+    # (it never reloads itself: issue 22, typed text is kept).
+    page.wait_for_selector("#report-ready a", timeout=150_000)
+    page.click("#report-ready a")
+    page.wait_for_selector("table.traces")
     assert page.locator("#trace-zero_filling").count() == 1
     assert "research aid, not a medical device" in page.inner_text("footer")
     page.screenshot(path=str(ARTIFACTS / "browser-03-report.png"), full_page=True)
@@ -107,13 +110,13 @@ def test_upload_analyse_comment_decide_and_find_it_in_the_registry(server, brows
                             "fine for segmentation only.")
     page.click("form.decision-form button[type=submit]")
     page.wait_for_selector(".current-decision")
-    assert "Downstream use only" in page.inner_text(".current-decision")
+    assert "Fit for downstream tasks only" in page.inner_text(".current-decision")
     page.screenshot(path=str(ARTIFACTS / "browser-04-decided.png"), full_page=True)
 
     page.goto(f"{base}/?decision=downstream_only")
     row = page.locator("table.registry tbody tr", has_text="Harbourview knee archive")
     assert row.count() == 1
-    assert "Downstream use only" in row.inner_text() and "by rei" in row.inner_text()
+    assert "Fit for downstream tasks only" in row.inner_text() and "by rei" in row.inner_text()
     page.screenshot(path=str(ARTIFACTS / "browser-05-registry.png"), full_page=True)
     context.close()
     assert violations == []

@@ -50,6 +50,11 @@ def _run_users(args: Any) -> int:
             if cmd == "add":
                 password = args.password
                 if password is None:
+                    if not sys.stdin.isatty():
+                        # getpass would fall back to reading stdin and raise at its end
+                        print("rawproof: no terminal to ask for a password; pass "
+                              "--password PW (for scripts)", file=sys.stderr)
+                        return EXIT_BAD_INPUT
                     password = getpass.getpass(f"Password for {args.name}: ")
                     if getpass.getpass("Again: ") != password:
                         print("rawproof: the passwords differ", file=sys.stderr)
