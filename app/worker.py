@@ -16,6 +16,7 @@ where the dataset page reads it.
 from __future__ import annotations
 
 import concurrent.futures as cf
+import errno
 import json
 import logging
 import multiprocessing
@@ -42,6 +43,10 @@ log = logging.getLogger("rawproof.worker")
 
 DEFAULT_LEASE = 30.0
 DEFAULT_POLL = 1.0
+#: errors of a full or read-only disk: the job waits in the queue, its attempt unspent
+_STORAGE_ERRNOS = {errno.ENOSPC, errno.EDQUOT, errno.EROFS}
+#: longest wait between retries while the database or the store fails
+MAX_BACKOFF = 30.0
 # Fault injection for tests: when set, a claimed job waits until this file
 # exists before its analysis starts (lets a test kill a worker mid-job).
 GATE_ENV = "RAWPROOF_WORKER_GATE"
@@ -74,6 +79,30 @@ def _save_previews(previews: dict[str, Any], out: Path) -> None:
     np.savez_compressed(out, **arrays)
 
 
+def init_analysis_process(vm_bytes: int) -> None:
+    """Set up a pool process: die with the worker, and cap its address space.
+
+    ``PR_SET_PDEATHSIG`` (prctl(2)) makes the kernel kill this process when the
+    worker that spawned it dies, even by SIGKILL, so no analysis outlives its
+    worker. ``RLIMIT_AS`` (setrlimit(2)) turns a runaway allocation into a
+    ``MemoryError`` that fails this job instead of exhausting the machine.
+    """
+    import ctypes
+    import resource
+    import signal as _signal
+
+    pr_set_pdeathsig = 1
+    try:
+        ctypes.CDLL(None, use_errno=True).prctl(pr_set_pdeathsig, int(_signal.SIGKILL), 0, 0, 0)
+    except (OSError, AttributeError):  # not Linux: the pool notices a dead worker itself
+        pass
+    if vm_bytes > 0:
+        try:
+            resource.setrlimit(resource.RLIMIT_AS, (vm_bytes, vm_bytes))
+        except (ValueError, OSError):
+            log.warning("could not cap the analysis process's address space")
+
+
 def analyse_job(path: str, progress_file: str, previews_out: str, limits: Any,
                 fft_workers: int) -> dict[str, Any]:
     """Analyse one assembled dataset folder; runs in a pool process.
@@ -81,9 +110,13 @@ def analyse_job(path: str, progress_file: str, previews_out: str, limits: Any,
     Never raises (exceptions do not all cross process boundaries intact):
     returns ``{"ok": report}``, ``{"input_error": {...}}`` for unreadable
     input, or ``{"error": "...", "traceback": "..."}`` for anything else.
+    Temporary files of the readers (an archive's extracted members) go into
+    the job's own folder inside the data folder, removed with the job.
     """
     from app.errors import InputError
     from app.traces.report import analyse_path
+
+    tempfile.tempdir = str(Path(progress_file).parent)
 
     with open(progress_file, "a", encoding="utf-8") as fh:
         fh.write(json.dumps({"n_traces": _n_analysers()}) + "\n")
@@ -97,6 +130,12 @@ def analyse_job(path: str, progress_file: str, previews_out: str, limits: Any,
                               previews=previews)
     except InputError as exc:
         return {"input_error": exc.to_dict()}
+    except MemoryError:
+        return {"input_error": {
+            "code": "too_large", "path": None,
+            "message": "the analysis needed more memory than the limit of one analysis "
+                       f"process ({getattr(limits, 'max_analysis_vm_bytes', 0) / 1024**2:.0f} "
+                       "MiB of address space)"}}
     except Exception as exc:  # noqa: BLE001 - reported on the dataset page
         return {"error": f"{type(exc).__name__}: {exc}",
                 "traceback": traceback.format_exc(limit=6)[-4000:]}
@@ -150,6 +189,18 @@ class _Active:
         return self.workdir / "previews.npz"
 
 
+def _pid_alive(pid: int) -> bool:
+    if pid == os.getpid():
+        return True
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
 def _owner_id() -> str:
     return f"{socket.gethostname()}:{os.getpid()}:{uuid.uuid4().hex[:6]}"
 
@@ -188,7 +239,8 @@ def _finish(settings: Settings, owner: str, act: _Active, result: dict[str, Any]
     Paths inside the temporary job folder are written as the dataset's
     relative file names: the folder is gone once the job ends.
     """
-    result = _relative(result, str(act.workdir / "files"))
+    result = _relative(_relative(result, str(act.workdir / "files")), str(act.workdir))
+    result = _relative(result, str(settings.data_dir))
     db = database(settings)
     with db.scope() as s:
         if "ok" in result:
@@ -264,17 +316,26 @@ class Worker:
     def _pool_get(self) -> cf.ProcessPoolExecutor:
         if self._pool is None:
             self._pool = cf.ProcessPoolExecutor(
-                max_workers=self.concurrency, mp_context=multiprocessing.get_context("spawn"))
+                max_workers=self.concurrency, mp_context=multiprocessing.get_context("spawn"),
+                initializer=init_analysis_process,
+                initargs=(self.settings.analysis_limits.max_analysis_vm_bytes,))
         return self._pool
 
     def _claim(self) -> _Active | None:
         db = database(self.settings)
         with db.scope() as s:
+            jobq.expire_dead_leases(s, socket.gethostname(), _pid_alive)
             job = jobq.claim_job(s, self.owner, lease=self.lease)
             if job is None:
                 return None
             try:
                 act = _prepare(self.settings, job, s)
+            except OSError as exc:
+                if exc.errno in _STORAGE_ERRNOS:
+                    raise  # the claim is rolled back: a full disk spends no attempt
+                jobq.fail_job(s, job.id, self.owner, f"Cannot assemble the files: {exc}",
+                              permanent=False)
+                return None
             except Exception as exc:  # noqa: BLE001 - a missing blob fails this job only
                 jobq.fail_job(s, job.id, self.owner, f"Cannot assemble the files: {exc}",
                               permanent=False)
@@ -285,7 +346,7 @@ class Worker:
     def _submit(self, act: _Active) -> None:
         act.future = self._pool_get().submit(
             analyse_job, act.path, str(act.progress_file), str(act.previews_out),
-            self.settings.limits, self.fft_workers)
+            self.settings.analysis_limits, self.fft_workers)
 
     def _collect(self, act: _Active) -> None:
         try:
@@ -303,7 +364,13 @@ class Worker:
         return self.parent_pid is not None and os.getppid() != self.parent_pid
 
     def run(self, *, max_jobs: int | None = None) -> int:
-        """Work until stopped (or after ``max_jobs``); returns the number of jobs finished."""
+        """Work until stopped (or after ``max_jobs``); returns the number of jobs finished.
+
+        A failing database or store (a full disk, a locked or read-only
+        database) does not end the loop: the worker logs it, waits with a
+        growing back-off (up to :data:`MAX_BACKOFF` seconds) and tries again,
+        so queued jobs run once space is freed.
+        """
         swept = filestore.sweep_tmp(self.settings)
         if swept:
             log.info("removed %d upload or job file(s) left in tmp/ by killed processes", swept)
@@ -313,39 +380,62 @@ class Worker:
 
         probe_jobs.start_thread(self.settings, self.stop, owner=self.owner)
         finished = 0
+        backoff = 0.0
         try:
             while not self.stop.is_set() and not self._parent_gone():
-                while (len(self._active) < self.concurrency
-                       and (max_jobs is None or finished + len(self._active) < max_jobs)):
-                    act = self._claim()
-                    if act is None:
-                        break
-                    with self._lock:
-                        self._active[act.job_id] = act
-                    if not _wait_for_gate(self.stop):
-                        break
-                    self._submit(act)
-                futures = {a.future: a for a in self._active.values() if a.future}
-                if not futures:
-                    if max_jobs is not None and finished >= max_jobs:
-                        break
-                    self.stop.wait(self.poll)
+                try:
+                    finished, idle = self._step(finished, max_jobs)
+                    backoff = 0.0
+                except Exception as exc:  # noqa: BLE001 - database or disk trouble: retry
+                    backoff = min(MAX_BACKOFF, max(self.poll, backoff * 2))
+                    log.error("the queue is stalled (%s: %s); retrying in %.0f s",
+                              type(exc).__name__, str(exc)[:200], backoff)
+                    self.stop.wait(backoff)
                     continue
-                done, _ = cf.wait(futures, timeout=self.poll, return_when=cf.FIRST_COMPLETED)
-                for fut in done:
-                    act = futures[fut]
-                    self._collect(act)
-                    with self._lock:
-                        self._active.pop(act.job_id, None)
-                    finished += 1
-                if max_jobs is not None and finished >= max_jobs and not self._active:
+                if idle is None:
                     break
+                if idle:
+                    self.stop.wait(self.poll)
         finally:
             self.stop.set()
             if self._pool is not None:
                 self._pool.shutdown(wait=False, cancel_futures=True)
             self._release_unfinished()
         return finished
+
+    def _step(self, finished: int, max_jobs: int | None) -> tuple[int, bool | None]:
+        """One pass: claim what fits, collect what ended. Returns (finished, idle or None
+        when ``max_jobs`` is reached)."""
+        while (len(self._active) < self.concurrency
+               and (max_jobs is None or finished + len(self._active) < max_jobs)):
+            act = self._claim()
+            if act is None:
+                break
+            with self._lock:
+                self._active[act.job_id] = act
+            if not _wait_for_gate(self.stop):
+                return finished, None
+            self._submit(act)
+        futures = {a.future: a for a in self._active.values() if a.future}
+        if not futures:
+            if max_jobs is not None and finished >= max_jobs:
+                return finished, None
+            return finished, True
+        done, _ = cf.wait(futures, timeout=self.poll, return_when=cf.FIRST_COMPLETED)
+        for fut in done:
+            act = futures[fut]
+            try:
+                self._collect(act)
+            finally:
+                # a result that could not be stored: the lease runs out and the job
+                # is claimed again once the database or disk works again
+                with self._lock:
+                    self._active.pop(act.job_id, None)
+                shutil.rmtree(act.workdir, ignore_errors=True)
+            finished += 1
+        if max_jobs is not None and finished >= max_jobs and not self._active:
+            return finished, None
+        return finished, False
 
     def _release_unfinished(self) -> None:
         """On a clean stop, hand unfinished jobs back at once instead of waiting for leases."""
@@ -375,7 +465,7 @@ def run_inline(settings: Settings, *, limit: int | None = None) -> int:
                 break
             act = _prepare(settings, job, s)
         result = analyse_job(act.path, str(act.progress_file), str(act.previews_out),
-                             settings.limits, 2)
+                             settings.analysis_limits, 2)
         _finish(settings, owner, act, result)
         shutil.rmtree(act.workdir, ignore_errors=True)
         ran += 1

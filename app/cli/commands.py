@@ -17,7 +17,7 @@ from app.cli.common import EXIT_BAD_INPUT, Command
 from app.cli.demo import DEMO
 from app.cli.probe import CROP, PROBE
 from app.cli.sampling import SAMPLING
-from app.cli.serve import SERVE, WORKER
+from app.cli.serve import CHECK, SERVE, WORKER
 from app.cli.users import USERS
 from app.errors import InputError
 
@@ -29,6 +29,7 @@ COMMANDS: dict[str, Command] = {c.name: c for c in (
     CROP,
     SERVE,
     WORKER,
+    CHECK,
     USERS,
     DEMO,
     BACKUP,

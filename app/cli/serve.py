@@ -37,6 +37,9 @@ def _add_serve(p: argparse.ArgumentParser) -> None:
                    help="web server processes (default 1); more serve concurrent readers "
                         "faster on a multi-core machine")
     p.add_argument("--lease-seconds", type=float, default=30.0, help="the worker's job lease")
+    p.add_argument("--forwarded-allow-ips", default=None,
+                   help="addresses of reverse proxies whose X-Forwarded-For/-Proto headers are "
+                        "trusted (comma-separated); by default no forwarded header is trusted")
 
 
 def _run_serve(args: Any) -> int:
@@ -51,13 +54,16 @@ def _run_serve(args: Any) -> int:
     from app.store import files as filestore
 
     filestore.sweep_tmp(settings)  # what a killed server or worker left in tmp/
-    worker = None
+    filestore.remove_orphans(settings)  # stored files no database row refers to
+    supervisor = None
     if not args.no_worker:
-        worker = subprocess.Popen([
+        supervisor = WorkerSupervisor([
             *RAWPROOF_ARGV, "worker", *common_argv(settings),
             "--concurrency", str(max(1, args.workers)), "--lease-seconds",
             str(args.lease_seconds), "--parent-pid", str(os.getpid()),
         ])
+        supervisor.start()
+    server_options = _uvicorn_options(args)
     print(f"rawproof: serving {settings.data_dir} at http://{args.host}:{args.port}",
           file=sys.stderr, flush=True)
     try:
@@ -71,18 +77,90 @@ def _run_serve(args: Any) -> int:
                 "RAWPROOF_SECURE_COOKIES": "1" if settings.secure_cookies else "",
             })
             uvicorn.run("app.web.app:create_app", factory=True, workers=args.processes,
-                        host=args.host, port=args.port, log_level="warning", access_log=False)
+                        host=args.host, port=args.port, **server_options)
         else:
-            uvicorn.run(create_app(settings), host=args.host, port=args.port,
-                        log_level="warning", access_log=False)
+            uvicorn.run(create_app(settings), host=args.host, port=args.port, **server_options)
     finally:
-        if worker is not None and worker.poll() is None:
-            worker.send_signal(signal.SIGTERM)
-            try:
-                worker.wait(timeout=10)
-            except subprocess.TimeoutExpired:
-                worker.kill()
+        if supervisor is not None:
+            supervisor.stop()
     return EXIT_OK
+
+
+def _uvicorn_options(args: Any) -> dict[str, Any]:
+    """uvicorn settings: forwarded headers only from named proxies, short idle timeouts.
+
+    uvicorn trusts ``X-Forwarded-For`` from 127.0.0.1 unless told otherwise,
+    which lets any local client choose the address the sign-in limit counts;
+    here no forwarded header is trusted unless ``--forwarded-allow-ips`` names
+    the proxies. Connections slow to send their headers are closed
+    (:class:`app.web.limits.HeaderTimeoutH11Protocol`).
+    """
+    from app.web.limits import HeaderTimeoutH11Protocol
+
+    trusted = args.forwarded_allow_ips
+    return {
+        "log_level": "warning", "access_log": False,
+        "proxy_headers": bool(trusted), "forwarded_allow_ips": trusted or "",
+        "timeout_keep_alive": 5, "http": HeaderTimeoutH11Protocol,
+        "limit_concurrency": 1000,
+    }
+
+
+class WorkerSupervisor:
+    """Runs the worker beside the server and starts it again when it dies.
+
+    Back-off between restarts doubles from 1 s to :attr:`max_backoff` s and
+    starts again at 1 s once a worker has run for a minute. A worker that
+    exits cleanly is also restarted: only :meth:`stop` ends the supervision.
+    """
+
+    max_backoff = 30.0
+
+    def __init__(self, argv: list[str]) -> None:
+        import threading
+
+        self.argv = argv
+        self.proc: subprocess.Popen | None = None
+        self.restarts = 0
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._watch, name="worker-supervisor",
+                                        daemon=True)
+
+    def start(self) -> None:
+        self.proc = subprocess.Popen(self.argv)
+        self._thread.start()
+
+    def _watch(self) -> None:
+        import time
+
+        backoff = 1.0
+        while not self._stop.is_set():
+            started = time.monotonic()
+            proc = self.proc
+            while proc is not None and proc.poll() is None:
+                if self._stop.wait(0.5):
+                    return
+            if time.monotonic() - started > 60:
+                backoff = 1.0
+            print(f"rawproof: the worker exited ({proc.returncode if proc else '?'}); "
+                  f"starting it again in {backoff:.0f} s", file=sys.stderr, flush=True)
+            if self._stop.wait(backoff):
+                return
+            backoff = min(self.max_backoff, backoff * 2)
+            self.proc = subprocess.Popen(self.argv)
+            self.restarts += 1
+            if self._stop.is_set():
+                self.proc.terminate()
+
+    def stop(self) -> None:
+        self._stop.set()
+        proc = self.proc
+        if proc is not None and proc.poll() is None:
+            proc.send_signal(signal.SIGTERM)
+            try:
+                proc.wait(timeout=10)
+            except subprocess.TimeoutExpired:
+                proc.kill()
 
 
 def _add_worker(p: argparse.ArgumentParser) -> None:
@@ -124,3 +202,29 @@ def _run_worker(args: Any) -> int:
 SERVE = Command("serve", "the lab web app (with a worker beside it)", _add_serve, _run_serve)
 WORKER = Command("worker", "the analysis worker: claims queued jobs and runs them",
                  _add_worker, _run_worker)
+
+
+def _add_check(p: argparse.ArgumentParser) -> None:
+    add_common(p)
+    p.add_argument("--grace-seconds", type=float, default=None,
+                   help="leave stored files younger than this alone (default 900: an upload "
+                        "may still be committing)")
+
+
+def _run_check(args: Any) -> int:
+    from app.store import files as filestore
+
+    settings = settings_from(args)
+    rc = migrate(settings)
+    if rc is not None:
+        return rc
+    grace = filestore.ORPHAN_GRACE_SECONDS if args.grace_seconds is None else args.grace_seconds
+    swept = filestore.sweep_tmp(settings)
+    removed, freed = filestore.remove_orphans(settings, older_than=grace)
+    print(f"rawproof check: removed {removed} stored file(s) no dataset refers to "
+          f"({freed} bytes) and {swept} leftover temporary item(s).")
+    return EXIT_OK
+
+
+CHECK = Command("check", "remove stored files no dataset refers to and leftover temporary files",
+                _add_check, _run_check)

@@ -22,6 +22,7 @@ from pathlib import Path, PurePosixPath
 
 from app.config import Limits
 from app.errors import InputError
+from app.io.formats import family_from_name
 from app.io.options import one_line
 
 _CHUNK = 1 << 20
@@ -41,6 +42,34 @@ def _safe_name(name: str) -> PurePosixPath | None:
     return p
 
 
+#: side files extracted beside the data they describe (JSON sidecars), and their size cap
+_SIDE_SUFFIXES = (".json",)
+_SIDE_MAX_BYTES = 1 << 20
+
+
+def _wanted(zf: zipfile.ZipFile, info: zipfile.ZipInfo, rel: PurePosixPath) -> bool:
+    """Whether a member is of a type the readers open, decided before it is extracted.
+
+    By name (:func:`app.io.formats.family_from_name`), small JSON sidecars, and
+    for names without a known suffix the DICOM magic ``DICM`` at byte 128 of the
+    member's first bytes (NEMA PS3.10, 7.1), read from the archive stream.
+    """
+    name = rel.name
+    if family_from_name(name) is not None:
+        return True
+    if rel.suffix.lower() in _SIDE_SUFFIXES:
+        return info.file_size <= _SIDE_MAX_BYTES
+    if info.file_size < 132:
+        return False
+    try:
+        with zf.open(info) as src:
+            head = src.read(132)
+    except (zipfile.BadZipFile, OSError, EOFError, RuntimeError, zlib.error,
+            NotImplementedError, ValueError):
+        return False
+    return head[128:132] == b"DICM"
+
+
 def extract_zip(archive: Path, target: Path, limits: Limits) -> list[str]:
     """Extract ``archive`` into ``target`` after checking every member.
 
@@ -54,7 +83,8 @@ def extract_zip(archive: Path, target: Path, limits: Limits) -> list[str]:
     Returns
     -------
     list of str
-        Warnings (skipped nested archives and resource forks).
+        Warnings (skipped nested archives, resource forks and members of a type
+        no reader opens: those are never written).
 
     Raises
     ------
@@ -75,6 +105,7 @@ def extract_zip(archive: Path, target: Path, limits: Limits) -> list[str]:
                              f"the limit of {limits.max_zip_members}.", str(archive))
         plan: list[tuple[zipfile.ZipInfo, PurePosixPath]] = []
         total = 0
+        skipped = 0
         for info in infos:
             where = f"{archive.name}:{info.filename}"
             if not info.filename.strip("/\\"):
@@ -115,7 +146,13 @@ def extract_zip(archive: Path, target: Path, limits: Limits) -> list[str]:
                 warnings.append(f"{archive.name}:{info.filename} is a nested archive; it was "
                                 "not extracted (unpack it and analyse it separately).")
                 continue
+            if not _wanted(zf, info, rel):
+                skipped += 1
+                continue
             plan.append((info, rel))
+        if skipped:
+            warnings.append(f"{archive.name}: {skipped} member(s) of a type rawproof does not "
+                            "read were not extracted.")
         written = 0
         for info, rel in plan:
             where = f"{archive.name}:{info.filename}"
@@ -137,6 +174,9 @@ def extract_zip(archive: Path, target: Path, limits: Limits) -> list[str]:
                         out.write(chunk)
             except (zipfile.BadZipFile, OSError, EOFError, RuntimeError, zlib.error,
                     NotImplementedError, ValueError) as exc:
-                raise InputError("unreadable", f"{where} could not be extracted: {one_line(exc)}",
+                # an OSError names the extraction folder: say only what went wrong
+                reason = (exc.strerror or type(exc).__name__) if isinstance(exc, OSError) \
+                    and exc.filename else one_line(exc)
+                raise InputError("unreadable", f"{where} could not be extracted: {reason}",
                                  where) from exc
     return warnings

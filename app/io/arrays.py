@@ -183,6 +183,10 @@ def read_npz(path: Path, opts: ReadOptions) -> list[Volume]:
             if not info.filename.endswith(".npy"):
                 continue
             key = info.filename[:-4]
+            # a member's expanded size counts against the array ceiling before any
+            # byte of it is inflated (its header is at most 64 KiB: NEP 1, version 2)
+            check_array_bytes(max(0, info.file_size - (1 << 16)), opts.limits, str(path),
+                              f"{path.name}[{key}]")
             try:
                 with zf.open(info) as fh:
                     shape, dtype, _f, _o = _read_npy_header(fh, info.file_size)

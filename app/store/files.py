@@ -221,3 +221,45 @@ def assemble_folder(settings: Settings, items: list[tuple[str, str]], dest: Path
             shutil.copyfile(src, target)
         placed.append(target)
     return placed[0] if len(placed) == 1 else dest
+
+
+#: a stored file no database row refers to is removed once it is this old; younger
+#: ones may belong to an upload whose database commit is still on its way
+ORPHAN_GRACE_SECONDS = 15 * 60
+
+
+def remove_orphans(settings: Settings, *, older_than: float = ORPHAN_GRACE_SECONDS,
+                   now: float | None = None) -> tuple[int, int]:
+    """Remove files in the store that no ``files`` row refers to.
+
+    Such a file is left when an upload's bytes reached the store but its
+    database commit failed (a full disk, a killed server). Returns (files
+    removed, bytes freed).
+    """
+    from sqlalchemy import select
+
+    from app.store.db import database
+    from app.store.models import StoredFile
+
+    if not settings.store_dir.is_dir():
+        return 0, 0
+    now = time.time() if now is None else now
+    with database(settings).scope(write=False) as s:
+        known = set(s.scalars(select(StoredFile.sha256)))
+    removed = freed = 0
+    for sub in settings.store_dir.iterdir():
+        if not sub.is_dir() or sub.is_symlink() or not re.fullmatch(r"[0-9a-f]{2}", sub.name):
+            continue
+        for entry in sub.iterdir():
+            if entry.name in known or not re.fullmatch(r"[0-9a-f]{64}", entry.name):
+                continue
+            try:
+                st = entry.lstat()
+                if now - st.st_mtime < older_than:
+                    continue
+                entry.unlink()
+            except OSError:
+                continue
+            removed += 1
+            freed += st.st_size
+    return removed, freed

@@ -10,6 +10,7 @@ worker is stored once.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from datetime import timedelta
 from typing import Any
 
@@ -61,6 +62,30 @@ def claim_job(session: Session, owner: str, *, lease: float) -> Job | None:
             audit(session, "job.claim", dataset_id=job.dataset_id, job_id=job.id, owner=owner,
                   attempt=job.attempts)
             return job
+
+
+def expire_dead_leases(session: Session, host: str, is_alive: Callable[[int], bool]) -> int:
+    """End at once the leases of workers on this host whose process is gone.
+
+    Owner ids are ``host:pid:tag`` (app.worker). A worker killed with SIGKILL
+    stops heartbeating; rather than wait for its lease to run out, a worker on
+    the same host that sees the pid gone makes the job claimable now. Returns
+    how many leases were ended.
+    """
+    rows = session.execute(
+        select(Job.id, Job.lease_owner).where(Job.state == "running",
+                                              Job.lease_owner.like(f"{host}:%"))
+    ).all()
+    dead = []
+    for job_id, owner in rows:
+        parts = (owner or "").split(":")
+        if len(parts) == 3 and parts[1].isdigit() and not is_alive(int(parts[1])):
+            dead.append(job_id)
+    if dead:
+        session.execute(update(Job).where(Job.id.in_(dead), Job.state == "running")
+                        .values(lease_expires_at=utcnow() - timedelta(seconds=1))
+                        .execution_options(synchronize_session=False))
+    return len(dead)
 
 
 def heartbeat(session: Session, job_id: int, owner: str, *, lease: float,
@@ -131,11 +156,16 @@ def fail_job(session: Session, job_id: int, owner: str, error: str, *, permanent
 
 
 def release_job(session: Session, job_id: int, owner: str) -> bool:
-    """Give a claimed job back to the queue (a worker stopping cleanly); the attempt counts."""
+    """Give a claimed job back to the queue (a worker stopping cleanly).
+
+    The attempt is not spent: a restart is not the job's fault, so three clean
+    restarts during one analysis do not fail it.
+    """
     job = _held(session, job_id, owner)
     if job is None:
         return False
     job.state = "queued"
+    job.attempts = max(0, job.attempts - 1)
     job.lease_owner = None
     job.lease_expires_at = None
     audit(session, "job.release", dataset_id=job.dataset_id, job_id=job.id, owner=owner)

@@ -1,7 +1,7 @@
 """Stream a multipart upload to disk: hashed on the way, size limit enforced per chunk.
 
 Each file part goes through a :class:`app.store.files.HashingWriter` into the
-data folder's ``tmp/``. The size limit counts file bytes as they arrive and
+data folder's ``tmp/``. The size limit counts file and field bytes as they arrive and
 stops the request at the first chunk past it; every partial file of the
 request is then removed. Only when the whole request has arrived are the
 files moved to their content addresses.
@@ -20,6 +20,9 @@ from app.store.errors import ValidationError
 from app.store.files import HashingWriter, StoredBlob, UploadTooLargeError
 
 MAX_FIELD_BYTES = 64 * 1024
+#: form-field bytes allowed beyond the upload limit (the same room the body cap of
+#: app.web.limits gives)
+FIELDS_ALLOWANCE = 1024**2
 MAX_FIELDS = 60_000
 DRAIN_LIMIT = 64 * 1024**2
 
@@ -43,7 +46,8 @@ class UploadStream:
     content_type : str
         The request's Content-Type header (carries the boundary).
     max_bytes : int
-        Upper bound on the sum of file sizes in this request.
+        Upper bound on the sum of file sizes in this request; files and form
+        fields together may use :data:`FIELDS_ALLOWANCE` more.
     before_first_file : callable, optional
         Called with the fields seen so far when the first file part starts
         (the CSRF check: a form must put its token before its files).
@@ -61,6 +65,7 @@ class UploadStream:
         self.result = ParsedUpload()
         self._writers: list[tuple[str, HashingWriter]] = []
         self._total = 0
+        self._field_bytes = 0
         self._n_fields = 0
         self._header_field = b""
         self._headers: dict[bytes, bytes] = {}
@@ -124,6 +129,13 @@ class UploadStream:
         if self._writer is not None:
             self._writer.write(data[start:end])
             return
+        self._field_bytes += end - start
+        # fields count against the upload limit too, beyond a small allowance for the form
+        if self._field_bytes > FIELDS_ALLOWANCE and \
+                self._total + self._field_bytes > self.max_bytes + FIELDS_ALLOWANCE:
+            raise UploadTooLargeError(
+                f"The upload's form fields and files are larger than the limit of "
+                f"{self.max_bytes} bytes; nothing was stored.")
         self._field_buf += data[start:end]
         if len(self._field_buf) > MAX_FIELD_BYTES:
             raise ValidationError(f"The form field {self._part_name!r} is too long.")
