@@ -12,6 +12,7 @@ from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse, PlainTextResponse, RedirectResponse
 from fastapi.staticfiles import StaticFiles
+from sqlalchemy.exc import OperationalError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
 import app as app_pkg
@@ -21,6 +22,7 @@ from app.store.db import Database
 from app.store.errors import StoreError
 from app.web import evidence
 from app.web.deps import ForbiddenError, NotSignedInError
+from app.web.limits import RequestLimitsMiddleware, storage_failure
 from app.web.paths import STATIC_DIR
 from app.web.ratelimit import LoginLimiter
 from app.web.routers import admin, api, auth, datasets, exports, registry, reviews, uploads
@@ -91,6 +93,15 @@ def _install_handlers(application: FastAPI) -> None:
     async def _input(request: Request, exc: InputError):
         return _error(request, 400, "Cannot read the input", exc.message, code=exc.code)
 
+    @application.exception_handler(OperationalError)
+    @application.exception_handler(OSError)
+    async def _storage(request: Request, exc: Exception):
+        failure = storage_failure(exc)  # a full disk 507, an unwritable database 503
+        if failure is None:
+            raise exc
+        status, code, message = failure
+        return _error(request, status, "Cannot save now", message, code=code)
+
     @application.exception_handler(RequestValidationError)
     async def _validation(request: Request, exc: RequestValidationError):
         fields = ", ".join(".".join(str(p) for p in e.get("loc", ())) for e in exc.errors())
@@ -115,6 +126,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     application.state.settings = settings
     application.state.database = Database(settings.db_url)
     application.state.login_limiter = LoginLimiter()
+    application.add_middleware(RequestLimitsMiddleware,
+                               max_upload_bytes=settings.max_upload_bytes)
     application.add_middleware(SecurityHeadersMiddleware)
     _install_handlers(application)
 
