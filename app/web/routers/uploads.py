@@ -43,9 +43,10 @@ def _create(database: Database, settings: Settings, user_id: int, fields: dict, 
         ds = service.create_dataset(db, settings, uploader=user, files=files,
                                     **{k: fields.get(k, "") for k in FORM_FIELDS})
         dups = [
-            {"file": d.relative_name, "dataset_id": d.other_dataset_id,
-             "dataset_name": d.other_dataset_name, "as": d.other_relative_name}
-            for d in service.duplicates_of(db, ds)
+            {"file": mine, "dataset_id": d.other_dataset_id,
+             "dataset_name": d.other_dataset_name, "as": theirs,
+             "decision": d.other_decision, "withdrawn": d.other_withdrawn}
+            for d in service.duplicates_of(db, ds) for mine, theirs in d.files
         ]
         return ds.id, dups
 
