@@ -161,18 +161,19 @@ def test_finding_1_zero_npz_and_nii_gz_refused_within_memory_bound(server) -> No
 
 
 def _raw_post(port: int, path: str, headers: dict[str, str], body_bytes: int, *,
-              chunked: bool, chunk: int = 1 << 20) -> tuple[int, bytes, int]:
+              chunked: bool, chunk: int = 1 << 20, ctype: str = "application/json",
+              piece: bytes = b" ") -> tuple[int, bytes, int]:
     """Send a POST with ``body_bytes`` of JSON-ish filler; stop when the server answers.
 
     Returns (status, response head+body, bytes sent).
     """
     s = socket.create_connection(("127.0.0.1", port), timeout=30)
-    lines = [f"POST {path} HTTP/1.1", "Host: 127.0.0.1", "Content-Type: application/json",
+    lines = [f"POST {path} HTTP/1.1", "Host: 127.0.0.1", f"Content-Type: {ctype}",
              *(f"{k}: {v}" for k, v in headers.items())]
     lines.append("Transfer-Encoding: chunked" if chunked else f"Content-Length: {body_bytes}")
     s.sendall(("\r\n".join(lines) + "\r\n\r\n").encode())
     sent = 0
-    data = b" " * chunk
+    data = (piece * (chunk // len(piece) + 1))[:chunk]
     s.setblocking(False)
     answer = b""
     try:
