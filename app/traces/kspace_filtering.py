@@ -62,30 +62,7 @@ SCALES = np.linspace(0.3, 1.0, 15)
 DEFAULT_ESTIMATES: dict[str, Any] = {"window": None, "shape": None}
 
 
-def window_curve(family: str, param: float | None, u: np.ndarray) -> np.ndarray:
-    """Amplitude of a window family at normalised frequencies ``u = k / W`` (0 outside).
-
-    References
-    ----------
-    .. [1] Harris, F. J. Proc. IEEE 66(1):51-83, 1978.
-    """
-    a = np.abs(np.asarray(u, dtype=np.float64))
-    inside = a <= 1.0
-    if family == "hann":
-        w = 0.5 * (1 + np.cos(np.pi * a))
-    elif family == "hamming":
-        w = 0.54 + 0.46 * np.cos(np.pi * a)
-    elif family == "tukey":
-        t = float(param)
-        flat = 1.0 - t
-        w = np.where(a <= flat, 1.0, 0.5 * (1 + np.cos(np.pi * (a - flat) / max(t, 1e-9))))
-    elif family == "fermi":
-        w = 1.0 / (1.0 + np.exp((a - float(param)) / FERMI_WIDTH))
-    elif family == "gaussian":
-        w = np.exp(-(a**2) / (2.0 * float(param) ** 2))
-    else:
-        raise ValueError(f"unknown window family {family!r}")
-    return np.where(inside, w, 0.0)
+window_curve = sp.window_curve
 
 
 CANDIDATES: list[tuple[str, float | None]] = (
@@ -251,11 +228,136 @@ def detect(spec: sp.Spectrum, support: dict[str, zf.AxisSupport]) -> dict[str, A
     return out
 
 
-def trace_from(spec: sp.Spectrum, support: dict[str, zf.AxisSupport]) -> Trace:
-    """Build the ``kspace_filtering`` trace from a spectrum."""
+def trace_from(spec: sp.Spectrum, support: dict[str, zf.AxisSupport],
+               noise: Any = None) -> Trace:
+    """Build the ``kspace_filtering`` trace from a spectrum, its support and the noise.
+
+    With a background noise spectrum on both axes (the support step's joint
+    support-and-window fit), the window is what that fit found; otherwise the
+    profile fit of the image spectrum (:func:`detect`) is the fallback, its
+    p-value floored (a weaker reference).
+    """
+    fits = {ax: getattr(support.get(ax), "noise_fit", None) for ax in ("rows", "cols")}
+    if all(f is not None and f.dispersion <= zf.FAMILY_DISPERSION for f in fits.values()):
+        return _noise_trace(spec, support, fits, noise)
+    return _profile_trace(spec, support)
+
+
+def _noise_trace(spec: sp.Spectrum, support: dict[str, zf.AxisSupport],
+                 fits: dict[str, Any], noise: Any) -> Trace:
+    evidence: dict[str, Any] = {
+        "profiles_db": sp.profile_db_evidence(spec),
+        "method": "background noise spectrum",
+        "fits": {ax: {"window": f.family, "param": f.param, "support_width": f.width,
+                      "k": [int(x) for x in f.k],
+                      "noise_profile_db": sp.round_sig(sp.to_db(f.profile)),
+                      "curve_db": sp.round_sig(sp.to_db(f.model)),
+                      "dispersion": sp.round_sig(f.dispersion),
+                      "window_test": _rounded(f.window),
+                      "family_test": _rounded(f.family_test)}
+                 for ax, f in fits.items()},
+    }
+    rec = min((f.window for f in fits.values()), key=lambda d: d["p_value"])
+    decision = dict(rec)
+    decision["p_value"] = min(1.0, 2.0 * float(rec["p_value"]))
+    decision["false_alarm_rate"] = zf.NOISE_FALSE_ALARM
+    evidence["decision"] = _rounded(decision)
+    called = [f for f in fits.values() if f.window["p_value"] <= zf.NOISE_FALSE_ALARM / 4
+              and f.family != "box"]
+    if not called:
+        summary = ("The background noise spectrum is that of white thermal noise on the "
+                   "acquired support: no apodization window found.")
+        return Trace(TRACE_ID, "absent", float(decision["p_value"]), summary,
+                     {"window": None, "param": None, "shape": None}, evidence)
+    best = min(called, key=lambda f: (not f.family_identified, f.window["p_value"],
+                                      -f.window["value"]))
+    shape, shape_rec = _shape(noise, fits, best)
+    evidence["shape_test"] = _rounded(shape_rec)
+    axes = ", ".join(f.axis for f in called)
+    conf = 1.0 - float(decision["p_value"])
+    if best.family_identified:
+        par = "" if best.param is None else f" (parameter {best.param:g})"
+        window, param = best.family, best.param
+        summary = (f"The background noise spectrum rolls off like a {shape} {window} "
+                   f"window{par} along {axes}: k-space was apodized.")
+    else:
+        window, param = None, None
+        summary = (f"The background noise spectrum rolls off smoothly along {axes}: k-space "
+                   "was apodized (smooth roll-off, family not identified).")
+    evidence["family_identified"] = bool(best.family_identified)
+    evidence["window_label"] = window or "smooth roll-off, family not identified"
+    return Trace(TRACE_ID, "present", conf, summary,
+                 {"window": window, "param": param, "shape": shape}, evidence)
+
+
+def _shape(noise: Any, fits: dict[str, Any], best: Any) -> tuple[str, dict]:
+    """Separable or radial: the 2D noise spectrum against both models of the window.
+
+    The best family and the fitted widths give ``|W|**2`` on the support as an outer
+    product of two 1D windows and as a function of the normalised radius; for
+    magnitude images each is autocorrelated (the intensity's spectrum); each is
+    blurred by the mask spectrum and fitted as ``a E + b`` to the 2D periodogram
+    (block means away from DC) with Gamma (Whittle) deviance; the smaller wins.
+
+    References
+    ----------
+    .. [1] Whittle, J. R. Stat. Soc. B 19:38-63, 1957.
+    .. [2] Isserlis, Biometrika 12:134-139, 1918.
+    """
+    if noise is None or getattr(noise, "psd", None) is None:
+        return "separable", {"statistic": "radial minus separable deviance", "value": None}
+    rows, cols = noise.psd.shape
+    wy, wx = fits["rows"].width, fits["cols"].width
+    fam, par = best.family, best.param
+    sep = np.outer(sp.support_window(rows, wy, fam, par), sp.support_window(cols, wx, fam, par))
+    ky = (np.arange(rows) - rows // 2) / max(wy / 2.0, 1.0)
+    kx = (np.arange(cols) - cols // 2) / max(wx / 2.0, 1.0)
+    r = np.sqrt(ky[:, None] ** 2 + kx[None, :] ** 2)
+    rad = sp.window_curve(fam, par, r)
+    box = np.outer(sp.support_window(rows, wy, "box", None), sp.support_window(cols, wx, "box",
+                                                                                None))
+    rad = rad * box
+    devs = {}
+    ker = noise.mask_kernel
+    kf_ = np.fft.fft2(np.fft.ifftshift(ker / ker.sum())) if ker is not None else 1.0
+    for name, w in (("separable", sep), ("radial", rad)):
+        G = np.fft.fft2(np.fft.ifftshift(w ** 2))
+        F = np.abs(G) ** 2 / (rows * cols) if noise.psd_of == "intensity" else G
+        E = np.fft.fftshift(np.fft.ifft2(F * kf_).real)
+        P, M = _blocks(noise.psd, E, rows, cols)
+        dev, _ = zf._whittle_fit(P, M[None, :], np.full(len(P), 1.0))
+        devs[name] = float(dev[0])
+    shape = "radial" if devs["radial"] < devs["separable"] else "separable"
+    return shape, {"statistic": "radial minus separable deviance (2D noise spectrum)",
+                   "value": devs["radial"] - devs["separable"]}
+
+
+def _blocks(P: np.ndarray, E: np.ndarray, rows: int, cols: int
+            ) -> tuple[np.ndarray, np.ndarray]:
+    """Block means (at most 48 x 48 blocks) of the measured and model 2D spectra, DC
+    region left out."""
+    by, bx = max(1, rows // 48), max(1, cols // 48)
+    r, c = (rows // by) * by, (cols // bx) * bx
+    pm = P[:r, :c].reshape(r // by, by, c // bx, bx).mean(axis=(1, 3))
+    em = E[:r, :c].reshape(r // by, by, c // bx, bx).mean(axis=(1, 3))
+    yy, xx = np.meshgrid((np.arange(r // by) + 0.5) * by - rows / 2,
+                         (np.arange(c // bx) + 0.5) * bx - cols / 2, indexing="ij")
+    away = (np.abs(yy) > rows * zf.NOISE_DC_SHARE) | (np.abs(xx) > cols * zf.NOISE_DC_SHARE)
+    return pm[away], np.maximum(em[away], 0.0)
+
+
+def _rounded(d: dict | None) -> dict | None:
+    if d is None:
+        return None
+    return {k: (sp.round_sig(v) if isinstance(v, float) else v) for k, v in d.items()}
+
+
+def _profile_trace(spec: sp.Spectrum, support: dict[str, zf.AxisSupport]) -> Trace:
+    """The fallback without a background noise spectrum: the image spectrum's profile."""
     fits = detect(spec, support)
     evidence = {
         "profiles_db": sp.profile_db_evidence(spec),
+        "method": "image spectrum profile (no background noise spectrum)",
         "fits": {
             ax: {
                 "window": f.window,
@@ -275,15 +377,18 @@ def trace_from(spec: sp.Spectrum, support: dict[str, zf.AxisSupport]) -> Trace:
     }
     called = [f for f in fits.values() if f.called]
     decision = _decision(called or list(fits.values()))
+    decision["p_value"] = max(float(decision["p_value"]), zf.FALLBACK_MIN_P) if called \
+        else float(decision["p_value"])
     evidence["decision"] = decision
     if called:
         best = min(called, key=lambda f: f.rms_window_db / max(f.rms_plain_db, 1e-9))
         par = "" if best.param is None else f" (parameter {best.param:g})"
         axes = ", ".join(f.axis for f in called)
         summary = (f"The in-band spectrum rolls off like a {best.window} window{par} along "
-                   f"{axes}: k-space was apodized.")
+                   f"{axes}: k-space was apodized (no background noise spectrum to check "
+                   "it against).")
         return Trace(TRACE_ID, "present", 1.0 - decision["p_value"], summary,
-                     {"window": best.window, "param": best.param, "shape": "separable"},
+                     {"window": best.window, "param": best.param, "shape": None},
                      evidence)
     summary = ("The in-band spectrum is a power law reaching a flat noise floor: no "
                "apodization window found.")
@@ -318,7 +423,7 @@ def _decision(fits: list[AxisFit]) -> dict[str, Any]:
 
 @register(TRACE_ID, version="1", order=50, default_estimates=DEFAULT_ESTIMATES)
 def analyse(volume: Volume, *, spectrum: sp.Spectrum,
-            support: dict[str, zf.AxisSupport]) -> Trace:
+            support: dict[str, zf.AxisSupport], noise_reference: Any = None) -> Trace:
     """Measure k-space apodization (see module docstring).
 
     References
@@ -326,4 +431,4 @@ def analyse(volume: Volume, *, spectrum: sp.Spectrum,
     .. [1] Harris, F. J. Proc. IEEE 66(1):51-83, 1978.
     .. [2] Bernstein, Fain and Riederer, J. Magn. Reson. Imaging 14:270-280, 2001.
     """
-    return trace_from(spectrum, support)
+    return trace_from(spectrum, support, noise_reference)

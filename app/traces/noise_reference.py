@@ -21,6 +21,10 @@ What is measured, once per dataset (the analysis plan's ``noise_reference`` step
   images the background holds Rayleigh or non-central chi noise (Gudbjartsson and
   Patz 1995), whose variance is at most that of the noise on the object, so the
   level is a lower bound of the image's white noise level.
+  For magnitude images the noise power spectrum is that of the intensity (the
+  squared magnitude): by the Isserlis (Wick) theorem [4]_ the autocovariance of
+  ``|z|**2`` for circular complex Gaussian ``z`` is ``|R_z|**2``, so its spectrum is
+  the autocorrelation of the complex noise spectrum, exactly.
 * For complex images and k-space: the mean power of the outer, noise-dominated
   bands of the spectrum (the outermost sixteenth per axis and side), the reference
   of the mirrored-band tests of partial Fourier.
@@ -38,6 +42,9 @@ References
 .. [3] Kay, S. M. *Fundamentals of Statistical Signal Processing, vol. II:
    Detection Theory*, Prentice Hall, 1998 (periodogram bins of white Gaussian noise
    are exponential: chi-square with 2 degrees of freedom over 2).
+.. [4] Isserlis, L. "On a formula for the product-moment coefficient of any order of
+   a normal frequency distribution in any number of variables", Biometrika
+   12(1/2):134-139, 1918.
 """
 
 from __future__ import annotations
@@ -47,6 +54,7 @@ from typing import Any
 
 import numpy as np
 import scipy.fft as sfft
+from scipy import ndimage
 
 from app.io.volume import Volume
 from app.traces import spectrum as sp
@@ -58,6 +66,10 @@ BLOCK = 8
 MIN_BLOCKS = 12
 #: the outer bands of the spectrum: this share of each axis, per side
 OUTER_SHARE = 1 / 16
+#: pixels over which the periodogram's data taper rises from the background's edge
+TAPER = 4.0
+#: standard deviation (pixels) of the local mean removed before the periodogram
+HIGHPASS_SIGMA = 1.5
 
 
 @dataclass
@@ -83,7 +95,19 @@ class NoiseReference:
     psd : ndarray or None
         ``(rows, cols)`` background noise power spectrum (centred), in units of the
         white level (white noise gives 1 everywhere); blurred by the mask's own
-        spectrum over a few bins.
+        spectrum (``mask_kernel``). For complex data the spectrum of the values
+        (summed over channels): the acquired k-space noise spectrum, ``|W(k)|**2``
+        on the acquired support. For magnitude and real images the spectrum of the
+        intensity (squared magnitude, summed over channels): by the Isserlis (Wick)
+        theorem its autocorrelation is ``|R_z|**2`` plus a constant, so apart from
+        DC its spectrum is the autocorrelation of ``|W|**2`` on the support.
+    psd_of : {"complex", "intensity"}
+        What ``psd`` is the spectrum of.
+    mask_kernel : ndarray or None
+        ``(rows, cols)`` centred ``|FFT(mask)|**2 / area**2`` averaged over frames:
+        the spectrum a masked periodogram is convolved with.
+    area : float
+        Background pixels summed over the analysed frames.
     psd_frames : int
         Frames (times coils) averaged in ``psd``: each bin's relative variance is
         about ``1 / psd_frames``.
@@ -106,6 +130,10 @@ class NoiseReference:
     outer: dict[str, dict[str, float]] = field(default_factory=dict)
     reason: str | None = None
     notes: list[str] = field(default_factory=list)
+    psd_of: str = "complex"
+    mask_kernel: np.ndarray | None = None
+    area: float = 0.0
+    highpass_sigma: float = 0.0
 
     @property
     def usable(self) -> bool:
@@ -234,7 +262,10 @@ def measure(volume: Volume, spectrum: sp.Spectrum, background: Any, *,
     multi = volume.coil_axis is not None
     variances: list[np.ndarray] = []
     psd = np.zeros((rows, cols))
+    kernel = np.zeros((rows, cols))
+    area = 0.0
     n_psd = 0
+    n_masks = 0
     masks = background.masks
     k = 0
     magnitude_values = value_kind == "magnitude"
@@ -252,12 +283,35 @@ def measure(volume: Volume, spectrum: sp.Spectrum, background: Any, *,
             if magnitude_values and not np.iscomplexobj(x):
                 x = x.astype(np.float64)
             variances.append(block_variances(x, mask))
-            # masked periodogram: the background, its mean removed, over its area
-            xm = x[:, mask]
-            dev = np.where(mask, x - xm.mean(axis=1)[:, None, None], 0)
+            # masked periodogram: the background, its mean removed, over its area; for
+            # real values of the intensity (squared magnitude summed over channels),
+            # whose spectrum is the autocorrelation of the complex noise spectrum
+            y = x if complex_like else (x.astype(np.float64) ** 2).sum(axis=0)[None]
+            # a data taper rising over TAPER pixels from the mask's edge keeps the
+            # mask's own spectrum (the periodogram's leakage) compact (Harris 1978)
+            taper = np.clip(ndimage.distance_transform_edt(mask) / TAPER, 0.0, 1.0)
+            tw = float((taper ** 2).sum())
+            if tw <= 0:
+                continue
+            # the slowly varying level (object leakage, shading) is removed by a local
+            # mean within the mask (normalised convolution with a Gaussian of
+            # HIGHPASS_SIGMA pixels); the spectrum is then multiplied by
+            # (1 - G(k))**2, which the models take into account
+            den = ndimage.gaussian_filter(mask.astype(np.float64), HIGHPASS_SIGMA)
+            loc = np.stack([ndimage.gaussian_filter(np.where(mask, yc, 0).real,
+                                                    HIGHPASS_SIGMA)
+                            + (1j * ndimage.gaussian_filter(np.where(mask, yc, 0).imag,
+                                                            HIGHPASS_SIGMA)
+                               if np.iscomplexobj(yc) else 0)
+                            for yc in y]) / np.maximum(den, 1e-12)
+            dev = (y - loc) * taper
             f = sfft.fft2(dev, workers=1)
-            psd += (f.real ** 2 + f.imag ** 2).sum(axis=0) / mask.sum()
-            n_psd += x.shape[0]
+            psd += (f.real ** 2 + f.imag ** 2).sum(axis=0) / tw
+            fm = sfft.fft2(taper ** 2, workers=1)
+            kernel += (fm.real ** 2 + fm.imag ** 2) / tw ** 2
+            area += tw
+            n_psd += y.shape[0]
+            n_masks += 1
     var = np.concatenate(variances) if variances else np.zeros(0)
     if var.size < MIN_BLOCKS or not np.any(var > 0):
         return none(f"only {var.size} full {BLOCK} x {BLOCK} background blocks "
@@ -268,11 +322,23 @@ def measure(volume: Volume, spectrum: sp.Spectrum, background: Any, *,
         return none("the background is constant (masked or replaced)")
     norm = 1.0 if volume.domain == "kspace" else float(rows * cols)
     floor = norm * pixel_var
-    # the per-pixel variance is averaged over multi-coil sums: psd in white units
-    psd_white = sfft.fftshift(psd / max(1, len(variances))) / pixel_var
+    psd = sfft.fftshift(psd / max(1, n_masks))
+    if complex_like:
+        # the per-pixel variance is a multi-coil sum: psd in white units
+        psd_white = psd / pixel_var
+    else:
+        # intensity: white noise gives a flat spectrum whose mean (Parseval) is the
+        # variance of the intensity; units of that mean away from DC
+        rr, cc = np.meshgrid(np.abs(np.arange(rows) - rows // 2),
+                             np.abs(np.arange(cols) - cols // 2), indexing="ij")
+        away = (rr > rows // 16) | (cc > cols // 16)
+        psd_white = psd / max(float(psd[away].mean()), 1e-300)
     rse = float(np.sqrt(2.0 / dof) * 1.25 / np.sqrt(var.size))
     return NoiseReference("background", value_kind, pixel_var, floor, rse, int(var.size),
-                          psd_white, n_psd, outer, None)
+                          psd_white, n_psd, outer, None,
+                          psd_of="complex" if complex_like else "intensity",
+                          mask_kernel=sfft.fftshift(kernel / max(1, n_masks)),
+                          area=area, highpass_sigma=HIGHPASS_SIGMA)
 
 
 def noise_reference_step(volume: Volume, scope: Any, spectrum: sp.Spectrum,

@@ -519,3 +519,78 @@ def too_small(volume: Volume) -> str | None:
                 f"{MIN_SIDE} x {MIN_SIDE}: too few k-space samples to measure.")
     return None
 
+
+
+# ----- apodization windows ------------------------------------------------------------------
+#: Fermi roll-off width (in half-widths) assumed when only the radius is fitted
+FERMI_WIDTH = 0.05
+
+
+def window_curve(family: str, param: float | None, u: Any) -> np.ndarray:
+    """Amplitude of an apodization window at normalised frequencies ``u = k / W`` (0 outside).
+
+    ``W`` is the half-width of the acquired support; ``|u| <= 1`` is inside it. On the
+    symmetric grid ``u_j = (j - (M - 1) / 2) / ((M - 1) / 2)`` the Harris families equal
+    ``scipy.signal.windows.<family>(M, sym=True)``. Families: ``box`` (no window),
+    ``hann``, ``hamming``, ``blackman`` (Harris 1978), ``tukey`` (taper fraction
+    ``param``), ``fermi`` (``1 / (1 + exp((|u| - param) / FERMI_WIDTH))``, radius
+    ``param``) and ``gaussian`` (standard deviation ``param`` half-widths).
+
+    References
+    ----------
+    .. [1] Harris, F. J. "On the use of windows for harmonic analysis with the discrete
+       Fourier transform", Proc. IEEE 66(1):51-83, 1978.
+    """
+    a = np.abs(np.asarray(u, dtype=np.float64))
+    inside = a <= 1.0 + 1e-12
+    ac = np.minimum(a, 1.0)
+    if family == "box":
+        w = np.ones_like(a)
+    elif family == "hann":
+        w = 0.5 * (1 + np.cos(np.pi * ac))
+    elif family == "hamming":
+        w = 0.54 + 0.46 * np.cos(np.pi * ac)
+    elif family == "blackman":
+        w = 0.42 + 0.5 * np.cos(np.pi * ac) + 0.08 * np.cos(2 * np.pi * ac)
+    elif family == "tukey":
+        t = float(param)
+        flat = 1.0 - t
+        w = np.where(ac <= flat, 1.0,
+                     0.5 * (1 + np.cos(np.pi * (ac - flat) / max(t, 1e-9))))
+    elif family == "fermi":
+        w = 1.0 / (1.0 + np.exp((a - float(param)) / FERMI_WIDTH))
+    elif family == "gaussian":
+        w = np.exp(-(a**2) / (2.0 * float(param) ** 2))
+    else:
+        raise ValueError(f"unknown window family {family!r}")
+    return np.where(inside, w, 0.0)
+
+
+#: window families and parameters the support-and-window fit tries (``box``: none)
+WINDOW_CANDIDATES: tuple[tuple[str, float | None], ...] = (
+    (("box", None), ("hann", None), ("hamming", None), ("blackman", None))
+    + tuple(("tukey", t) for t in (0.2, 0.35, 0.5, 0.65, 0.8))
+    + tuple(("fermi", r) for r in (0.6, 0.7, 0.75, 0.8, 0.85, 0.9))
+    + tuple(("gaussian", s) for s in (0.25, 0.3, 0.35, 0.4, 0.5, 0.6, 0.75))
+)
+
+
+def support_window(n: int, width: int, family: str, param: float | None) -> np.ndarray:
+    """A window of ``width`` samples placed on a centred axis of ``n`` samples (0 outside).
+
+    The acquired samples are ``n // 2 - width // 2`` ... ``+ width - 1`` (centred
+    order), where zero-filling puts them; the window is the symmetric one over them.
+
+    References
+    ----------
+    .. [1] Harris, Proc. IEEE 66(1):51-83, 1978.
+    """
+    out = np.zeros(n)
+    width = int(min(max(width, 1), n))
+    if width == 1:
+        u = np.zeros(1)
+    else:
+        u = (np.arange(width) - (width - 1) / 2.0) / ((width - 1) / 2.0)
+    start = n // 2 - width // 2
+    out[start:start + width] = window_curve(family, param, u)
+    return out

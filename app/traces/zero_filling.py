@@ -97,8 +97,10 @@ def trace_from(spec: sp.Spectrum, axes: dict[str, AxisSupport]) -> Trace:
         parts = ", ".join(
             f"{a.axis} {a.padding_factor:.2f}x (support {a.support_fraction:.3f})" for a in found
         )
-        how = ("holds no thermal noise" if found[0].method == "noise_floor"
-               else "is empty or only echo")
+        how = {"noise_floor": "holds no thermal noise",
+               "noise_spectrum": "holds no thermal noise (the background noise spectrum "
+                                 "is that of a narrower support)"}.get(
+            found[0].method, "is empty or only echo")
         summary = f"k-space {how} outside a central region: zero-filled by {parts}."
         return Trace(TRACE_ID, "present", _confidence(decision), summary, estimates, evidence)
     p = decision.get("p_value") if decision else None
