@@ -55,9 +55,11 @@ def test_same_files_are_stored_once_and_the_page_says_where(server, uma) -> None
     b = uma.upload_files("Second copy", [("renamed.npy", scan)])
     assert _blobs(server) == before  # nothing new on disk
     assert b["duplicates"] == [{"file": "renamed.npy", "dataset_id": a["dataset_id"],
-                                "dataset_name": "First copy", "as": "scan.npy"}]
+                                "dataset_name": "First copy", "as": "scan.npy",
+                                "decision": None, "withdrawn": False}]
     page = uma.get(b["url"]).text
-    assert "already in the registry" in page and "First copy" in page
+    assert "Other datasets hold some of these files" in page and "First copy" in page
+    assert "not decided yet" in page
     assert f'href="/datasets/{a["dataset_id"]}"' in page
     assert "Second copy" in uma.get(a["url"]).text  # and the other way round
 

@@ -268,12 +268,13 @@ def api_schema(request: Request) -> dict[str, Any]:
     return cached
 
 
-@router.get("/openapi.json", include_in_schema=False)
+@router.get("/openapi.json")
 def openapi_json(request: Request):
+    """This OpenAPI document."""
     return JSONResponse(api_schema(request))
 
 
-@router.get("/docs", include_in_schema=False)
+@router.get("/docs")
 def api_docs(request: Request):
     """A readable page of the API, generated from the OpenAPI document."""
     schema = api_schema(request)
