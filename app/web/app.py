@@ -21,7 +21,7 @@ from app.errors import InputError
 from app.store.db import Database
 from app.store.errors import StoreError
 from app.web import evidence
-from app.web.deps import ForbiddenError, NotSignedInError
+from app.web.deps import MAX_ROW_ID, ForbiddenError, NotSignedInError, out_of_range_fields
 from app.web.limits import RequestLimitsMiddleware, storage_failure
 from app.web.paths import STATIC_DIR
 from app.web.ratelimit import LoginLimiter
@@ -101,6 +101,13 @@ def _install_handlers(application: FastAPI) -> None:
             raise exc
         status, code, message = failure
         return _error(request, status, "Cannot save now", message, code=code)
+
+    @application.exception_handler(OverflowError)
+    async def _overflow(request: Request, exc: OverflowError):
+        # An id past 2^63 - 1 reaches the database driver, which cannot hold it.
+        fields = ", ".join(out_of_range_fields(request)) or "a number in the request"
+        return _error(request, 422, "Bad request", f"These fields are out of range: {fields} "
+                      f"(ids are at most {MAX_ROW_ID}).", code="invalid_request")
 
     @application.exception_handler(RequestValidationError)
     async def _validation(request: Request, exc: RequestValidationError):

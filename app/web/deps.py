@@ -154,5 +154,39 @@ async def csrf_protect(request: Request, user: CurrentUser) -> None:
 AdminUser = Annotated[User, Depends(require_admin)]
 
 
+#: The largest row id a database keeps (SQLite and PostgreSQL: signed 64-bit).
+MAX_ROW_ID = 2**63 - 1
+
+
+def parse_row_id(raw: str | None, field: str, *, empty: int | None = None) -> int | None:
+    """A row id typed into a form field: digits, at most :data:`MAX_ROW_ID`.
+
+    Empty gives ``empty``; anything else raises the store's ``ValidationError``
+    (422) naming ``field``.
+    """
+    from app.store.errors import ValidationError
+
+    raw = (raw or "").strip()
+    if not raw:
+        return empty
+    if not (raw.isascii() and raw.isdigit()) or len(raw) > 19 or int(raw) > MAX_ROW_ID:
+        raise ValidationError(f"{field} must be a whole number from 0 to {MAX_ROW_ID}.")
+    return int(raw)
+
+
+def out_of_range_fields(request: Request) -> list[str]:
+    """The path parameters of ``request`` that are numbers too large for a row id.
+
+    The database driver refuses such a number with ``OverflowError`` when the
+    route looks it up; the error handler names these fields in its 422.
+    """
+    out = []
+    for key, value in request.path_params.items():
+        text = str(value)
+        if text.isascii() and text.isdigit() and int(text) > MAX_ROW_ID:
+            out.append(f"path.{key}")
+    return out
+
+
 def client_address(request: Request) -> str:
     return request.client.host if request.client else "unknown"

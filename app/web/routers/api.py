@@ -171,7 +171,8 @@ class DecisionIn(BaseModel):
     outcome: Outcome
     rationale: str = Field(min_length=1, description="the caveats a paper must report")
     expected_current_id: int | None = Field(
-        None, description="the current decision's id you saw (0 for none); a different "
+        None, ge=0, le=2**63 - 1,
+        description="the current decision's id you saw (0 for none); a different "
                           "current decision answers 409 decision_conflict")
 
 

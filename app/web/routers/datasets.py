@@ -123,7 +123,8 @@ def dataset_page(request: Request, dataset_id: int, db: DbSession, user: Current
         request, "dataset.html", dataset_context(db, settings, dataset_id, user)))
 
 
-@router.get("/datasets/{dataset_id}/reports/{report_id}")
+# ":int" so that ".../reports/7.json" reaches old_report_json below (issue 21, finding 9).
+@router.get("/datasets/{dataset_id}/reports/{report_id:int}")
 def old_report_page(request: Request, dataset_id: int, report_id: int, db: DbSession,
                     user: CurrentUser, settings: SettingsDep):
     return render(request, "dataset.html",

@@ -19,8 +19,10 @@ router = APIRouter(tags=["reviews"],
 
 
 def _expected(raw: str) -> int | None:
-    raw = (raw or "").strip()
-    return int(raw) if raw.isdigit() else 0
+    """The form's ``expected_current_id`` (empty: 0, no decision seen); else a row id."""
+    from app.web.deps import parse_row_id
+
+    return parse_row_id(raw, "expected_current_id", empty=0)
 
 
 def _reader_after_failed_write(request: Request, db: Session):  # noqa: ANN202
