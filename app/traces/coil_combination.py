@@ -43,7 +43,7 @@ from scipy import stats
 
 from app.io.volume import Volume
 from app.traces import noise_laws as nl
-from app.traces.background import Background, constant_share, lattice_step
+from app.traces.background import Background, constant_share, image_blocks, lattice_step
 from app.traces.base import Trace, inconclusive, register
 from app.traces.value_kind import ValueKind
 
@@ -62,22 +62,6 @@ NOISE_FREE = 1e-5
 MIN_SIGMA_STEPS = 1.0
 _DEFAULTS = {"noise_model": "unknown", "effective_channels": None, "sigma": None,
              "combination": "unknown"}
-
-
-def _decision(res: dict | None) -> dict[str, Any]:
-    """The decision record: effective channel count against the split at L = 1.5.
-
-    ``p_value`` is the Kolmogorov-Smirnov p-value of the Rayleigh law (one
-    channel, the null of no root-sum-of-squares) on the tested samples.
-    """
-    if res is None:
-        return {"statistic": "effective_channels", "value": None, "threshold": L_SPLIT,
-                "false_alarm_rate": None, "p_value": None}
-    L = res["channels"]
-    ray = res["fits"].get("rayleigh")
-    return {"statistic": "effective_channels", "value": _r4(L) if np.isfinite(L) else None,
-            "threshold": L_SPLIT, "false_alarm_rate": None,
-            "p_value": _r4(ray.p_value) if ray is not None else None}
 
 
 def _r4(x: Any) -> Any:
@@ -231,24 +215,118 @@ def _evidence_from_fits(x: np.ndarray, res: dict, lo: float, hi: float,
     }
 
 
+FALSE_ALARM = 1e-3
+#: above this many effective channels the estimate is not a plausible coil count
+MAX_PLAUSIBLE_CHANNELS = 32.0
+TEST_FRAMES = 4
+#: the tile test's own p-value must stay below this for a linear call on magnitudes
+TILES_ALSO = 0.05
+#: whole background tiles needed for a linear call
+MIN_TILES = 16
+
+
+def _decision_record(statistic: str, p: float | None, value: float | None = None,
+                     threshold: float | None = None) -> dict[str, Any]:
+    """``-log10`` of a p-value against ``-log10`` of the false-alarm rate (larger = present)."""
+    if value is None and p is not None:
+        value = -np.log10(max(p, 1e-300))
+    return {"statistic": statistic, "value": _r4(value),
+            "threshold": _r4(threshold if threshold is not None else -np.log10(FALSE_ALARM)),
+            "false_alarm_rate": FALSE_ALARM, "p_value": _r4(p)}
+
+
+def _confidence(status: str, p: float | None) -> float:
+    """The analyser's own probability that its status is right, from the decision's p-value.
+
+    Present: ``1 - p`` (the null of no combination rejected at ``p``). Absent:
+    ``1 - alpha / p`` (how far the data stand from the rejection region, in
+    units of the false-alarm rate ``alpha``); a calibration map fitted on
+    development data replaces either when one exists.
+    """
+    if p is None or not np.isfinite(p):
+        return 0.5
+    if status == "present":
+        return float(np.clip(1.0 - p, 0.5, 0.999))
+    return float(np.clip(1.0 - FALSE_ALARM / max(p, 1e-300), 0.5, 0.999))
+
+
+def _test_frames(volume: Volume, bg: Background, channel: int | None = None
+                 ) -> tuple[list[np.ndarray], list[np.ndarray]]:
+    """Up to :data:`TEST_FRAMES` analysed frames (image domain) with their background masks."""
+    idx = np.asarray(bg.frames)[:TEST_FRAMES]
+    frames: list[np.ndarray] = []
+    for _, block in image_blocks(volume, idx):
+        for b in np.asarray(block):
+            frames.append(b[channel if channel is not None else 0] if b.ndim == 3 else b)
+    masks = [bg.masks[i] for i in range(min(len(frames), len(bg.masks)))]
+    return frames[:len(masks)], masks
+
+
+def linear_combination_test(frames: list[np.ndarray], masks: list[np.ndarray], *,
+                            law: str) -> dict[str, Any]:
+    """Test the background for a sigma that varies across the image (linear coil weights).
+
+    Two views of one effect, combined by Fisher's method: the analysis of
+    variance of the tiles' noise power (:func:`noise_laws.noise_evenness`) and
+    the deficit of the moment ratio below the one-sigma law
+    (:func:`noise_laws.moment_ratio_z`, one-sided).
+
+    Returns
+    -------
+    dict
+        ``p_value`` (of one common sigma), ``p_evenness``, ``p_ratio``,
+        ``ratio_z``, ``kappa``, ``spread``, ``blocks``.
+
+    References
+    ----------
+    Walsh et al., MRM 2000; Roemer et al., MRM 1990; Pruessmann et al., MRM 1999
+    (the noise of such combinations varies with the weights); R. A. Fisher,
+    *Statistical Methods for Research Workers*, 1925 (combined p-values;
+    scipy.stats.combine_pvalues).
+    """
+    ev = nl.noise_evenness(frames, masks)
+    kappa = ev.kappa if ev is not None else 1.0
+    x = np.concatenate([np.abs(np.asarray(f))[np.asarray(m, bool)].ravel()
+                        for f, m in zip(frames, masks, strict=True)]) if frames else np.zeros(0)
+    z = nl.moment_ratio_z(x, law=law, kappa=kappa)
+    p_ratio = float(stats.norm.cdf(z)) if np.isfinite(z) else 1.0
+    p_even = ev.p_value if ev is not None else 1.0
+    p = float(stats.combine_pvalues([max(p_ratio, 1e-300), max(p_even, 1e-300)],
+                                    method="fisher").pvalue)
+    return {"p_value": p, "p_evenness": p_even, "p_ratio": p_ratio,
+            "ratio_z": z, "kappa": kappa, "spread": ev.spread if ev is not None else None,
+            "blocks": ev.blocks if ev is not None else 0}
+
+
+def _linear_evidence(lin: dict[str, Any]) -> dict[str, Any]:
+    return {"noise_evenness": {"p_value": _r4(lin["p_value"]), "p_tiles": _r4(lin["p_evenness"]),
+                               "p_moment_ratio": _r4(lin["p_ratio"]),
+                               "moment_ratio_z": _r4(lin["ratio_z"]),
+                               "tile_power_spread_90_10": _r4(lin["spread"]),
+                               "spatial_correlation_kappa": _r4(lin["kappa"]),
+                               "tiles": int(lin["blocks"])}}
+
+
 def _gaussian_trace(volume: Volume, bg: Background, kind: str) -> Trace:
     """Complex or signed real data: Gaussian noise, no root-sum-of-squares.
 
     Such values cannot come out of a root-sum-of-squares (which is real and
-    non-negative), so the trace is absent whatever the air shows. The Gaussian
-    law is fitted to the background components (of the inverse FFT, for
-    k-space) where there is a measurable background; a masked, noise-free or
-    missing background leaves the law ``unknown`` with the reason said.
+    non-negative). Separate channels delivered side by side are ``absent``
+    (nothing was combined). One complex or signed real image may still be a
+    linear combination of channels (adaptive, Roemer or SENSE weights, and the
+    phase-corrected real part of one): its noise sigma then varies across the
+    image, which :func:`linear_combination_test` measures; ``present`` with
+    ``combination: linear`` when it does, ``absent`` with ``single`` (one
+    channel's statistics) when the noise is even.
     """
     what = ("complex values" if kind == "complex" else "real values of both signs")
-    coils = f" from {volume.n_coils} separate receive channels" if volume.n_coils > 1 else ""
+    separate = volume.n_coils > 1
+    coils = f" from {volume.n_coils} separate receive channels" if separate else ""
     evidence: dict[str, Any] = {"chosen": "gaussian", "effective_channels": None,
                                 "sigma": None, "n_background": int(bg.n_background),
-                                "n_coils": volume.n_coils}
+                                "n_coils": volume.n_coils, "separate_channels": separate}
     estimates = {"noise_model": "gaussian", "effective_channels": None, "sigma": None,
                  "combination": "unknown"}
-    evidence["separate_channels"] = volume.n_coils > 1
-    evidence["decision"] = _decision(None)
     comps = np.zeros(0)
     if bg.usable and bg.values is not None:
         v = np.asarray(bg.values).ravel()
@@ -264,9 +342,14 @@ def _gaussian_trace(volume: Volume, bg: Background, kind: str) -> Trace:
         why = "the background is below 1e-5 of the signal peak (noise-free data)"
     if why is not None:
         estimates["noise_model"] = evidence["chosen"] = "unknown"
-        summary = (f"The data hold {what}{coils}, which no root-sum-of-squares combination "
-                   f"produces; the noise law was not measured: {why}.")
-        return Trace(TRACE_ID, "absent", 0.8, summary, estimates, evidence)
+        evidence["decision"] = _decision_record("minus_log10_p_one_sigma", None)
+        if separate:
+            summary = (f"The data hold {what}{coils}: nothing was combined; the noise law was "
+                       f"not measured: {why}.")
+            return Trace(TRACE_ID, "absent", 0.5, summary, estimates, evidence)
+        return inconclusive(TRACE_ID, f"One image of {what}: whether it combines several "
+                            f"channels with linear weights is not measurable: {why}.",
+                            n_background=int(bg.n_background))
     tested = _subsample(comps, KS_SAMPLES)
     fit = nl.fit_gaussian(tested, zero_mean=kind == "complex")
     lim = float(np.percentile(np.abs(comps), 99.5)) or 1.0
@@ -281,21 +364,45 @@ def _gaussian_trace(volume: Volume, bg: Background, kind: str) -> Trace:
         "statistics": {"gaussian": {"statistic": _r4(fit.statistic),
                                     "p_value": _r4(fit.p_value)}},
     })
+    law = "rayleigh" if kind == "complex" else "halfnormal"
+    frames, masks = _test_frames(volume, bg)
+    lin = linear_combination_test(frames, masks, law=law)
+    evidence.update(_linear_evidence(lin))
+    p = lin["p_value"]
+    evidence["decision"] = _decision_record("minus_log10_p_one_sigma", p)
     where = " of the inverse FFT" if volume.domain == "kspace" else ""
-    sig = f"; background{where} sigma {fit.sigma:.4g} (KS distance {fit.statistic:.3f})"
-    summary = (f"The data hold {what}{coils}: their noise is Gaussian, and no root-sum-of-"
-               f"squares combination took place{sig}.")
-    return Trace(TRACE_ID, "absent", 0.9, summary, estimates, evidence)
+    sig = f"background{where} sigma {fit.sigma:.4g} (KS distance {fit.statistic:.3f})"
+    if separate:
+        summary = (f"The data hold {what}{coils}: nothing was combined (each channel is "
+                   f"delivered on its own; {sig}).")
+        return Trace(TRACE_ID, "absent", _confidence("absent", p), summary, estimates, evidence)
+    if p < FALSE_ALARM:
+        estimates["combination"] = "linear"
+        summary = (f"One image of {what} whose Gaussian noise varies across the image (tile "
+                   f"noise power spread {lin['spread'] or float('nan'):.2f}, p = {p:.2g} for one "
+                   f"common sigma; {sig}): a linear combination of receive channels (adaptive, "
+                   "Roemer or SENSE weights), not one channel.")
+        return Trace(TRACE_ID, "present", _confidence("present", p), summary, estimates,
+                     evidence)
+    estimates["combination"] = "single"
+    summary = (f"One image of {what} with even Gaussian noise (p = {p:.2g} for one common "
+               f"sigma; {sig}): the statistics of one channel, no combination visible.")
+    return Trace(TRACE_ID, "absent", _confidence("absent", p), summary, estimates, evidence)
 
 
-@register(TRACE_ID, version="1", order=40, default_estimates=dict(_DEFAULTS))
+@register(TRACE_ID, version="2", order=40, default_estimates=dict(_DEFAULTS))
 def analyse(volume: Volume, *, background: Background,
             value_kind: ValueKind) -> Trace:
-    """Fit the background noise laws and say whether channels were combined.
+    """Fit the background noise laws and name the combination of the channels.
+
+    ``rss`` (central chi law, ``L >= 1.5``), ``linear`` (one image whose noise
+    sigma varies across it: adaptive, Roemer or SENSE weights), ``single`` (one
+    channel's even noise: absent), or separate channels delivered (absent).
 
     References
     ----------
-    Gudbjartsson and Patz, MRM 1995; Constantinides, Atalar and McVeigh, MRM 1997.
+    Gudbjartsson and Patz, MRM 1995; Constantinides, Atalar and McVeigh, MRM 1997;
+    Walsh et al., MRM 2000; Roemer et al., MRM 1990; Pruessmann et al., MRM 1999.
     """
     bg = background
     kind = value_kind.domain
@@ -345,43 +452,88 @@ def analyse(volume: Volume, *, background: Background,
                      "lower_tail_ratio": _r4(res["lower_tail_ratio"])})
     chosen = res["chosen"]
     L = res["channels"]
-    combination = {"noncentral_chi": "rss",
-                   "rayleigh": "unknown" if per_channel else "single"}.get(chosen, "unknown")
+    frames, masks = _test_frames(volume, bg)
+    lin = linear_combination_test([np.abs(f) for f in frames], masks, law="rayleigh")
+    evidence.update(_linear_evidence(lin))
+    kappa = lin["kappa"]
+    z_ratio = nl.moment_ratio_z(x, law="rayleigh", kappa=kappa)
+    # evidence of more than one channel: the moment ratio above Rayleigh's pi / 4
+    p_rss = float(stats.norm.sf(z_ratio)) if np.isfinite(z_ratio) else 1.0
+    tail = res["lower_tail_ratio"]
+    offset = np.isfinite(tail) and tail > TAIL_RATIO
+    if per_channel:
+        estimates = {"noise_model": chosen, "sigma": _r4(res["sigma"]),
+                     "effective_channels": None, "combination": "unknown"}
+        evidence["decision"] = _decision_record("minus_log10_p_several_channels", p_rss)
+        summary = (f"The data hold {volume.n_coils} separate magnitude channels, not combined "
+                   f"(background law of one channel: {chosen}).")
+        return Trace(TRACE_ID, "absent", _confidence("absent", p_rss), summary, estimates,
+                     evidence)
+    if chosen == "noncentral_chi":
+        eff = evidence["effective_channels"]
+        capped = eff is not None and eff > MAX_PLAUSIBLE_CHANNELS
+        if capped:
+            # an even, uninterpolated noise floor is needed for a channel count
+            evidence["effective_channels"] = None
+            evidence["channels_withheld"] = (f"{eff:.0f} is above a plausible coil count "
+                                             "(interpolated or filtered noise?)")
+        estimates = {"noise_model": chosen, "sigma": _r4(res["sigma"]),
+                     "effective_channels": evidence["effective_channels"],
+                     "combination": "rss"}
+        evidence["decision"] = _decision_record("minus_log10_p_one_channel", p_rss)
+        stat = res["fits"][chosen]
+        robust = ("; from the lower quantiles, the upper tail carries stray signal"
+                  if res["estimator"] == "quantiles" else "")
+        ch = (f"effective L = {L:.1f} channels" if evidence["effective_channels"] is not None
+              else f"channel count withheld: {evidence['channels_withheld']}")
+        summary = (f"The background follows a central chi law with 2L = {2 * L:.1f} degrees "
+                   f"of freedom ({ch}, sigma {res['sigma']:.4g}; KS distance "
+                   f"{stat.statistic:.3f}{robust}): a root-sum-of-squares combination of "
+                   "several receive channels.")
+        return Trace(TRACE_ID, "present", _confidence("present", p_rss), summary, estimates,
+                     evidence)
+    p_lin = lin["p_value"]
+    # the moment ratio alone also drops when tissue reaches into the air: the tiles must
+    # show the varying sigma too
+    if not offset and L < L_SPLIT and p_lin < FALSE_ALARM and lin["p_evenness"] < TILES_ALSO \
+            and lin["blocks"] >= MIN_TILES:
+        estimates = {"noise_model": "rayleigh", "sigma": None, "effective_channels": None,
+                     "combination": "linear"}
+        evidence["decision"] = _decision_record("minus_log10_p_one_sigma", p_lin)
+        summary = (f"The background is Rayleigh-like (moment estimate L = {L:.2f}) but its "
+                   f"sigma varies across the image (tile noise power spread "
+                   f"{lin['spread'] or float('nan'):.2f}, p = {p_lin:.2g} for one common sigma): "
+                   "magnitude of a linear combination of receive channels (adaptive, Roemer or "
+                   "SENSE weights).")
+        return Trace(TRACE_ID, "present", _confidence("present", p_lin), summary, estimates,
+                     evidence)
+    combination = "single" if chosen == "rayleigh" else "unknown"
     estimates = {"noise_model": chosen, "sigma": _r4(res["sigma"]),
                  "effective_channels": evidence["effective_channels"],
                  "combination": combination}
-    evidence["decision"] = _decision(res)
-    stat = res["fits"].get(chosen)
     if chosen == "unknown":
-        tail = res["lower_tail_ratio"]
-        if np.isfinite(tail) and tail > TAIL_RATIO:
+        evidence["decision"] = _decision_record("minus_log10_p_one_sigma", p_lin)
+        if offset:
             why = (f"the air holds {tail:.1f} times too few values near zero for a pure noise "
                    "floor (an offset added to the background?)")
         else:
             best = min(res["fits"].values(), key=lambda f: f.statistic)
             why = (f"best: {best.law}, KS distance {best.statistic:.3f} > {KS_ACCEPT}; "
                    f"estimated L = {L:.2g}")
-        return Trace(TRACE_ID, "inconclusive", 0.2,
+        return Trace(TRACE_ID, "inconclusive", 0.0,
                      f"The background fits no candidate noise law ({why}).", estimates,
                      evidence)
-    conf = float(np.clip(1.0 - stat.statistic / (2 * KS_ACCEPT), 0.3, 0.97))
-    robust = ("; from the lower quantiles, the upper tail carries stray signal"
-              if res["estimator"] == "quantiles" else "")
-    if chosen == "noncentral_chi":
-        conf *= float(np.clip((L - 1.0) / 1.0, 0.3, 1.0))
-        summary = (f"The background follows a central chi law with 2L = {2 * L:.1f} degrees "
-                   f"of freedom (effective L = {L:.1f} channels, sigma {res['sigma']:.4g}; KS "
-                   f"distance {stat.statistic:.3f}{robust}): a root-sum-of-squares "
-                   "combination of several receive channels.")
-        return Trace(TRACE_ID, "present", conf, summary, estimates, evidence)
+    p_any = min(1.0, 2.0 * min(p_lin, p_rss))
+    evidence["decision"] = _decision_record("minus_log10_p_one_sigma", p_any)
+    stat = res["fits"][chosen]
     if chosen == "rayleigh":
-        conf *= float(np.clip((L_SPLIT + 0.5 - L) / 1.0, 0.3, 1.0))
-        what = (f"{volume.n_coils} separate magnitude channels, not combined" if per_channel
-                else "the magnitude of one channel (or an equivalent single-channel "
-                "combination), not a root-sum-of-squares of several")
-        summary = (f"The background follows the Rayleigh law (sigma {res['sigma']:.4g}; moment "
-                   f"estimate L = {L:.2f}; KS distance {stat.statistic:.3f}): {what}.")
-        return Trace(TRACE_ID, "absent", conf, summary, estimates, evidence)
+        summary = (f"The background follows the Rayleigh law with one sigma throughout (sigma "
+                   f"{res['sigma']:.4g}; moment estimate L = {L:.2f}; KS distance "
+                   f"{stat.statistic:.3f}; p = {p_lin:.2g} for one common sigma): the magnitude "
+                   "of one channel (or an equivalent single-channel combination), not a "
+                   "root-sum-of-squares of several.")
+        return Trace(TRACE_ID, "absent", _confidence("absent", p_any), summary, estimates,
+                     evidence)
     summary = (f"The background is Gaussian around {res['m1']:.4g} (sigma {res['sigma']:.4g}; "
                f"KS distance {stat.statistic:.3f}): an offset background, no chi law.")
-    return Trace(TRACE_ID, "absent", 0.5 * conf, summary, estimates, evidence)
+    return Trace(TRACE_ID, "absent", _confidence("absent", p_any), summary, estimates, evidence)
