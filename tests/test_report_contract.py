@@ -222,13 +222,17 @@ def test_group_merge_keeps_most_severe_and_verdict_rule():
 
 
 def test_cli_report_is_contract_valid(tmp_path, capsys):
-    """`rawproof analyse PATH --json` prints one contract-valid object; -o writes the same."""
+    """`rawproof analyse PATH --json` prints one contract-valid object; with -o the same
+    object goes to the file only (stdout stays free for the caller's own output)."""
     p = tmp_path / "scan.npy"
     np.save(p, np.random.default_rng(0).random((3, 32, 32)).astype(np.float32))
+    assert main(["analyse", str(p), "--json", "--quiet"]) == 0
+    printed = json.loads(capsys.readouterr().out)
     out = tmp_path / "r.json"
     assert main(["analyse", str(p), "--json", "-o", str(out), "--quiet"]) == 0
-    printed = json.loads(capsys.readouterr().out)
-    assert printed == json.loads(out.read_text())
+    assert capsys.readouterr().out.strip() == ""
+    written = json.loads(out.read_text())
+    assert written["traces"] == printed["traces"] and written["verdict"] == printed["verdict"]
     _validate(printed)
     assert printed["input"]["shape"] == [3, 32, 32]
     assert printed["input"]["format"] == "npy"

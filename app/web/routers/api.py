@@ -4,7 +4,7 @@ Sign in with a per-user API token (``Authorization: Bearer rp_...``, made with
 ``rawproof users token NAME`` or on the Account page) or a browser session;
 cookie-authenticated calls that change data need the ``X-CSRF-Token`` header.
 Every error answers ``{"error": {"code": "<snake_case>", "message": "..."}}``
-(:data:`app.web.app.ERROR_CODES`). ``/api/docs`` is a readable page of the
+(:data:`app.web.errors.ERROR_CODES`). ``/api/docs`` is a readable page of the
 same schema, for signed-in members. The README has a worked example.
 """
 
@@ -415,7 +415,7 @@ def post_comment(dataset_id: int, payload: CommentIn, db: DbSession, user: Curre
 def post_decision(dataset_id: int, payload: DecisionIn, db: DbSession, user: CurrentUser):
     """Record a decision (not on your own dataset); 409 ``decision_conflict`` when the
     current decision is not ``expected_current_id`` (its body holds ``current``)."""
-    from app.web.app import error_body
+    from app.web.errors import error_body
 
     ds = service.get_dataset(db, dataset_id)
     try:

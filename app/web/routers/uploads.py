@@ -115,7 +115,7 @@ def _storage_error(exc: OSError) -> ValidationError:
 def _error(request: Request, settings: Settings, status: int, exc: StoreError,
            fields: dict[str, list[str]]):
     if _wants_json(request):
-        from app.web.app import error_body, store_error_code
+        from app.web.errors import error_body, store_error_code
 
         code = {413: "upload_too_large", 507: "storage_full"}.get(status, store_error_code(exc))
         return JSONResponse(error_body(code, exc.message), status_code=status)
