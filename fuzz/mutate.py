@@ -223,7 +223,8 @@ def zip_hostile(data: bytes, rng: random.Random) -> bytes:
     if kind == "backslash":
         return _zip_bytes([("dir\\sub\\a.npy", npy)], zipfile.ZIP_DEFLATED)
     if kind == "clash":
-        return _zip_bytes([("a", b"file"), ("a/b.npy", npy)], zipfile.ZIP_DEFLATED)
+        # a member and a folder of the same name, both of a type the readers open
+        return _zip_bytes([("a.npy", npy), ("a.npy/b.npy", npy)], zipfile.ZIP_DEFLATED)
     if kind == "many":
         return _zip_bytes([(f"f{i}.txt", b"") for i in range(rng.randint(30, 80))],
                           zipfile.ZIP_STORED)
