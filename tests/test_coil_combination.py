@@ -286,3 +286,52 @@ def test_rayleigh_chi_split_pinned_at_two_and_three_channels(channels: int) -> N
     expected = "rayleigh" if channels == 1 else "noncentral_chi"
     assert res["chosen"] == expected
     assert abs(res["channels"] - channels) < 0.25
+
+
+def _varying_sigma_image(rng: np.random.Generator, *, complex_out: bool) -> np.ndarray:
+    """A disc object on air whose noise sigma rises 1 -> 2.2 across the rows (linear weights)."""
+    ny = nx = 128
+    y, x = np.mgrid[:ny, :nx]
+    obj = 40.0 * (((y - 64) ** 2 + (x - 64) ** 2) < 30 ** 2)
+    sigma = np.linspace(1.0, 2.2, ny)[:, None]
+    z = obj + sigma * (rng.standard_normal((ny, nx)) + 1j * rng.standard_normal((ny, nx)))
+    return z if complex_out else np.abs(z)
+
+
+@pytest.mark.parametrize("complex_out", [True, False])
+def test_linear_weights_are_named_linear(complex_out: bool) -> None:
+    """One image with a noise sigma varying across it: present, combination linear.
+
+    Truth: the noise of a linear (Roemer, adaptive or SENSE) combination varies
+    with the weights (Roemer et al. 1990; Walsh et al. 2000; Pruessmann et al.
+    1999); built here as sigma rising from 1 to 2.2 across the rows.
+    """
+    rng = np.random.default_rng(21)
+    img = _varying_sigma_image(rng, complex_out=complex_out)
+    t = _run(np.stack([img, _varying_sigma_image(rng, complex_out=complex_out)])
+             .astype(np.complex64 if complex_out else np.float32))
+    assert t.status == "present" and t.estimates["combination"] == "linear"
+    d = t.evidence["decision"]
+    assert d["value"] > d["threshold"] and 0.5 < t.confidence < 1.0
+
+
+def test_even_single_channel_is_single_and_separate_channels_absent() -> None:
+    """Even Rayleigh noise: absent, single; 4 complex channels side by side: absent.
+
+    Truth: one channel's magnitude with one sigma (Gudbjartsson and Patz 1995);
+    separate channels were not combined at all. Confidences come from the
+    decision p-value, so they are below 1 and differ between the two.
+    """
+    rng = np.random.default_rng(22)
+    ny = nx = 128
+    y, x = np.mgrid[:ny, :nx]
+    obj = 40.0 * (((y - 64) ** 2 + (x - 64) ** 2) < 30 ** 2)
+    mag = np.stack([np.abs(obj + rng.standard_normal((ny, nx))
+                           + 1j * rng.standard_normal((ny, nx))) for _ in range(2)])
+    t = _run(mag.astype(np.float32))
+    assert t.status == "absent" and t.estimates["combination"] == "single"
+    coils = obj[None] * 0.5 + rng.standard_normal((4, ny, nx)) + 1j * rng.standard_normal(
+        (4, ny, nx))
+    t2 = _run(coils[None].astype(np.complex64), coil_axis=1)
+    assert t2.status == "absent" and t2.evidence["separate_channels"]
+    assert t.confidence < 1.0

@@ -226,3 +226,38 @@ def test_magnitude_images_are_not_measurable() -> None:
     mag = np.abs(_object(64, 64) * 10 + rng.standard_normal((64, 64)))
     t = trace_of("kspace_synthesis", Volume.from_array(mag[None].astype(np.float32)))
     assert t.status == "inconclusive" and "phase is gone" in t.summary
+
+
+@pytest.mark.parametrize("r", [2, 3, 4])
+def test_period_from_residual_levels(r: int) -> None:
+    """Acquired lines predicted less well than filled ones: the period is R.
+
+    Truth: 128 lines; a measured centre of 24 lines at residual ~chi2/dof about
+    1; outside, one line in R measured-but-predictable (residual 0.05) and the
+    others filled (1e-6), as a GRAPPA-filled set leaves (Griswold et al. 2002).
+    The filled share outside the centre is (R - 1) / R.
+    """
+    rng = np.random.default_rng(30 + r)
+    n = 128
+    res = np.where(np.arange(n) % r == 1, 0.05, 1e-6) * np.exp(0.1 * rng.standard_normal(n))
+    res[52:76] = stats.chi2.rvs(500, size=24, random_state=rng) / 500
+    per = ks.period_from_levels(res, np.ones(n, bool))
+    assert per is not None and per.period == r and per.measured_class == 1
+    assert per.p_value < 1e-3
+    assert per.centre[52:76].all() and per.centre.sum() == 24
+
+
+def test_raw_coil_images_are_measured() -> None:
+    """Raw coil images (whose FFT has DC at index 0) are not called computed.
+
+    Truth: raw 4-coil k-space with correlated noise and a kept 2x readout,
+    delivered as coil images (inverse FFT, DC in the array corner after the
+    analyser's forward FFT). The noise reference must come from the outer
+    k-space, not from the DC corner (common practice, no source).
+    """
+    rng = np.random.default_rng(31)
+    k = _raw(rng, ny=64, nx=64, c=4, oversample=True)
+    imgs = _ifft2c(k)
+    t = trace_of("kspace_synthesis", Volume.from_array(imgs[None].astype(np.complex64),
+                                                       coil_axis=1))
+    assert t.status == "absent"
