@@ -78,8 +78,9 @@ def test_phase_corrected_real_is_real_signed() -> None:
     Truth: the air holds N(0, sigma) noise, so about 50% of it is negative
     (Gudbjartsson and Patz 1995); asserted within 0.4-0.6. The FFT of any real
     image is Hermitian-symmetric (common practice, no source), so the trace is
-    present (processing) and its decision statistic, the Hermitian share of the
-    spectral energy, is exactly 1.
+    present (processing) and its decision statistic, the Hermitian-to-anti-
+    Hermitian energy in decades, reaches the float32 rounding floor:
+    ``-log10(eps^2 / 12)`` with eps = 2^-23 (numpy.finfo), within 0.01.
     """
     rng = np.random.default_rng(5)
     obj = synth.phantom((96, 96), seed=rng, smooth_phase=False).real
@@ -87,7 +88,8 @@ def test_phase_corrected_real_is_real_signed() -> None:
     t = _run(real)
     assert t.estimates["domain"] == "real_signed" and t.status == "present"
     assert t.origin == "processing"
-    assert t.evidence["decision"]["value"] == 1.0
+    eps = float(np.finfo(np.float32).eps)
+    assert abs(t.evidence["decision"]["value"] + np.log10(eps * eps / 12)) < 0.01
     assert 0.4 <= t.evidence["negative_background_fraction"] <= 0.6
     assert "real-valued" in t.summary
     t2 = _run(real.astype(np.complex64))
@@ -168,3 +170,27 @@ def test_all_nan_is_inconclusive() -> None:
     """No finite value: inconclusive, not magnitude (common practice, no source)."""
     t = _run(np.full((2, 32, 32), np.nan, np.float32))
     assert t.status == "inconclusive" and t.estimates["domain"] is None
+
+
+def test_decision_statistic_is_graded_by_storage_precision() -> None:
+    """The Hermitian-to-anti-Hermitian statistic follows the rounding energy of the stored values.
+
+    Truth: a real, non-negative image stored as uint8 (values about 100) and
+    as uint16 (values about 25600). Its imaginary part is zero, so the
+    statistic is ``-log10`` of the rounding energy fraction ``(1 / 12) /
+    mean(x^2)`` (W. F. Sheppard 1898, uniform rounding over a step; recalled
+    from memory), within 0.01 decade; the uint16 image stands about
+    ``2 log10(256)`` = 4.8 decades higher, and both confidences differ.
+    """
+    rng = np.random.default_rng(12)
+    base = 100.0 + 10.0 * rng.standard_normal((2, 64, 64))
+    img8 = np.clip(np.round(base), 0, 255).astype(np.uint8)
+    img16 = np.clip(np.round(base * 256), 0, 65535).astype(np.uint16)
+    t8, t16 = _run(img8), _run(img16)
+    expect8 = -np.log10((1 / 12) / np.mean(img8.astype(float) ** 2))
+    assert t8.status == t16.status == "present"
+    assert abs(t8.evidence["decision"]["value"] - expect8) < 0.01
+    gap = t16.evidence["decision"]["value"] - t8.evidence["decision"]["value"]
+    assert abs(gap - 2 * np.log10(256)) < 0.05
+    assert t8.confidence != t16.confidence
+    assert t8.evidence["decision"]["value"] > t8.evidence["decision"]["threshold"]
