@@ -29,7 +29,7 @@ from tests.server_harness import running_server, zero_filled_npy
 
 LIMIT = 20_000_000
 BOUND = 2 * LIMIT + 300 * 1024**2
-PASSWORD = "correct horse battery staple"
+PASSWORD = "quiet lattice of kelp at noon"
 
 pytestmark = pytest.mark.server
 

@@ -9,12 +9,27 @@ from sqlalchemy import select, update
 from sqlalchemy.orm import Session
 
 from app.store.audit import audit
-from app.store.errors import NotFoundError, ValidationError
+from app.store.errors import NotFoundError, PermissionDeniedError, ValidationError
 from app.store.models import ApiToken, User, WebSession, utcnow
-from app.store.passwords import hash_password, new_token, token_digest, verify_password
+from app.store.passwords import (
+    MIN_LENGTH,
+    hash_password,
+    new_token,
+    password_problem,
+    token_digest,
+    verify_password,
+)
 
 NAME_RE = re.compile(r"[a-z0-9][a-z0-9._-]{1,63}")
-MIN_PASSWORD = 8
+MIN_PASSWORD = MIN_LENGTH
+
+
+def check_password(password: str, user_name: str) -> None:
+    """Raise ``ValidationError`` unless ``password`` meets the policy
+    (:func:`app.store.passwords.password_problem`, NIST SP 800-63B 5.1.1.2)."""
+    problem = password_problem(password or "", user_name=user_name)
+    if problem is not None:
+        raise ValidationError(problem)
 
 
 def create_user(
@@ -33,7 +48,8 @@ def create_user(
     name : str
         Sign-in name: 2-64 characters of lower-case letters, digits, ``.``, ``_``, ``-``.
     password : str
-        At least 8 characters; stored as an argon2id hash.
+        Meets :func:`check_password` (at least 12 characters, not common, not
+        the name); stored as an argon2id hash.
 
     Raises
     ------
@@ -46,8 +62,7 @@ def create_user(
             "A user name is 2-64 characters: lower-case letters, digits, '.', '_' or '-', "
             "starting with a letter or digit."
         )
-    if len(password or "") < MIN_PASSWORD:
-        raise ValidationError(f"A password needs at least {MIN_PASSWORD} characters.")
+    check_password(password, name)
     if session.scalar(select(User.id).where(User.name == name)) is not None:
         raise ValidationError(f"There is already an account named {name!r}.")
     user = User(
@@ -80,12 +95,25 @@ def authenticate(session: Session, name: str, password: str) -> User | None:
 
 
 def set_password(session: Session, user: User, password: str, *, actor: User | None) -> None:
-    if len(password or "") < MIN_PASSWORD:
-        raise ValidationError(f"A password needs at least {MIN_PASSWORD} characters.")
+    """A new password; every session of the account ends.
+
+    A reset by someone else (an admin, or ``actor=None`` from the command line)
+    also revokes the account's API tokens: whoever held the old password may
+    have made one. The member's own change keeps their tokens (the account page
+    lists them for revoking).
+    """
+    check_password(password, user.name)
     user.password_hash = hash_password(password)
     session.execute(update(WebSession).where(WebSession.user_id == user.id).values(
         expires_at=utcnow()))
-    audit(session, "user.password", actor=actor, user=user.name)
+    revoked = 0
+    if actor is None or actor.id != user.id:
+        revoked = session.execute(
+            update(ApiToken)
+            .where(ApiToken.user_id == user.id, ApiToken.revoked_at.is_(None))
+            .values(revoked_at=utcnow())
+        ).rowcount
+    audit(session, "user.password", actor=actor, user=user.name, tokens_revoked=revoked)
 
 
 def set_active(session: Session, user: User, active: bool, *, actor: User | None) -> None:
@@ -139,14 +167,36 @@ def end_web_session(session: Session, token: str | None) -> None:
         session.query(WebSession).filter(WebSession.id == token_digest(token)).delete()
 
 
-def create_api_token(session: Session, user: User, label: str = "") -> tuple[ApiToken, str]:
-    """A new API token for ``user``; the plain token is returned once and never stored."""
+def create_api_token(session: Session, user: User, label: str = "", *,
+                     may_create_tokens: bool = False, via: ApiToken | None = None
+                     ) -> tuple[ApiToken, str]:
+    """A new API token for ``user``; the plain token is returned once and never stored.
+
+    Parameters
+    ----------
+    may_create_tokens : bool
+        Whether the new token may itself make tokens (off unless asked for).
+    via : ApiToken, optional
+        The token the request was signed in with, when it was one: it must
+        have ``may_create_tokens``, and its offspring cannot have more than it.
+
+    Raises
+    ------
+    PermissionDeniedError
+        When ``via`` may not make tokens.
+    """
+    if via is not None and not via.may_create_tokens:
+        raise PermissionDeniedError(
+            "This API token may not make new tokens; sign in with the password, or use a "
+            "token made with that permission.")
     token = "rp_" + new_token()
     row = ApiToken(user_id=user.id, label=(label or "").strip()[:200],
-                   token_hash=token_digest(token), prefix=token[:10])
+                   token_hash=token_digest(token), prefix=token[:10],
+                   may_create_tokens=bool(may_create_tokens))
     session.add(row)
     session.flush()
-    audit(session, "token.create", actor=user, token_id=row.id, label=row.label)
+    audit(session, "token.create", actor=user, token_id=row.id, label=row.label,
+          may_create_tokens=row.may_create_tokens, via_token=via.id if via else None)
     return row, token
 
 
@@ -160,11 +210,17 @@ def revoke_api_token(session: Session, user: User, token_id: int, *, actor: User
     return row
 
 
-def user_for_api_token(session: Session, token: str | None) -> User | None:
-    """The active user owning an unrevoked token, or None."""
+def api_token_row(session: Session, token: str | None) -> ApiToken | None:
+    """The unrevoked token row of an active user for a plain token, or None."""
     if not token:
         return None
     row = session.scalar(select(ApiToken).where(ApiToken.token_hash == token_digest(token)))
     if row is None or row.revoked_at is not None or not row.user.is_active:
         return None
-    return row.user
+    return row
+
+
+def user_for_api_token(session: Session, token: str | None) -> User | None:
+    """The active user owning an unrevoked token, or None."""
+    row = api_token_row(session, token)
+    return row.user if row is not None else None

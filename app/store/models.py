@@ -87,6 +87,8 @@ class ApiToken(Base):
     created_at: Mapped[datetime] = mapped_column(DateTime, default=utcnow)
     last_used_at: Mapped[datetime | None] = mapped_column(DateTime, nullable=True)
     revoked_at: Mapped[datetime | None] = mapped_column(DateTime, nullable=True)
+    #: whether a request signed in with this token may make new tokens (migration 0003)
+    may_create_tokens: Mapped[bool] = mapped_column(Boolean, default=False)
 
     user: Mapped[User] = relationship()
 

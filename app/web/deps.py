@@ -15,6 +15,7 @@ from sqlalchemy.orm import Session
 
 from app.config import Settings
 from app.store import service
+from app.store.accounts import api_token_row
 from app.store.db import Database
 from app.store.models import User
 from app.web.security import (
@@ -91,10 +92,12 @@ def current_user(request: Request, db: DbSession) -> User:
         return cached
     token = _bearer(request)
     if token is not None:
-        user = service.user_for_api_token(db, token)
-        if user is None:
+        row = api_token_row(db, token)
+        if row is None:
             raise NotSignedInError("That API token is unknown or revoked.")
+        user = row.user
         request.state.auth = "token"
+        request.state.api_token = row  # its scope is checked where tokens are made
     else:
         sess = service.web_session_for(db, request.cookies.get(SESSION_COOKIE))
         if sess is None:

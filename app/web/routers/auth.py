@@ -10,6 +10,7 @@ from fastapi.responses import RedirectResponse
 from sqlalchemy import select
 
 from app.store import service
+from app.store.accounts import check_password
 from app.store.errors import StoreError
 from app.store.models import ApiToken, User
 from app.web.deps import (
@@ -65,9 +66,8 @@ def login(
     limiter = request.app.state.login_limiter
     address = client_address(request)
     name = name.strip()
-    try:
-        with request.app.state.database.scope(write=False) as reader:
-            limiter.check(reader, address, name)
+    try:  # counted and recorded in one transaction, so parallel guesses cannot race it
+        limiter.reserve(request.app.state.database, address, name)
     except RateLimited as exc:
         service.audit(db, "login.limited", name=name[:64], address=address)
         db.commit()
@@ -126,8 +126,12 @@ def account(request: Request, db: DbSession, user: CurrentUser):
 
 @router.post("/account/tokens", dependencies=[Depends(csrf_protect)])
 def create_token(request: Request, db: DbSession, user: CurrentUser,
-                 label: Annotated[str, Form()] = ""):
-    _row, token = service.create_api_token(db, user, label)
+                 label: Annotated[str, Form()] = "",
+                 may_create_tokens: Annotated[str, Form()] = ""):
+    # A request signed in with a token needs that token's permission (issue 21, 10).
+    _row, token = service.create_api_token(
+        db, user, label, may_create_tokens=may_create_tokens == "on",
+        via=getattr(request.state, "api_token", None))
     db.commit()
     return _account_page(request, db, user, new_token=token)
 
@@ -148,6 +152,23 @@ def change_password(
     current: Annotated[str, Form()] = "",
     new: Annotated[str, Form()] = "",
 ):
+    try:  # the new password's policy first: it needs no secret, so spends no attempt
+        check_password(new, user.name)
+    except StoreError as exc:
+        return _account_page(request, db, user, error=exc.message, status_code=400)
+    # The current-password check counts against the account's sign-in budget; the
+    # request's transaction ends first, as the reservation takes the write lock itself.
+    db.commit()
+    try:
+        request.app.state.login_limiter.reserve(request.app.state.database,
+                                                client_address(request), user.name,
+                                                kind="password")
+    except RateLimited as exc:
+        service.audit(db, "password.limited", name=user.name, address=client_address(request))
+        db.commit()
+        resp = _account_page(request, db, user, error=str(exc), status_code=429)
+        resp.headers["retry-after"] = str(exc.retry_after)
+        return resp
     if service.authenticate(db, user.name, current) is None:
         return _account_page(request, db, user, error="The current password is not right.",
                              status_code=400)
