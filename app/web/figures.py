@@ -640,6 +640,66 @@ FIGURES: dict[str, FigureSpec] = {
 }
 
 
+# ---------------------------------------------------------------- k-space synthesis
+def build_kspace_synthesis(report: dict[str, Any]) -> Figure | None:
+    """Per-line prediction residual over the thermal noise, or the local noise-variance map.
+
+    References
+    ----------
+    Griswold M.A. et al. (2002), "Generalized autocalibrating partially parallel
+    acquisitions (GRAPPA)", Magn. Reson. Med. 47:1202-1210; Pruessmann K.P. et al.
+    (1999), "SENSE: sensitivity encoding for fast MRI", Magn. Reson. Med. 42:952-962.
+    """
+    ev = _ev(report, "kspace_synthesis")
+    res = _num_list(ev.get("line_residual_over_noise"))
+    vmap = _num_grid(ev.get("noise_variance_map"))
+    if res is not None:
+        fig = _new_figure(6.4, 3.4)
+        ax = fig.add_subplot()
+        lines = np.arange(len(res))
+        shown = np.where(np.isfinite(res) & (res > 0), res, np.nan)
+        ax.semilogy(lines, np.maximum(shown, 1e-12), color=BLUE, marker="o", markersize=2.5,
+                    linewidth=0.8, label="measured or computed line")
+        filled = [i for i in (ev.get("filled_lines") or []) if isinstance(i, int)
+                  and 0 <= i < len(res)]
+        if filled:
+            ax.semilogy(filled, np.maximum(shown[filled], 1e-12), linestyle="none",
+                        marker="s", markersize=4, color=ORANGE, label="called filled")
+        thr = _num(ev.get("filled_residual_threshold"))
+        if thr is not None:
+            ax.axhline(thr, color=INK, linestyle="--", linewidth=1.0,
+                       label=f"filled below {thr:g} of the noise")
+        ax.axhline(1.0, color=GREEN, linestyle=":", linewidth=1.0, label="thermal noise")
+        axis = ev.get("phase_encode_axis") or "phase-encode"
+        ax.set_xlabel(f"{axis} line (k-space index, centred)", fontsize=9)
+        ax.set_ylabel("prediction residual / noise variance", fontsize=9)
+        ax.set_title("Each line predicted from its neighbours", fontsize=10)
+        _style(ax)
+        ax.legend(fontsize=8, framealpha=0.9)
+        return fig
+    if vmap is None:
+        return None
+    fig = _new_figure(4.8, 4.2)
+    ax = fig.add_subplot()
+    im = ax.imshow(vmap, cmap=MAP, origin="upper", interpolation="nearest")
+    fig.colorbar(im, ax=ax, label="local noise variance / median")
+    ax.set_xlabel("column tile (16 pixels each)", fontsize=9)
+    ax.set_ylabel("row tile (16 pixels each)", fontsize=9)
+    ax.set_title("Local noise variance (g-factor pattern)", fontsize=10)
+    return fig
+
+
+FIGURES["kspace_synthesis"] = FigureSpec(
+    "kspace_synthesis", "Measured or computed k-space", ("kspace_synthesis",),
+    "Measured lines keep their own thermal noise: none is predicted from its neighbours "
+    "below the noise level, and a measured image's noise variance is even; lines far below "
+    "the noise, in a period, were filled by a parallel-imaging reconstruction, and a "
+    "patterned noise variance marks SENSE unfolding.",
+    build_kspace_synthesis,
+    lambda r: (_num_list(_ev(r, "kspace_synthesis").get("line_residual_over_noise")) is not None
+               or _num_grid(_ev(r, "kspace_synthesis").get("noise_variance_map")) is not None))
+
+
 def available(report: dict[str, Any] | None) -> list[FigureSpec]:
     """The figures this report's evidence can draw, in page order."""
     if not report:
