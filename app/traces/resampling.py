@@ -32,6 +32,17 @@ Kirchner's variant:
    apart, as Popescu and Farid note). Peaks off both axes (rotation, oblique
    reslicing) call resampling with factor 1 on the axes.
 
+A second test (:mod:`app.traces.neighbour_correlation`) reads the periodic
+correlation between neighbouring samples of the normalised noise residual, which
+interpolation creates and spatially varying weights do not. It calls resampling
+on its own; a p-map peak counts only where that spectrum is raised beyond its own
+null (``CONFIRM_ALPHA``), or when every p-map peak lies off the axes (rotation).
+A p-map periodicity it does not confirm (weights interpolated on a coarse grid,
+as adaptive coil combination computes them) makes the call ``inconclusive``. The
+same test along the slice axis of a volume (``(slices, cols)`` sections) reports
+through-plane reslicing as a ``slices`` factor. k-space input is tested on the
+image its inverse FFT makes.
+
 Zero-filling is interpolation too (by sinc, shift-invariant): it leaves no periodic
 predictor residual, and is left to the ``zero_filling`` trace. It does leave a weak
 line of raised p-map spectrum at twice its band edge (the residual of a band-limited
