@@ -209,8 +209,27 @@ def _prepare(settings: Settings, job: Job, session) -> _Active:  # noqa: ANN001
     ds = session.get(Dataset, job.dataset_id)
     workdir = Path(tempfile.mkdtemp(prefix=f"job-{job.id}-", dir=filestore.tmp_dir(settings)))
     items = [(df.relative_name, df.file.sha256) for df in ds.files]
-    target = filestore.assemble_folder(settings, items, workdir / "files")
+    try:
+        target = filestore.assemble_folder(settings, items, workdir / "files")
+    except BaseException:
+        shutil.rmtree(workdir, ignore_errors=True)
+        raise
     return _Active(job.id, job.dataset_id, workdir, str(target))
+
+
+def _without_paths(settings: Settings, exc: BaseException) -> str:
+    """An error's message with no absolute path of this machine in it.
+
+    Members see job errors: an ``OSError`` is told by its reason and the file's
+    name inside the dataset; other messages lose the data folder's path.
+    """
+    if isinstance(exc, OSError) and exc.strerror:
+        name = Path(str(exc.filename)).name if exc.filename else ""
+        return f"{exc.strerror}" + (f" ({name})" if name else "")
+    text = str(exc)
+    for folder in {str(settings.data_dir), str(Path(settings.data_dir).resolve())}:
+        text = text.replace(folder + "/", "").replace(folder, ".")
+    return text
 
 
 def _wait_for_gate(stop: threading.Event) -> bool:
@@ -333,12 +352,12 @@ class Worker:
             except OSError as exc:
                 if exc.errno in _STORAGE_ERRNOS:
                     raise  # the claim is rolled back: a full disk spends no attempt
-                jobq.fail_job(s, job.id, self.owner, f"Cannot assemble the files: {exc}",
-                              permanent=False)
+                jobq.fail_job(s, job.id, self.owner, "Cannot assemble the files: "
+                              + _without_paths(self.settings, exc), permanent=False)
                 return None
             except Exception as exc:  # noqa: BLE001 - a missing blob fails this job only
-                jobq.fail_job(s, job.id, self.owner, f"Cannot assemble the files: {exc}",
-                              permanent=False)
+                jobq.fail_job(s, job.id, self.owner, "Cannot assemble the files: "
+                              + _without_paths(self.settings, exc), permanent=False)
                 return None
         log.info("claimed job %s (dataset %s)", act.job_id, act.dataset_id)
         return act

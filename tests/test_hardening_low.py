@@ -238,3 +238,29 @@ def test_finding_11_weak_passwords_are_refused(server, password) -> None:
                      check=False)
     assert res.returncode == 2 and "password" in res.stderr.lower()
     assert "Traceback" not in res.stderr
+
+
+def test_finding_15_one_letter_folders_and_long_non_ascii_names(server) -> None:
+    """Finding 15: ``A/IM1.npy`` beside ``B/IM1.npy`` was refused as a name clash (the
+    one-letter folder taken for a drive letter), and a 200-character non-ASCII name
+    was accepted, then failed three times with "file name too long" showing the data
+    folder's absolute path. POSIX (IEEE Std 1003.1) has no drive letters; NAME_MAX
+    (255 bytes on Linux, counted in bytes) bounds one path component."""
+    ada = server.login("ada", PASSWORD)
+    info = ada.upload_files("two one-letter folders", [("A/IM1.npy", zero_filled_npy(31)),
+                                                       ("B/IM1.npy", zero_filled_npy(32))])
+    ds = info["dataset_id"]
+    names = {f["name"] for f in ada.get(f"/api/datasets/{ds}").json()["files"]}
+    assert names == {"A/IM1.npy", "B/IM1.npy"}
+    long_a = "é" * 200 + ".npy"  # 404 bytes of UTF-8
+    long_b = "é" * 199 + "è.npy"
+    info = ada.upload_files("long names", [(long_a, zero_filled_npy(33)),
+                                           (long_b, zero_filled_npy(34))])
+    ds2 = info["dataset_id"]
+    stored = [f["name"] for f in ada.get(f"/api/datasets/{ds2}").json()["files"]]
+    assert len(set(stored)) == 2  # shortened with a hash of the whole: still distinct
+    assert all(len(n.encode()) <= 255 and n.endswith(".npy") for n in stored), stored
+    for d in (ds, ds2):
+        job = ada.wait_for_job(d)
+        assert job["state"] == "done", job
+        assert str(server.data_dir) not in ada.get(f"/datasets/{d}").text

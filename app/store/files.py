@@ -94,21 +94,45 @@ def previews_file(settings: Settings, report_id: int) -> Path:
     return settings.data_dir / "reports" / str(int(report_id)) / "previews.npz"
 
 
+#: longest part of a stored relative name, in UTF-8 bytes (file systems count
+#: NAME_MAX = 255 bytes, and a 200-character non-ASCII name can take 800)
+PART_BYTES = 180
+_DRIVE = re.compile(r"[A-Za-z]:")
+_SUFFIX = re.compile(r"(\.[A-Za-z0-9]{1,8}){1,2}$")
+
+
+def _shorten(part: str) -> str:
+    """``part`` if it fits :data:`PART_BYTES`, else its start, a hash of the whole and
+    its suffix (``.nii.gz`` kept, so that the reader is still chosen by it)."""
+    raw = part.encode("utf-8")
+    if len(raw) <= PART_BYTES:
+        return part
+    m = _SUFFIX.search(part)
+    suffix = m.group(0) if m else ""
+    digest = hashlib.sha256(raw).hexdigest()[:16]
+    room = PART_BYTES - len(suffix.encode()) - len(digest) - 1
+    head = part[: len(part) - len(suffix)].encode("utf-8")[:room].decode("utf-8", "ignore")
+    return f"{head}-{digest}{suffix}"
+
+
 def sanitise_relative_name(name: str) -> str:
     """Turn a browser- or archive-supplied relative name into a safe relative path.
 
-    Backslashes become slashes; empty, ``.`` and ``..`` parts, drive letters,
-    control and reserved characters are dropped; each part is at most 200
-    characters. The result is never absolute and never empty.
+    Backslashes become slashes; empty, ``.`` and ``..`` parts, a drive letter
+    (``C:``, with its colon, in front), control and reserved characters are
+    dropped; a one-letter folder (``A/IM1.npy``) is a folder. A part longer than
+    :data:`PART_BYTES` bytes of UTF-8 is shortened with a hash of the whole, so
+    different long names stay different. The result is never absolute and
+    never empty.
     """
     name = unicodedata.normalize("NFC", str(name)).replace("\\", "/")
     parts = []
-    for part in name.split("/"):
-        part = _UNSAFE_CHARS.sub("", part).strip().strip(".") if part not in (".", "..") else ""
-        if re.fullmatch(r"[A-Za-z]:?", part) and not parts and "/" in name:
-            part = ""  # a Windows drive letter in front
+    for i, raw in enumerate(name.split("/")):
+        if i == 0 and _DRIVE.fullmatch(raw.strip()):
+            continue  # "C:/scans/a.dcm" or "C:\\scans\\a.dcm"
+        part = _UNSAFE_CHARS.sub("", raw).strip().strip(".") if raw not in (".", "..") else ""
         if part:
-            parts.append(part[:200])
+            parts.append(_shorten(part))
     return str(PurePosixPath(*parts)) if parts else "file"
 
 
