@@ -492,11 +492,12 @@ def analyse(volume: Volume, *, background: Background,
                    "several receive channels.")
         return Trace(TRACE_ID, "present", _confidence("present", p_rss), summary, estimates,
                      evidence)
-    p_lin = lin["p_value"]
     # the moment ratio alone also drops when tissue reaches into the air: the tiles must
-    # show the varying sigma too
-    if not offset and L < L_SPLIT and p_lin < FALSE_ALARM and lin["p_evenness"] < TILES_ALSO \
-            and lin["blocks"] >= MIN_TILES:
+    # show the varying sigma too (p below TILES_ALSO, on at least MIN_TILES tiles). The
+    # decision p-value states that rule: below the false-alarm rate exactly when both hold.
+    p_tiles = lin["p_evenness"] if lin["blocks"] >= MIN_TILES else 1.0
+    p_lin = max(lin["p_value"], p_tiles * FALSE_ALARM / TILES_ALSO)
+    if not offset and L < L_SPLIT and p_lin < FALSE_ALARM:
         estimates = {"noise_model": "rayleigh", "sigma": None, "effective_channels": None,
                      "combination": "linear"}
         evidence["decision"] = _decision_record("minus_log10_p_one_sigma", p_lin)
@@ -523,7 +524,8 @@ def analyse(volume: Volume, *, background: Background,
         return Trace(TRACE_ID, "inconclusive", 0.0,
                      f"The background fits no candidate noise law ({why}).", estimates,
                      evidence)
-    p_any = min(1.0, 2.0 * min(p_lin, p_rss))
+    # an absent call rests on the linear test (the chi law with L >= 1.5 was not chosen)
+    p_any = p_lin
     evidence["decision"] = _decision_record("minus_log10_p_one_sigma", p_any)
     stat = res["fits"][chosen]
     if chosen == "rayleigh":
