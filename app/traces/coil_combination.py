@@ -227,7 +227,13 @@ MIN_TILES = 16
 
 def _decision_record(statistic: str, p: float | None, value: float | None = None,
                      threshold: float | None = None) -> dict[str, Any]:
-    """``-log10`` of a p-value against ``-log10`` of the false-alarm rate (larger = present)."""
+    """``-log10`` of a p-value against ``-log10`` of the false-alarm rate (larger = present).
+
+    One statistic for every branch: the p-value of the null "no combination"
+    (one channel, one sigma) against the alternative the branch tests (the moment
+    ratio above Rayleigh's for root-sum-of-squares, a varying sigma for linear
+    weights).
+    """
     if value is None and p is not None:
         value = -np.log10(max(p, 1e-300))
     return {"statistic": statistic, "value": _r4(value),
@@ -342,7 +348,7 @@ def _gaussian_trace(volume: Volume, bg: Background, kind: str) -> Trace:
         why = "the background is below 1e-5 of the signal peak (noise-free data)"
     if why is not None:
         estimates["noise_model"] = evidence["chosen"] = "unknown"
-        evidence["decision"] = _decision_record("minus_log10_p_one_sigma", None)
+        evidence["decision"] = _decision_record("minus_log10_p_no_combination", None)
         if separate:
             summary = (f"The data hold {what}{coils}: nothing was combined; the noise law was "
                        f"not measured: {why}.")
@@ -369,7 +375,7 @@ def _gaussian_trace(volume: Volume, bg: Background, kind: str) -> Trace:
     lin = linear_combination_test(frames, masks, law=law)
     evidence.update(_linear_evidence(lin))
     p = lin["p_value"]
-    evidence["decision"] = _decision_record("minus_log10_p_one_sigma", p)
+    evidence["decision"] = _decision_record("minus_log10_p_no_combination", p)
     where = " of the inverse FFT" if volume.domain == "kspace" else ""
     sig = f"background{where} sigma {fit.sigma:.4g} (KS distance {fit.statistic:.3f})"
     if separate:
@@ -464,7 +470,7 @@ def analyse(volume: Volume, *, background: Background,
     if per_channel:
         estimates = {"noise_model": chosen, "sigma": _r4(res["sigma"]),
                      "effective_channels": None, "combination": "unknown"}
-        evidence["decision"] = _decision_record("minus_log10_p_several_channels", p_rss)
+        evidence["decision"] = _decision_record("minus_log10_p_no_combination", p_rss)
         summary = (f"The data hold {volume.n_coils} separate magnitude channels, not combined "
                    f"(background law of one channel: {chosen}).")
         return Trace(TRACE_ID, "absent", _confidence("absent", p_rss), summary, estimates,
@@ -480,7 +486,7 @@ def analyse(volume: Volume, *, background: Background,
         estimates = {"noise_model": chosen, "sigma": _r4(res["sigma"]),
                      "effective_channels": evidence["effective_channels"],
                      "combination": "rss"}
-        evidence["decision"] = _decision_record("minus_log10_p_one_channel", p_rss)
+        evidence["decision"] = _decision_record("minus_log10_p_no_combination", p_rss)
         stat = res["fits"][chosen]
         robust = ("; from the lower quantiles, the upper tail carries stray signal"
                   if res["estimator"] == "quantiles" else "")
@@ -500,7 +506,7 @@ def analyse(volume: Volume, *, background: Background,
     if not offset and L < L_SPLIT and p_lin < FALSE_ALARM:
         estimates = {"noise_model": "rayleigh", "sigma": None, "effective_channels": None,
                      "combination": "linear"}
-        evidence["decision"] = _decision_record("minus_log10_p_one_sigma", p_lin)
+        evidence["decision"] = _decision_record("minus_log10_p_no_combination", p_lin)
         summary = (f"The background is Rayleigh-like (moment estimate L = {L:.2f}) but its "
                    f"sigma varies across the image (tile noise power spread "
                    f"{lin['spread'] or float('nan'):.2f}, p = {p_lin:.2g} for one common sigma): "
@@ -513,7 +519,7 @@ def analyse(volume: Volume, *, background: Background,
                  "effective_channels": evidence["effective_channels"],
                  "combination": combination}
     if chosen == "unknown":
-        evidence["decision"] = _decision_record("minus_log10_p_one_sigma", p_lin)
+        evidence["decision"] = _decision_record("minus_log10_p_no_combination", p_lin)
         if offset:
             why = (f"the air holds {tail:.1f} times too few values near zero for a pure noise "
                    "floor (an offset added to the background?)")
@@ -526,7 +532,7 @@ def analyse(volume: Volume, *, background: Background,
                      evidence)
     # an absent call rests on the linear test (the chi law with L >= 1.5 was not chosen)
     p_any = p_lin
-    evidence["decision"] = _decision_record("minus_log10_p_one_sigma", p_any)
+    evidence["decision"] = _decision_record("minus_log10_p_no_combination", p_any)
     stat = res["fits"][chosen]
     if chosen == "rayleigh":
         summary = (f"The background follows the Rayleigh law with one sigma throughout (sigma "
