@@ -264,3 +264,23 @@ def test_finding_15_one_letter_folders_and_long_non_ascii_names(server) -> None:
         job = ada.wait_for_job(d)
         assert job["state"] == "done", job
         assert str(server.data_dir) not in ada.get(f"/datasets/{d}").text
+
+
+def test_finding_13_effective_rate_chart_cache_is_bounded(server, analysed) -> None:
+    """Finding 13: every distinct ``acceleration`` of ``effective-rate.png`` stored a new
+    image forever. 120 distinct values now leave at most the cache's bound of charts
+    for the report, the newest kept, and each request still answers its PNG."""
+    from app.web.evidence import MAX_CHARTS_PER_REPORT
+
+    bea = server.login("bea", PASSWORD)
+    rep = bea.get(f"/api/datasets/{analysed}").json()["report_id"]
+    folder = server.data_dir / "reports" / str(rep) / "figures"
+    for i in range(120):
+        r = bea.get(f"/datasets/{analysed}/effective-rate.png",
+                    params={"acceleration": f"{2 + i / 97:.6f}"})
+        assert r.status_code == 200 and r.content.startswith(b"\x89PNG")
+    charts = list(folder.glob("effective-*.png"))
+    assert 0 < len(charts) <= MAX_CHARTS_PER_REPORT
+    newest = float(f"{2 + 119 / 97:.6f}")
+    assert any(p.name.endswith(f"-{newest:g}.png") for p in charts)
+    print(f"finding 13: {len(charts)} charts, {sum(p.stat().st_size for p in charts)} bytes")

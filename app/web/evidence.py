@@ -326,6 +326,25 @@ def effective_rate_png(dataset_id: int, db: DbSession, settings: SettingsDep,
                     media_type="image/png", headers=PNG_HEADERS)
 
 
+#: effective-rate charts kept per report (one per family, layout and marked R asked
+#: for); the least recently made go first, so that a stream of distinct accelerations
+#: cannot fill the disk (issue 21, finding 13)
+MAX_CHARTS_PER_REPORT = 48
+
+
+def _prune_charts(folder: Path, keep: int = MAX_CHARTS_PER_REPORT) -> None:
+    """Remove the oldest ``effective-*.png`` in ``folder`` so that one more fits ``keep``."""
+    dated = []
+    for p in folder.glob("effective-*.png"):
+        try:
+            dated.append((p.stat().st_mtime, p))
+        except FileNotFoundError:  # removed by a parallel request
+            continue
+    dated.sort()
+    for _, old in dated[: max(0, len(dated) - keep + 1)]:
+        old.unlink(missing_ok=True)
+
+
 def _chart_png(settings: Settings, report_id: int, report: dict[str, Any], family: str,
                d: int, a: str, acceleration: float) -> bytes:
     """The calculator's chart, cached per report, family, layout and marked R."""
@@ -343,6 +362,8 @@ def _chart_png(settings: Settings, report_id: int, report: dict[str, Any], famil
         return figures.to_png(figures.build_effective_curve(curves, marker=acceleration,
                                                             marker_effective=here))
 
+    if not path.is_file():
+        _prune_charts(path.parent)
     return _cached_png(path, make)
 
 
