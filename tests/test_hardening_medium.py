@@ -148,3 +148,48 @@ def test_finding_14_clean_restarts_spend_no_attempt(tmp_path) -> None:
                 time.sleep(0.2)
         gate.touch()
         assert ada.wait_for_job(ds, timeout=90)["state"] == "done"
+
+
+def test_finding_12_stalled_uploads_end_with_408_and_leave_no_part_file(server) -> None:
+    """Finding 12: 20 uploads that stop sending held open ``.part`` files for 75 s.
+
+    Each sends its headers, the CSRF field and 64 kB of a file, then stalls: the
+    server answers 408 (RFC 9110 15.5.9) once no byte came for the body timeout
+    (3 s here) and removes the partial file; nothing is stored.
+    """
+    ada = server.login("ada", PASSWORD)
+    cookie = "; ".join(f"{k}={v}" for k, v in ada.cookies.items())
+    token = ada.csrf("/upload")
+    boundary = "stalledBoundary"
+    head = _fields(boundary, {"csrf_token": token, "name": "stalled", "source": "s"})
+    head += (f"--{boundary}\r\nContent-Disposition: form-data; name=\"files\"; "
+             f"filename=\"big.npy\"\r\nContent-Type: application/octet-stream\r\n\r\n"
+             ).encode() + b"\0" * 65536
+    tmp = server.data_dir / "tmp"
+    before = {p.name for p in tmp.glob("upload-*.part")}
+    conns = []
+    for _ in range(20):
+        s = socket.create_connection(("127.0.0.1", server.port), timeout=30)
+        s.sendall((f"POST /upload HTTP/1.1\r\nHost: 127.0.0.1\r\nCookie: {cookie}\r\n"
+                   f"Accept: application/json\r\nContent-Length: {10_000_000}\r\n"
+                   f"Content-Type: multipart/form-data; boundary={boundary}\r\n\r\n"
+                   ).encode() + head)
+        conns.append(s)
+    statuses = []
+    for s in conns:
+        answer = b""
+        try:
+            while b"\r\n\r\n" not in answer:
+                more = s.recv(65536)  # blocks until the server answers (30 s socket timeout)
+                if not more:
+                    break
+                answer += more
+        finally:
+            s.close()
+        statuses.append(int(answer.split(b" ", 2)[1]) if answer.startswith(b"HTTP/1.1") else 0)
+    assert statuses == [408] * 20, statuses
+    deadline = time.monotonic() + 10
+    while {p.name for p in tmp.glob("upload-*.part")} - before and time.monotonic() < deadline:
+        time.sleep(0.1)
+    assert not {p.name for p in tmp.glob("upload-*.part")} - before
+    assert all(d["name"] != "stalled" for d in ada.get("/api/datasets").json()["datasets"])
