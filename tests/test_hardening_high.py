@@ -310,10 +310,12 @@ def test_finding_3_and_7_full_disk_answers_cleanly_and_the_worker_recovers(tmp_p
     with small_disk(tmp_path / "disk", 96) as disk, \
             running_server(disk / "data", extra_args=["--lease-seconds", "4"],
                            env={"RAWPROOF_WORKER_GATE": str(gate)}) as srv:
-        srv.add_user("ada", PASSWORD)
+        srv.add_users({"ada": PASSWORD, "bea": PASSWORD})
         ada = srv.login("ada", PASSWORD)
+        bea = srv.login("bea", PASSWORD)
         worker = worker_pid(srv.proc.pid)
         ds = ada.upload_files("queued", [("a.npy", zero_filled_npy(3))])["dataset_id"]
+        bea_csrf, ada_csrf = bea.csrf(), ada.csrf()
         filler = fill(disk)
         gate.touch()  # the worker now meets the full disk
         r = ada.post("/upload", data={"csrf_token": ada.csrf("/upload"), "name": "n",
@@ -327,9 +329,57 @@ def test_finding_3_and_7_full_disk_answers_cleanly_and_the_worker_recovers(tmp_p
         assert c.status_code == 507, c.text[:300]
         assert c.headers["content-type"].startswith("application/json")
         assert c.json()["error"]["code"] == "storage_full"
+        # the other writes of finding 7: never a bare 500, JSON for API callers
+        api = {"x-csrf-token": bea_csrf, "accept": "application/json"}
+        for r in (bea.post(f"/api/datasets/{ds}/reanalyse", headers=api),
+                  bea.post(f"/api/datasets/{ds}/decisions", headers=api,
+                           json={"outcome": "rejected", "rationale": "disk full test"}),
+                  ada.post("/account/tokens", data={"csrf_token": ada_csrf, "label": "t"},
+                           headers={"accept": "application/json"})):
+            assert r.status_code == 507, (r.request.url, r.status_code, r.text[:200])
+            assert r.json()["error"]["code"] == "storage_full"
+        page = bea.post(f"/datasets/{ds}/reanalyse", data={"csrf_token": bea_csrf})
+        assert page.status_code == 507 and "text/html" in page.headers["content-type"]
+        with srv.client() as c2:  # signing in writes a session: a readable 507 too
+            c2.cookies.set("rawproof_login_csrf", "t")
+            r = c2.post("/login", data={"name": "bea", "password": PASSWORD,
+                                        "csrf_token": "t"})
+            assert r.status_code == 507 and "text/html" in r.headers["content-type"]
         assert ada.get("/healthz").status_code == 200
         filler.unlink()
         job = ada.wait_for_job(ds, timeout=90)
         assert job["state"] == "done", job
         assert worker_pid(srv.proc.pid) is not None
         print(f"full disk: worker {worker} -> {worker_pid(srv.proc.pid)}, job {job['state']}")
+
+
+def test_finding_7_orphaned_store_files_removed_at_start_and_by_check(tmp_path) -> None:
+    """Finding 7: a file whose upload's database commit failed stayed in the store
+    forever. A stored file no dataset refers to, older than the grace period, is
+    removed by ``rawproof check`` and at the next start; a referenced one stays."""
+    import hashlib
+
+    def plant(data_dir: Path, content: bytes) -> Path:
+        sha = hashlib.sha256(content).hexdigest()
+        path = data_dir / "store" / sha[:2] / sha
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_bytes(content)
+        old = time.time() - 3600  # past the 15-minute grace of an upload still committing
+        os.utime(path, (old, old))
+        return path
+
+    data = tmp_path / "data"
+    with running_server(data, worker=False) as srv:
+        srv.add_user("ada", PASSWORD)
+        ada = srv.login("ada", PASSWORD)
+        ds = ada.upload_files("kept", [("a.npy", zero_filled_npy(7))])["dataset_id"]
+        sha = ada.get(f"/api/datasets/{ds}").json()["files"][0]["sha256"]
+        kept = data / "store" / sha[:2] / sha
+        os.utime(kept, (time.time() - 3600, time.time() - 3600))
+        orphan = plant(data, b"bytes of an upload whose commit failed")
+        out = srv.cli("check").stdout
+        assert not orphan.exists() and kept.exists(), out
+        assert "removed 1 stored file" in out
+    orphan = plant(data, b"another upload whose commit failed")
+    with running_server(data, worker=False):
+        assert not orphan.exists() and kept.exists()
