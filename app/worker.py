@@ -3,7 +3,7 @@
 One worker process claims jobs with a lease (:mod:`app.store.jobs`), keeps the
 leases alive from a heartbeat thread, and runs each analysis in a
 ``concurrent.futures.ProcessPoolExecutor`` through
-:func:`app.traces.report.analyse_path` -- the same function ``rawproof
+:func:`app.analysis.analyse_path` -- the same function ``rawproof
 analyse`` calls, so the web app shows the same numbers as the command line.
 A worker that dies mid-job stops heartbeating; its lease expires and another
 worker (or the same one restarted) takes the job again.
@@ -113,8 +113,8 @@ def analyse_job(path: str, progress_file: str, previews_out: str, limits: Any,
     Temporary files of the readers (an archive's extracted members) go into
     the job's own folder inside the data folder, removed with the job.
     """
+    from app.analysis import analyse_path
     from app.errors import InputError
-    from app.traces.report import analyse_path
 
     tempfile.tempdir = str(Path(progress_file).parent)
 

@@ -23,7 +23,7 @@ def _floor(path: str) -> None:
 
 
 def _analyse(path: str) -> dict:
-    from app.traces.report import analyse_path
+    from app.analysis import analyse_path
 
     rep = analyse_path(path, workers=2)
     return {

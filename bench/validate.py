@@ -9,7 +9,7 @@ Sets (printed in this order): ``heldout`` (bench/sim2, held-out split), ``shelf`
 fitted on ``insample`` and ``dev`` only; ``heldout`` and ``shelf`` only report.
 
 Each case is written to a temporary folder and analysed with
-``app.traces.report.analyse_path(path, workers=1, **kwargs)`` in a pool of two
+``app.analysis.analyse_path(path, workers=1, **kwargs)`` in a pool of two
 processes, one case per task, with a per-case time limit; a failing case is
 counted, never fatal.
 
@@ -424,7 +424,7 @@ def _slim(report: dict) -> dict:
 
 def run_one(case: Case, timeout: float = CASE_TIMEOUT_S) -> dict:
     """Materialise and analyse one case (in the calling process); never raises."""
-    from app.traces.report import analyse_path
+    from app.analysis import analyse_path
 
     t0 = time.perf_counter()
     row: dict[str, Any] = {"name": case.name, "route": case.route, "truth": case.truth,

@@ -104,10 +104,10 @@ def _populate(data_dir: Path, n: int) -> int:
     """n datasets, each with one small file, a stored report and some with decisions."""
     import io
 
+    from app.analysis import analyse_path
     from app.config import Settings
     from app.store import migrate, service
     from app.store.db import database
-    from app.traces.report import analyse_path
     from demo_data import synth
 
     settings = Settings(data_dir=data_dir)

@@ -87,7 +87,7 @@ def check_input(data: bytes, suffix: str, *, limits: Limits = FUZZ_LIMITS,
 
 
 def check_pipeline(data: bytes, suffix: str, *, limits: Limits = FUZZ_LIMITS) -> list[str]:
-    """Run the whole headless analysis (:func:`app.traces.report.analyse_path`) on one
+    """Run the whole headless analysis (:func:`app.analysis.analyse_path`) on one
     input; return the analysers that failed on it (their summary says so).
 
     The report catches an analyser's exception and says it failed; for a readable
@@ -98,7 +98,7 @@ def check_pipeline(data: bytes, suffix: str, *, limits: Limits = FUZZ_LIMITS) ->
     FindingError
         When anything but InputError escapes the pipeline.
     """
-    from app.traces.report import analyse_path
+    from app.analysis import analyse_path
 
     with tempfile.TemporaryDirectory(prefix="rawproof-fuzz-") as tmp:
         path = Path(tmp) / f"input{suffix}"

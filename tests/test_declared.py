@@ -8,10 +8,10 @@ import os
 import numpy as np
 import pytest
 
+from app.analysis import analyse_path
 from app.traces.base import Trace
 from app.traces.declared import Declaration, combine, declarations, reconcile
 from app.traces.header import HeaderFacts
-from app.traces.report import analyse_path
 
 
 def _logistic(x: float) -> float:

@@ -381,11 +381,11 @@ def test_pillow_jpeg2000_never_called_jpeg() -> None:
 
 
 def test_jpeg_lossy_dcm_through_the_reader() -> None:
-    """End to end through app.traces.report.analyse_path and the DICOM reader:
+    """End to end through app.analysis.analyse_path and the DICOM reader:
     JPEG-lossy.dcm's pixels do not decode (shared notes), so the trace comes from the
     header: present, method declared, quality = the IJG quality matched to the DQT
     table of its JPEG stream (parsed here, T.81 B.2.4.1)."""
-    from app.traces.report import analyse_path
+    from app.analysis import analyse_path
 
     _, table = _stored_table("JPEG-lossy.dcm")
     stored_q, _, _ = match_quality(table, baseline=bool(table.max() <= 255))

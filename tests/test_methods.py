@@ -103,7 +103,7 @@ def test_real_open_files_statement_and_figures() -> None:
     import pydicom
     from PIL import Image
 
-    from app.traces.report import analyse_path
+    from app.analysis import analyse_path
     from app.web import figures
 
     for label, path in _open_files():

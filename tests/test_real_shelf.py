@@ -43,7 +43,7 @@ def _entries() -> dict[str, tuple[object, str, dict]]:
 
 @functools.cache
 def _report(name: str) -> dict:
-    from app.traces.report import analyse_path
+    from app.analysis import analyse_path
 
     _, path, _ = _entries()[name]
     return analyse_path(path, workers=1)

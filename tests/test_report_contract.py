@@ -14,12 +14,12 @@ import jsonschema
 import numpy as np
 import pytest
 
+from app.analysis import analyse_path
 from app.cli import main
 from app.io.volume import Volume
 from app.schema import report_schema
 from app.traces import base
 from app.traces.report import (
-    analyse_path,
     analyse_volume,
     analysers,
     combine_groups,

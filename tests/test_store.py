@@ -3,7 +3,7 @@
 Outside references: Alembic's ``compare_metadata`` (the migration must build
 exactly the models' schema), Python's ``hashlib.sha256`` (content addresses),
 SQLite's documented pragmas (``journal_mode``, ``busy_timeout``), and
-:func:`app.traces.report.analyse_path` (the headless report the stored one
+:func:`app.analysis.analyse_path` (the headless report the stored one
 must equal).
 """
 
@@ -190,7 +190,7 @@ def test_third_lost_attempt_fails_the_job(settings: Settings) -> None:
 
 def test_inline_run_stores_the_headless_report(settings: Settings, tmp_path: Path) -> None:
     """The stored report's traces equal ``analyse_path`` on the same bytes (same numbers)."""
-    from app.traces.report import analyse_path
+    from app.analysis import analyse_path
 
     uma, _, _ = _people(settings)
     content = zero_filled_npy(14)

@@ -64,7 +64,7 @@ def _add_analyse(p: argparse.ArgumentParser) -> None:
 
 
 def _run_analyse(args: Any) -> int:
-    from app.traces.report import analyse_path
+    from app.analysis import analyse_path
 
     def progress(line: str) -> None:
         if not args.quiet:

@@ -42,7 +42,7 @@ class Case:
 
     def materialise(self, folder: pathlib.Path) -> tuple[str, dict]:
         """Write the case's files into folder; return (path to analyse, kwargs for
-        ``app.traces.report.analyse_path``)."""
+        ``app.analysis.analyse_path``)."""
         folder = pathlib.Path(folder)
         return catalogue.build(self.route, self.recipe, folder)
 
