@@ -159,9 +159,12 @@ def whiten_coils(kspace: np.ndarray, *, max_virtual: int = MAX_VIRTUAL_COILS
     k = centre_kspace(np.asarray(kspace, dtype=np.complex128))
     c, ny, nx = k.shape
     # the outer eighth of the measured support: zero-padded rows and columns are no noise
+    # (rows and columns at round-off level of the peak count as zeros: the FFT of images
+    # made from zero-padded k-space leaves 1e-14 there, not exact zeros)
     power = np.abs(k) ** 2
-    ry = np.flatnonzero(power.sum(axis=(0, 2)) > 0)
-    rx = np.flatnonzero(power.sum(axis=(0, 1)) > 0)
+    py, px = power.sum(axis=(0, 2)), power.sum(axis=(0, 1))
+    ry = np.flatnonzero(py > ZERO_LINE * np.median(py[py > 0]) if np.any(py > 0) else py > 0)
+    rx = np.flatnonzero(px > ZERO_LINE * np.median(px[px > 0]) if np.any(px > 0) else px > 0)
     y0, y1 = (int(ry[0]), int(ry[-1]) + 1) if ry.size else (0, ny)
     x0, x1 = (int(rx[0]), int(rx[-1]) + 1) if rx.size else (0, nx)
     ey, ex = max(2, (y1 - y0) // 8), max(2, (x1 - x0) // 8)
@@ -171,7 +174,8 @@ def whiten_coils(kspace: np.ndarray, *, max_virtual: int = MAX_VIRTUAL_COILS
     for rows in (np.r_[y0:y0 + ey], np.r_[y1 - ey:y1]):
         for cols in (np.r_[x0:x0 + ex], np.r_[x1 - ex:x1]):
             corner = k[:, rows][:, :, cols].reshape(c, -1)
-            corner = corner[:, np.any(np.abs(corner) > 0, axis=0)]
+            corner = corner[:, np.sum(np.abs(corner) ** 2, axis=0)
+                            > ZERO_LINE * float(np.median(py)) / max(1, nx)]
             if corner.shape[1] < 4 * c:
                 continue
             cv = corner @ corner.conj().T / corner.shape[1]
