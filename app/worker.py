@@ -113,10 +113,20 @@ def analyse_job(path: str, progress_file: str, previews_out: str, limits: Any,
     Temporary files of the readers (an archive's extracted members) go into
     the job's own folder inside the data folder, removed with the job.
     """
+    # temporary files of this analysis go inside its job folder; restored afterwards,
+    # because run_inline calls this in the caller's own process
+    before = tempfile.tempdir
+    tempfile.tempdir = str(Path(progress_file).parent)
+    try:
+        return _analyse_job(path, progress_file, previews_out, limits, fft_workers)
+    finally:
+        tempfile.tempdir = before
+
+
+def _analyse_job(path: str, progress_file: str, previews_out: str, limits: Any,
+                 fft_workers: int) -> dict[str, Any]:
     from app.analysis import analyse_path
     from app.errors import InputError
-
-    tempfile.tempdir = str(Path(progress_file).parent)
 
     with open(progress_file, "a", encoding="utf-8") as fh:
         fh.write(json.dumps({"n_traces": _n_analysers()}) + "\n")
