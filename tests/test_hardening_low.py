@@ -272,11 +272,11 @@ def test_finding_13_effective_rate_chart_cache_is_bounded(server, analysed) -> N
     for the report, the newest kept, and each request still answers its PNG."""
     from app.web.evidence import MAX_CHARTS_PER_REPORT
 
-    bea = server.login("bea", PASSWORD)
-    rep = bea.get(f"/api/datasets/{analysed}").json()["report_id"]
+    ada = server.login("ada", PASSWORD)  # bea's password was reset in finding 10
+    rep = ada.get(f"/api/datasets/{analysed}").json()["report_id"]
     folder = server.data_dir / "reports" / str(rep) / "figures"
     for i in range(120):
-        r = bea.get(f"/datasets/{analysed}/effective-rate.png",
+        r = ada.get(f"/datasets/{analysed}/effective-rate.png",
                     params={"acceleration": f"{2 + i / 97:.6f}"})
         assert r.status_code == 200 and r.content.startswith(b"\x89PNG")
     charts = list(folder.glob("effective-*.png"))
