@@ -22,6 +22,8 @@ from pydicom.data import get_testdata_file
 
 from app.cli import main
 
+pytestmark = pytest.mark.slow
+
 RAWPROOF = Path(sys.executable).parent / "rawproof"
 ERROR_KEYS = {"code", "message", "path"}
 

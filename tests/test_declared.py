@@ -109,6 +109,7 @@ def test_mpr_dicom_resampling_rests_on_header_and_pixels():
     assert "MPR" in t["evidence"]["declared"]["rule"]
 
 
+@pytest.mark.slow
 def test_lossy_jpeg2000_is_not_read_as_2x_resampling():
     """pydicom-data's MR2_J2KI.dcm: irreversible JPEG 2000 (transfer syntax
     1.2.840.10008.1.2.4.91, LossyImageCompression 01, about 18:1 per pydicom's

@@ -29,6 +29,8 @@ from app.traces.report import analysers
 from app.web import figures
 from demo_data.generate import MEMBERS, SOURCES
 
+pytestmark = pytest.mark.slow
+
 FIGURE_OF = {tid: spec.name for spec in figures.FIGURES.values() for tid in spec.trace_ids}
 
 

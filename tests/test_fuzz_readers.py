@@ -38,6 +38,8 @@ from fuzz import mutate as mut
 from fuzz.harness import FUZZ_LIMITS, MEMORY_BOUND, FindingError, check_input
 from fuzz.seeds import seeds
 
+pytestmark = pytest.mark.slow
+
 SEED_NAMES = sorted(seeds())
 #: A lie must be refused with well under this many bytes allocated (declared: gigabytes).
 SMALL_PEAK = 64 << 20

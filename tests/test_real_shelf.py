@@ -18,6 +18,8 @@ import pytest
 
 from bench import shelf
 
+pytestmark = pytest.mark.slow
+
 _RESAMPLED_DOWN = "resampling reported absent on a documented downsized image"
 _RESLICED = "resampling reported absent on a documented SPM-resliced/normalised volume"
 XFAIL: dict[tuple[str, str], str] = {

@@ -14,6 +14,8 @@ from bench.sim2.anatomy import draw_anatomy
 from bench.sim2.coils import correlated_noise, draw_array, noise_covariance, prewhiten
 from bench.sim2.fourier import to_image, window_1d
 
+pytestmark = pytest.mark.slow
+
 
 @pytest.fixture(scope="module")
 def head_acq():

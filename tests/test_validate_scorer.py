@@ -117,6 +117,7 @@ def test_constant_confidence_flag() -> None:
     assert c["kspace_synthesis"]["n"] == 0
 
 
+@pytest.mark.slow
 def test_quick_run_prints_every_table(tmp_path: Path) -> None:
     """Smoke run of ``python -m bench.validate --quick`` on the shelf (real packaged MR files)
     and the in-sample set: the tables print, the JSON's scores are what the pure scorer
