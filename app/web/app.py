@@ -22,6 +22,7 @@ from app.store.db import Database
 from app.store.errors import StoreError
 from app.web import evidence
 from app.web.deps import MAX_ROW_ID, ForbiddenError, NotSignedInError, out_of_range_fields
+from app.web.errors import error_body, store_error_code
 from app.web.limits import RequestLimitsMiddleware, storage_failure
 from app.web.paths import STATIC_DIR
 from app.web.ratelimit import LoginLimiter
@@ -36,25 +37,6 @@ def _wants_json(request: Request) -> bool:
     return (request.url.path.startswith("/api/")
             or "application/json" in request.headers.get("accept", "")
             or request.headers.get("authorization", "").lower().startswith("bearer "))
-
-
-#: The stable error codes of JSON answers (documented in the README), one per kind.
-ERROR_CODES = ("not_signed_in", "forbidden", "form_expired", "not_found",
-               "method_not_allowed", "invalid_request", "invalid_field", "permission_denied",
-               "self_decision", "decision_conflict", "upload_too_large", "storage_full",
-               "http_error")
-
-
-def store_error_code(exc: StoreError) -> str:
-    """The snake_case code of a store error (its class name without ``Error``)."""
-    name = type(exc).__name__.removesuffix("Error")
-    snake = "".join("_" + c.lower() if c.isupper() else c for c in name).lstrip("_")
-    return {"validation": "invalid_field"}.get(snake, snake or "invalid_field")
-
-
-def error_body(code: str, message: str, **extra: object) -> dict:
-    """The one error object every JSON answer uses: ``{"error": {"code", "message"}}``."""
-    return {"error": {"code": code, "message": message, **extra}}
 
 
 def _error(request: Request, status: int, title: str, message: str, *, code: str):
