@@ -34,6 +34,7 @@ from scipy import ndimage
 from app.io.volume import Volume
 from app.traces.background import MASKED_SHARE, Background, constant_share
 from app.traces.base import Trace, inconclusive, register
+from app.traces.rounding import round_sig
 
 TRACE_ID = "background_masking"
 PARTIAL_SHARE = 0.1
@@ -72,7 +73,7 @@ def mask_shape(volume: Volume, bg: Background, value: float) -> dict[str, Any]:
                                 or const[:, -1].any()))
     return {
         "n_regions": int(np.median(regions)) if regions else 0,
-        "fraction_of_image": float(f"{n_const / n_px:.4g}") if n_px else 0.0,
+        "fraction_of_image": round_sig(n_const / n_px) if n_px else 0.0,
         "touches_border": bool(np.mean(touches) >= 0.5) if touches else False,
     }
 
@@ -97,13 +98,13 @@ def analyse(volume: Volume, *, background: Background) -> Trace:
         "n_regions": 0, "fraction_of_image": 0.0, "touches_border": False}
     physical = value * volume.scale + volume.offset if bg.stored is not None else value
     evidence = {
-        "zero_background_fraction": float(f"{const.share:.4g}"),
-        "constant_value": float(f"{physical:.6g}") if const.share >= PARTIAL_SHARE else None,
-        "neighbour_share": float(f"{const.neighbour_share:.4g}"),
+        "zero_background_fraction": round_sig(const.share),
+        "constant_value": round_sig(physical, 6) if const.share >= PARTIAL_SHARE else None,
+        "neighbour_share": round_sig(const.neighbour_share),
         "mask": shape,
         "n_background": int(bg.n_background),
-        "background_fraction": float(f"{bg.fraction:.4g}"),
-        "nan_fraction": float(f"{bg.nan_fraction:.4g}"),
+        "background_fraction": round_sig(bg.fraction),
+        "nan_fraction": round_sig(bg.nan_fraction),
     }
     estimates = {"zero_background_fraction": evidence["zero_background_fraction"]}
     evidence["decision"] = {"statistic": "constant_background_share", "value": const.share,

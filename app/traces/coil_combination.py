@@ -45,6 +45,7 @@ from app.io.volume import Volume
 from app.traces import noise_laws as nl
 from app.traces.background import Background, constant_share, image_blocks, lattice_step
 from app.traces.base import Trace, inconclusive, register
+from app.traces.rounding import round_sig
 from app.traces.value_kind import ValueKind
 
 TRACE_ID = "coil_combination"
@@ -62,15 +63,6 @@ NOISE_FREE = 1e-5
 MIN_SIGMA_STEPS = 1.0
 _DEFAULTS = {"noise_model": "unknown", "effective_channels": None, "sigma": None,
              "combination": "unknown"}
-
-
-def _r4(x: Any) -> Any:
-    if x is None:
-        return None
-    if isinstance(x, list | tuple | np.ndarray):
-        return [_r4(v) for v in x]
-    f = float(x)
-    return float(f"{f:.4g}") if np.isfinite(f) else None
 
 
 def _subsample(x: np.ndarray, n: int, seed: int = 7) -> np.ndarray:
@@ -95,7 +87,7 @@ def stored_step(bg: Background, scale: float) -> float:
 
 def _histogram(x: np.ndarray, hi: float, lo: float = 0.0, bins: int = 48) -> dict:
     counts, edges = np.histogram(x, bins=bins, range=(lo, hi), density=True)
-    return {"edges": _r4(edges), "counts": _r4(counts)}
+    return {"edges": round_sig(edges), "counts": round_sig(counts)}
 
 
 def fit_magnitude_background(x: np.ndarray, *, step: float = 0.0) -> dict[str, Any]:
@@ -198,17 +190,17 @@ def _evidence_from_fits(x: np.ndarray, res: dict, lo: float, hi: float,
     stats_: dict[str, Any] = {}
     for law, f in res["fits"].items():
         if f.sigma > 0:
-            densities[law] = _r4(f.frozen().pdf(dens_x))
-        stats_[law] = {"statistic": _r4(f.statistic), "p_value": _r4(f.p_value)}
+            densities[law] = round_sig(f.frozen().pdf(dens_x))
+        stats_[law] = {"statistic": round_sig(f.statistic), "p_value": round_sig(f.p_value)}
     chosen = res["chosen"]
     return {
         "histogram": _histogram(x, hi, lo),
-        "density_x": _r4(dens_x),
+        "density_x": round_sig(dens_x),
         "densities": densities,
         "chosen": chosen,
-        "effective_channels": _r4(res["channels"]) if chosen == "noncentral_chi" else (
+        "effective_channels": round_sig(res["channels"]) if chosen == "noncentral_chi" else (
             1.0 if chosen == "rayleigh" else None),
-        "sigma": _r4(res["sigma"]),
+        "sigma": round_sig(res["sigma"]),
         "statistics": stats_,
         "n_background": int(n_background),
         "ks_accept": KS_ACCEPT,
@@ -236,9 +228,9 @@ def _decision_record(statistic: str, p: float | None, value: float | None = None
     """
     if value is None and p is not None:
         value = -np.log10(max(p, 1e-300))
-    return {"statistic": statistic, "value": _r4(value),
-            "threshold": _r4(threshold if threshold is not None else -np.log10(FALSE_ALARM)),
-            "false_alarm_rate": FALSE_ALARM, "p_value": _r4(p)}
+    return {"statistic": statistic, "value": round_sig(value),
+            "threshold": round_sig(threshold if threshold is not None else -np.log10(FALSE_ALARM)),
+            "false_alarm_rate": FALSE_ALARM, "p_value": round_sig(p)}
 
 
 def _confidence(status: str, p: float | None) -> float:
@@ -305,11 +297,12 @@ def linear_combination_test(frames: list[np.ndarray], masks: list[np.ndarray], *
 
 
 def _linear_evidence(lin: dict[str, Any]) -> dict[str, Any]:
-    return {"noise_evenness": {"p_value": _r4(lin["p_value"]), "p_tiles": _r4(lin["p_evenness"]),
-                               "p_moment_ratio": _r4(lin["p_ratio"]),
-                               "moment_ratio_z": _r4(lin["ratio_z"]),
-                               "tile_power_spread_90_10": _r4(lin["spread"]),
-                               "spatial_correlation_kappa": _r4(lin["kappa"]),
+    return {"noise_evenness": {"p_value": round_sig(lin["p_value"]),
+                               "p_tiles": round_sig(lin["p_evenness"]),
+                               "p_moment_ratio": round_sig(lin["p_ratio"]),
+                               "moment_ratio_z": round_sig(lin["ratio_z"]),
+                               "tile_power_spread_90_10": round_sig(lin["spread"]),
+                               "spatial_correlation_kappa": round_sig(lin["kappa"]),
                                "tiles": int(lin["blocks"])}}
 
 
@@ -360,15 +353,15 @@ def _gaussian_trace(volume: Volume, bg: Background, kind: str) -> Trace:
     fit = nl.fit_gaussian(tested, zero_mean=kind == "complex")
     lim = float(np.percentile(np.abs(comps), 99.5)) or 1.0
     dens_x = np.linspace(-lim, lim, 96)
-    estimates["sigma"] = _r4(fit.sigma)
+    estimates["sigma"] = round_sig(fit.sigma)
     evidence.update({
         "histogram": _histogram(comps, lim, -lim),
-        "density_x": _r4(dens_x),
-        "densities": {"gaussian": _r4(fit.frozen().pdf(dens_x)), "rayleigh": None,
+        "density_x": round_sig(dens_x),
+        "densities": {"gaussian": round_sig(fit.frozen().pdf(dens_x)), "rayleigh": None,
                       "noncentral_chi": None},
-        "sigma": _r4(fit.sigma),
-        "statistics": {"gaussian": {"statistic": _r4(fit.statistic),
-                                    "p_value": _r4(fit.p_value)}},
+        "sigma": round_sig(fit.sigma),
+        "statistics": {"gaussian": {"statistic": round_sig(fit.statistic),
+                                    "p_value": round_sig(fit.p_value)}},
     })
     law = "rayleigh" if kind == "complex" else "halfnormal"
     frames, masks = _test_frames(volume, bg)
@@ -449,13 +442,13 @@ def analyse(volume: Volume, *, background: Background,
             n_background=int(bg.n_background), quantisation_step=step)
     hi = float(np.percentile(x, 99.5)) * 1.15 or 1.0
     evidence = _evidence_from_fits(x, res, 0.0, hi, bg.n_background)
-    evidence.update({"background_method": bg.method, "quantisation_step": _r4(step),
+    evidence.update({"background_method": bg.method, "quantisation_step": round_sig(step),
                      "excluded_blocks": bg.excluded_blocks,
                      "per_channel": per_channel, "n_coils": volume.n_coils,
                      "estimator": res["estimator"],
-                     "channels_quantiles": _r4(res["channels_quantiles"]),
-                     "excess_skewness": _r4(res["excess_skewness"]),
-                     "lower_tail_ratio": _r4(res["lower_tail_ratio"])})
+                     "channels_quantiles": round_sig(res["channels_quantiles"]),
+                     "excess_skewness": round_sig(res["excess_skewness"]),
+                     "lower_tail_ratio": round_sig(res["lower_tail_ratio"])})
     chosen = res["chosen"]
     L = res["channels"]
     frames, masks = _test_frames(volume, bg)
@@ -468,7 +461,7 @@ def analyse(volume: Volume, *, background: Background,
     tail = res["lower_tail_ratio"]
     offset = np.isfinite(tail) and tail > TAIL_RATIO
     if per_channel:
-        estimates = {"noise_model": chosen, "sigma": _r4(res["sigma"]),
+        estimates = {"noise_model": chosen, "sigma": round_sig(res["sigma"]),
                      "effective_channels": None, "combination": "unknown"}
         evidence["decision"] = _decision_record("minus_log10_p_no_combination", p_rss)
         summary = (f"The data hold {volume.n_coils} separate magnitude channels, not combined "
@@ -483,7 +476,7 @@ def analyse(volume: Volume, *, background: Background,
             evidence["effective_channels"] = None
             evidence["channels_withheld"] = (f"{eff:.0f} is above a plausible coil count "
                                              "(interpolated or filtered noise?)")
-        estimates = {"noise_model": chosen, "sigma": _r4(res["sigma"]),
+        estimates = {"noise_model": chosen, "sigma": round_sig(res["sigma"]),
                      "effective_channels": evidence["effective_channels"],
                      "combination": "rss"}
         evidence["decision"] = _decision_record("minus_log10_p_no_combination", p_rss)
@@ -515,7 +508,7 @@ def analyse(volume: Volume, *, background: Background,
         return Trace(TRACE_ID, "present", _confidence("present", p_lin), summary, estimates,
                      evidence)
     combination = "single" if chosen == "rayleigh" else "unknown"
-    estimates = {"noise_model": chosen, "sigma": _r4(res["sigma"]),
+    estimates = {"noise_model": chosen, "sigma": round_sig(res["sigma"]),
                  "effective_channels": evidence["effective_channels"],
                  "combination": combination}
     if chosen == "unknown":

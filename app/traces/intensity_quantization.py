@@ -62,6 +62,7 @@ from app.traces.background import (
 )
 from app.traces.base import Trace, inconclusive, register
 from app.traces.context import Scope
+from app.traces.rounding import round_sig
 from app.traces.value_kind import ValueKind
 
 TRACE_ID = "intensity_quantization"
@@ -298,7 +299,7 @@ def _histogram(stats: LevelStats) -> dict[str, Any]:
         nb = 1024 if hi > lo else 1
         edges = np.linspace(lo, hi if hi > lo else lo + 1, nb + 1)
     counts, _ = np.histogram(stats.levels, bins=edges, weights=stats.counts)
-    return {"edges": [float(f"{e:.6g}") for e in edges],
+    return {"edges": [round_sig(e, 6) for e in edges],
             "counts": [int(x) for x in counts]}
 
 
@@ -372,24 +373,24 @@ def analyse(volume: Volume, *, scope: Scope, background: Background | None = Non
                                     (factor > 1 and stats.distinct >= COMB_MIN_DENSE))
     evidence = {
         "histogram": _histogram(stats),
-        "clipped_low_fraction": float(f"{clip['low']:.4g}"),
-        "clipped_high_fraction": float(f"{clip['high']:.4g}"),
+        "clipped_low_fraction": round_sig(clip['low']),
+        "clipped_high_fraction": round_sig(clip['high']),
         "clip_values": [float(stats.levels[0]), float(stats.levels[-1])],
         "low_pile_up": clip["low_pile"], "high_pile_up": clip["high_pile"],
         "low_explained_by_masking": masked_low,
-        "low_pile_solid_share": None if solid_low is None else float(f"{solid_low:.4g}"),
+        "low_pile_solid_share": None if solid_low is None else round_sig(solid_low),
         "distinct_levels": stats.distinct,
         "stated_bits": bits,
-        "comb_score": float(f"{score:.4g}"),
+        "comb_score": round_sig(score),
         "dense_levels": n_dense,
         "integer_factor": factor,
-        "lattice_step": None if stats.step is None else float(f"{stats.step:.6g}"),
+        "lattice_step": None if stats.step is None else round_sig(stats.step, 6),
         "n_samples": stats.n_samples,
         "frames_examined": int(frames.size),
         "measured_on": "images behind the k-space" if from_images else "stored values",
     }
     estimates = {"distinct_levels": stats.distinct, "effective_bits": round(eff, 2),
-                 "clipped_fraction": float(f"{clipped:.4g}")}
+                 "clipped_fraction": round_sig(clipped)}
     evidence["decision"] = _decision(stats.distinct, score, clipped)
     findings = []
     if squeezed:

@@ -45,6 +45,7 @@ from app.io.volume import Volume
 from app.traces import spectrum as sp
 from app.traces import support as zf
 from app.traces.base import Trace, register
+from app.traces.rounding import round_record
 
 TRACE_ID = "kspace_filtering"
 RATIO = 0.6
@@ -253,15 +254,15 @@ def _noise_trace(spec: sp.Spectrum, support: dict[str, zf.AxisSupport],
                       "noise_profile_db": sp.round_sig(sp.to_db(f.profile)),
                       "curve_db": sp.round_sig(sp.to_db(f.model)),
                       "dispersion": sp.round_sig(f.dispersion),
-                      "window_test": _rounded(f.window),
-                      "family_test": _rounded(f.family_test)}
+                      "window_test": round_record(f.window),
+                      "family_test": round_record(f.family_test)}
                  for ax, f in fits.items()},
     }
     rec = min((f.window for f in fits.values()), key=lambda d: d["p_value"])
     decision = dict(rec)
     decision["p_value"] = min(1.0, 2.0 * float(rec["p_value"]))
     decision["false_alarm_rate"] = zf.NOISE_FALSE_ALARM
-    evidence["decision"] = _rounded(decision)
+    evidence["decision"] = round_record(decision)
     called = [f for f in fits.values() if f.window["p_value"] <= zf.NOISE_FALSE_ALARM / 4
               and f.family != "box"]
     if not called:
@@ -272,7 +273,7 @@ def _noise_trace(spec: sp.Spectrum, support: dict[str, zf.AxisSupport],
     best = min(called, key=lambda f: (not f.family_identified, f.window["p_value"],
                                       -f.window["value"]))
     shape, shape_rec = _shape(noise, fits, best)
-    evidence["shape_test"] = _rounded(shape_rec)
+    evidence["shape_test"] = round_record(shape_rec)
     axes = ", ".join(f.axis for f in called)
     conf = 1.0 - float(decision["p_value"])
     if best.family_identified:
@@ -344,12 +345,6 @@ def _blocks(P: np.ndarray, E: np.ndarray, rows: int, cols: int
                          (np.arange(c // bx) + 0.5) * bx - cols / 2, indexing="ij")
     away = (np.abs(yy) > rows * zf.NOISE_DC_SHARE) | (np.abs(xx) > cols * zf.NOISE_DC_SHARE)
     return pm[away], np.maximum(em[away], 0.0)
-
-
-def _rounded(d: dict | None) -> dict | None:
-    if d is None:
-        return None
-    return {k: (sp.round_sig(v) if isinstance(v, float) else v) for k, v in d.items()}
 
 
 def _profile_trace(spec: sp.Spectrum, support: dict[str, zf.AxisSupport]) -> Trace:

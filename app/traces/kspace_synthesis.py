@@ -66,6 +66,7 @@ from scipy import ndimage, stats
 
 from app.io.volume import Volume
 from app.traces.base import Trace, inconclusive, register
+from app.traces.rounding import round_sig
 from app.traces.value_kind import ValueKind
 
 TRACE_ID = "kspace_synthesis"
@@ -92,20 +93,11 @@ MIN_COUPLING = 1.5
 _LAPLACE = np.array([[1.0, -2.0, 1.0], [-2.0, 4.0, -2.0], [1.0, -2.0, 1.0]])
 
 
-def _r4(x: Any) -> Any:
-    if x is None:
-        return None
-    if isinstance(x, list | tuple | np.ndarray):
-        return [_r4(v) for v in np.asarray(x).tolist()]
-    f = float(x)
-    return float(f"{f:.4g}") if np.isfinite(f) else None
-
-
 def decision(statistic: str, value: float, threshold: float, *,
              false_alarm_rate: float | None, p_value: float | None) -> dict[str, Any]:
     """The decision record every trace puts in ``evidence["decision"]`` (larger = present)."""
-    return {"statistic": statistic, "value": _r4(value), "threshold": _r4(threshold),
-            "false_alarm_rate": _r4(false_alarm_rate), "p_value": _r4(p_value)}
+    return {"statistic": statistic, "value": round_sig(value), "threshold": round_sig(threshold),
+            "false_alarm_rate": round_sig(false_alarm_rate), "p_value": round_sig(p_value)}
 
 
 # ----------------------------------------------------------------------------------------
@@ -642,7 +634,7 @@ def _multi_coil(k: np.ndarray, kspace: bool) -> Trace:
         "test": "self_consistency",
         "measured_on": "k-space" if kspace else "FFT of the coil images",
         "phase_encode_axis": sc.axis,
-        "line_residual_over_noise": _r4(np.where(np.isfinite(res), res, np.nan)),
+        "line_residual_over_noise": round_sig(np.where(np.isfinite(res), res, np.nan)),
         "filled_lines": [int(i) for i in np.flatnonzero(sc.filled)][:512],
         "zero_lines": int(sc.zero.sum()),
         "n_lines": sc.n_lines,
@@ -660,7 +652,7 @@ def _multi_coil(k: np.ndarray, kspace: bool) -> Trace:
         summary = (f"{100 * stat:.0f}% of the {sc.axis} lines are predicted from their "
                    f"neighbours below {FILLED_RESIDUAL:g} of the thermal noise ({pattern}): "
                    "those samples were computed by a reconstruction, not measured.")
-        est = {"method": method, "acceleration": acc, "filled_fraction": _r4(stat)}
+        est = {"method": method, "acceleration": acc, "filled_fraction": round_sig(stat)}
         return Trace(TRACE_ID, "present", _present_confidence(sc.p_value), summary, est,
                      evidence)
     # absent: the chance that a fill of at least FILLED_SHARE of the lines would show as
@@ -687,10 +679,10 @@ def _single_image(img: np.ndarray, kspace: bool) -> Trace:
     evidence: dict[str, Any] = {
         "test": "fold_coupling",
         "measured_on": "inverse FFT of the k-space" if kspace else "stored complex values",
-        "coupling_by_fold": {"folds": list(FOLDS), **{a: _r4(v) for a, v in
+        "coupling_by_fold": {"folds": list(FOLDS), **{a: round_sig(v) for a, v in
                                                        fc.statistics.items()}},
-        "noise_variance_map": _r4(vmap / (np.median(positive) if positive.size else 1.0)),
-        "noise_variance_spread_95_5": _r4(spread),
+        "noise_variance_map": round_sig(vmap / (np.median(positive) if positive.size else 1.0)),
+        "noise_variance_spread_95_5": round_sig(spread),
         "decision": decision("fold_noise_coupling", fc.statistic, MIN_COUPLING,
                              false_alarm_rate=FALSE_ALARM, p_value=fc.p_value),
     }
@@ -701,7 +693,7 @@ def _single_image(img: np.ndarray, kspace: bool) -> Trace:
                    f"the image was unfolded by a parallel-imaging reconstruction at about "
                    f"R = {fc.fold}.")
         est = {"method": "parallel_imaging", "acceleration": fc.fold,
-               "filled_fraction": _r4(1.0 - 1.0 / fc.fold)}
+               "filled_fraction": round_sig(1.0 - 1.0 / fc.fold)}
         return Trace(TRACE_ID, "present", _present_confidence(fc.p_value), summary, est,
                      evidence)
     # model-based: logistic in the statistic's distance below the threshold, in units of

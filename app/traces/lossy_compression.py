@@ -31,6 +31,7 @@ from app.traces.base import Trace, register
 from app.traces.header import HeaderFacts
 from app.traces.jpeg_pixels import MAX_FIT_ERROR, MIN_MEASURED, PixelFinding, trimmed_match
 from app.traces.jpeg_tables import scaled_table
+from app.traces.rounding import round_sig
 
 TRACE_ID = "lossy_compression"
 DEFAULTS = {"method": None, "quality": None, "block_origin": None}
@@ -72,17 +73,11 @@ class HeaderFinding:
         return self.stored_table is not None or self.transfer_syntax in JPEG_DCT_SYNTAXES
 
 
-def _sig4(x: float | None) -> float | None:
-    if x is None or not np.isfinite(x):
-        return None
-    return float(f"{float(x):.4g}")
-
-
 def _table_list(t: np.ndarray | None) -> list[list[float | int | None]] | None:
     if t is None:
         return None
     a = np.asarray(t, dtype=float).reshape(8, 8)
-    return [[int(v) if np.isfinite(v) and v == int(v) else _sig4(v) for v in row] for row in a]
+    return [[int(v) if np.isfinite(v) and v == int(v) else round_sig(v) for v in row] for row in a]
 
 
 def header_finding(volume: Volume, declared: dict[str, Any] | None) -> HeaderFinding:
@@ -173,12 +168,12 @@ def combine(pix: PixelFinding, head: HeaderFinding) -> Trace:
     disagreement: str | None = None
     evidence: dict[str, Any] = {
         "blocking_signature": {
-            "rows": [_sig4(v) for v in g.signature_rows] if g else None,
-            "cols": [_sig4(v) for v in g.signature_cols] if g else None,
+            "rows": [round_sig(v) for v in g.signature_rows] if g else None,
+            "cols": [round_sig(v) for v in g.signature_cols] if g else None,
         },
         "estimated_table": _table_list(g.steps) if g and pix.status == "present" else None,
         "matched_table": _matched_table(pix, head),
-        "fit_error": _sig4(pix.fit_error),
+        "fit_error": round_sig(pix.fit_error),
         "block_origin": list(g.origin) if g and pix.status == "present" else None,
         "header": {
             "declared": bool(head.lossy),
@@ -187,7 +182,7 @@ def combine(pix: PixelFinding, head: HeaderFinding) -> Trace:
             "transfer_syntax": head.transfer_syntax,
             "stored_quality": head.stored_quality,
             "stored_table": _table_list(head.stored_table),
-            "stored_fit_error": _sig4(head.stored_fit_error),
+            "stored_fit_error": round_sig(head.stored_fit_error),
         },
         "pixels": {"status": pix.status, "reason": pix.reason, "frames": pix.frames},
     }
@@ -195,16 +190,16 @@ def combine(pix: PixelFinding, head: HeaderFinding) -> Trace:
         evidence["pixels"].update(
             n_blocks=g.n_blocks, n_measured=g.n_measured,
             support=g.support.astype(int).tolist(),
-            origin_scores=[[_sig4(v) for v in row] for row in g.origin_scores],
+            origin_scores=[[round_sig(v) for v in row] for row in g.origin_scores],
             matched_quality=pix.matched_quality)
     if pix.deadzone is not None:
         evidence["pixels"]["wavelet_deadzone"] = {
-            "min_gap_ratio": _sig4(pix.deadzone.min_gap_ratio),
-            "bands": [{k: (_sig4(v) if isinstance(v, float) else v) for k, v in b.items()}
+            "min_gap_ratio": round_sig(pix.deadzone.min_gap_ratio),
+            "bands": [{k: (round_sig(v) if isinstance(v, float) else v) for k, v in b.items()}
                       for b in pix.deadzone.bands]}
     if pix.lattice is not None and pix.lattice.found:
         evidence["pixels"]["lattice"] = {
-            "a": _sig4(pix.lattice.a), "b": _sig4(pix.lattice.b),
+            "a": round_sig(pix.lattice.a), "b": round_sig(pix.lattice.b),
             "span": pix.lattice.span, "bits": pix.bits}
 
     if pix.status == "present":

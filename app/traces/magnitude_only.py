@@ -40,16 +40,13 @@ import numpy as np
 
 from app.io.volume import Volume
 from app.traces.base import Trace, inconclusive, register
+from app.traces.rounding import round_sig
 from app.traces.value_kind import ValueKind
 
 TRACE_ID = "magnitude_only"
 
 
 HERMITIAN_SHARE = 1.0 - 1e-8
-
-
-def _r4(x: float | None) -> float | None:
-    return None if x is None else float(f"{x:.4g}")
 
 
 def hermitian_share(value_kind: ValueKind) -> float:
@@ -92,8 +89,8 @@ def hermitian_log_ratio(value_kind: ValueKind) -> tuple[float, float]:
 
 
 def _decision(value: float, threshold: float) -> dict:
-    return {"statistic": "log10_hermitian_to_antihermitian_energy", "value": _r4(value),
-            "threshold": _r4(threshold), "false_alarm_rate": None, "p_value": None}
+    return {"statistic": "log10_hermitian_to_antihermitian_energy", "value": round_sig(value),
+            "threshold": round_sig(threshold), "false_alarm_rate": None, "p_value": None}
 
 
 def _confidence(value: float, threshold: float, present: bool) -> float:
@@ -120,17 +117,17 @@ def analyse(volume: Volume, *, value_kind: ValueKind) -> Trace:
                             "infinite).")
     kspace = volume.domain == "kspace"
     evidence = {
-        "negative_fraction": _r4(vk.negative_fraction),
-        "negative_background_fraction": _r4(vk.negative_background_fraction),
-        "phase_spread": _r4(vk.phase_spread),
-        "imag_energy_fraction": _r4(vk.imag_energy_fraction),
+        "negative_fraction": round_sig(vk.negative_fraction),
+        "negative_background_fraction": round_sig(vk.negative_background_fraction),
+        "phase_spread": round_sig(vk.phase_spread),
+        "imag_energy_fraction": round_sig(vk.imag_energy_fraction),
         "dtype": str(volume.dtype),
         "n_coils": volume.n_coils,
         "measured_on": "inverse FFT of the k-space" if kspace else "stored values",
     }
     value, threshold = hermitian_log_ratio(vk)
     evidence["decision"] = _decision(value, threshold)
-    evidence["rounding_energy_fraction"] = _r4(vk.rounding_energy_fraction)
+    evidence["rounding_energy_fraction"] = round_sig(vk.rounding_energy_fraction)
     conf = _confidence(value, threshold, present=vk.domain != "complex")
     estimates = {"domain": vk.domain}
     if vk.domain == "complex":

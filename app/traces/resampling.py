@@ -84,6 +84,7 @@ from app.traces.base import Trace, inconclusive, register
 from app.traces.context import Notes, Scope, evenly_spaced
 from app.traces.header import HeaderFacts
 from app.traces.jpeg_pixels import PixelFinding
+from app.traces.rounding import round_sig
 from app.traces.support import FOUND_SUPPORT, AxisSupport
 
 TRACE_ID = "resampling"
@@ -694,7 +695,7 @@ def trace_from_tests(pm: ResamplingResult, cr: ResamplingResult, cratio: np.ndar
         "pmap": {"value": round(pm.excess, 4), "peaks": len(pm.peaks)},
         "neighbour_correlation": {"value": round(cr.excess, 4), "peaks": len(cr.peaks)},
         "pmap_peak_correlation_ratio": round(support_value, 3),
-        "pmap_peak_correlation_p_value": float(f"{confirm_p:.3g}"),
+        "pmap_peak_correlation_p_value": round_sig(confirm_p, 3),
         "pmap_peaks_off_axes_only": rotation_only,
         "confirm_alpha": CONFIRM_ALPHA,
         "through_plane": None if through is None else {

@@ -26,6 +26,7 @@ import numpy as np
 import scipy.fft as sfft
 
 from app.io.volume import Volume
+from app.traces.rounding import round_sig  # noqa: F401 - evidence helpers below use it
 
 _TINY = 1e-30
 #: at most this many columns go into the through-plane (slice-axis) profile
@@ -389,24 +390,6 @@ def downsample_mean(values: Any, max_len: int = 1024) -> np.ndarray:
     n = (len(v) // step) * step
     head = v[:n].reshape(-1, step).mean(axis=1)
     return np.concatenate([head, [v[n:].mean()]]) if n < len(v) else head
-
-
-def round_sig(values: Any, digits: int = 4) -> Any:
-    """Round floats (scalars or arrays) to ``digits`` significant digits for evidence."""
-    a = np.asarray(values, dtype=np.float64)
-    a = np.where(np.abs(a) < 1e-200, 0.0, a)  # denormal-scale values round to 0
-    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        mag = np.where(a == 0, 0, np.floor(np.log10(np.abs(np.where(a == 0, 1, a)))))
-    with np.errstate(invalid="ignore", over="ignore"):  # inf/NaN become NaN below
-        factor = 10.0 ** (digits - 1 - mag)
-        out = np.round(a * factor) / factor
-    out = np.where(np.isfinite(a), out, np.nan)
-    if out.ndim == 0:
-        f = float(out)
-        return None if not np.isfinite(f) else f
-    if np.isfinite(out).all():
-        return out.tolist()
-    return np.where(np.isfinite(out), out, None).tolist()
 
 
 def profile_db_evidence(spec: Spectrum) -> dict[str, list]:

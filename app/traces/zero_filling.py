@@ -42,6 +42,7 @@ from typing import Any
 from app.io.volume import Volume
 from app.traces import spectrum as sp
 from app.traces.base import Trace, register
+from app.traces.rounding import round_record
 from app.traces.support import FOUND_SUPPORT, STEP_THRESHOLD_DB, AxisSupport
 
 TRACE_ID = "zero_filling"
@@ -87,8 +88,8 @@ def trace_from(spec: sp.Spectrum, axes: dict[str, AxisSupport]) -> Trace:
                            else None for ax, a in axes.items()},
         "step_score_db": {ax: sp.round_sig(a.score_db) for ax, a in axes.items()},
         "method": {ax: a.method for ax, a in axes.items()},
-        "decisions": {ax: _rounded(a.decision) for ax, a in axes.items()},
-        "decision": _rounded(decision),
+        "decisions": {ax: round_record(a.decision) for ax, a in axes.items()},
+        "decision": round_record(decision),
         "threshold_db": STEP_THRESHOLD_DB,
         "n_frames": spec.n_frames,
         **sp.map_evidence(spec),
@@ -109,12 +110,6 @@ def trace_from(spec: sp.Spectrum, axes: dict[str, AxisSupport]) -> Trace:
     conf = float(p) if p is not None else 0.5
     summary = "The spectrum reaches the edge of k-space on every axis: no zero-filling found."
     return Trace(TRACE_ID, "absent", conf, summary, estimates, evidence)
-
-
-def _rounded(d: dict | None) -> dict | None:
-    if d is None:
-        return None
-    return {k: (sp.round_sig(v) if isinstance(v, float) else v) for k, v in d.items()}
 
 
 @register(TRACE_ID, version="1", order=10, default_estimates=DEFAULT_ESTIMATES)
