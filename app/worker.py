@@ -25,6 +25,7 @@ import shutil
 import socket
 import tempfile
 import threading
+import time
 import traceback
 import uuid
 from dataclasses import dataclass
@@ -36,6 +37,7 @@ import numpy as np
 from app.config import Settings
 from app.store import files as filestore
 from app.store import jobs as jobq
+from app.store import queue_health
 from app.store.db import database
 from app.store.models import Dataset, Job
 
@@ -325,11 +327,35 @@ class Worker:
         self._active: dict[int, _Active] = {}
         self._lock = threading.Lock()
         self._pool: cf.ProcessPoolExecutor | None = None
+        self._status = queue_health.worker_file(settings)
+        self._trouble: tuple[str, str, float] | None = None
+
+    # -- status (read by pages and the API: app.store.queue_health)
+    def _write_status(self) -> None:
+        rec: dict[str, Any] = {"role": "worker", "host": socket.gethostname(),
+                               "pid": os.getpid(), "lease": self.lease,
+                               "heartbeat_at": time.time(), "state": "ok"}
+        if self._trouble is not None:
+            reason, message, since = self._trouble
+            rec.update(state="stalled", reason=reason, message=message, since=since)
+        self._status.write(rec)
+
+    def _set_trouble(self, exc: BaseException | None) -> None:
+        if exc is None:
+            changed, self._trouble = self._trouble is not None, None
+        else:
+            reason, message = queue_health.classify(exc)
+            since = self._trouble[2] if self._trouble else time.time()
+            changed = self._trouble is None or self._trouble[0] != reason
+            self._trouble = (reason, message, since)
+        if changed:
+            self._write_status()
 
     # -- heartbeat
     def _heartbeat_loop(self) -> None:
         db = database(self.settings)
         while not self.stop.wait(max(0.2, self.lease / 4)):
+            self._write_status()
             with self._lock:
                 active = list(self._active.values())
             for act in active:
@@ -400,6 +426,9 @@ class Worker:
         growing back-off (up to :data:`MAX_BACKOFF` seconds) and tries again,
         so queued jobs run once space is freed.
         """
+        queue_health.remove_dead(self.settings)
+        self._status.open()
+        self._write_status()
         swept = filestore.sweep_tmp(self.settings)
         if swept:
             log.info("removed %d upload or job file(s) left in tmp/ by killed processes", swept)
@@ -415,7 +444,10 @@ class Worker:
                 try:
                     finished, idle = self._step(finished, max_jobs)
                     backoff = 0.0
+                    if self._trouble is not None:
+                        self._set_trouble(None)
                 except Exception as exc:  # noqa: BLE001 - database or disk trouble: retry
+                    self._set_trouble(exc)
                     backoff = min(MAX_BACKOFF, max(self.poll, backoff * 2))
                     log.error("the queue is stalled (%s: %s); retrying in %.0f s",
                               type(exc).__name__, str(exc)[:200], backoff)
@@ -430,6 +462,7 @@ class Worker:
             if self._pool is not None:
                 self._pool.shutdown(wait=False, cancel_futures=True)
             self._release_unfinished()
+            self._status.remove()
         return finished
 
     def _step(self, finished: int, max_jobs: int | None) -> tuple[int, bool | None]:

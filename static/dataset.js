@@ -64,6 +64,19 @@
     status.appendChild(el("p", "muted small", prog.current || ""));
   }
 
+  // Why the queue waits (the server reads the workers' status files); hidden when it moves.
+  function renderQueue(q) {
+    var notice = document.getElementById("queue-stalled");
+    if (!notice) { return; }
+    var stalled = !!(q && q.stalled);
+    notice.hidden = !stalled;
+    notice.setAttribute("data-reason", stalled ? q.reason : "");
+    document.getElementById("queue-message").textContent = stalled ? q.message : "";
+    var since = stalled && q.since ? "; since " + q.since.replace("T", " ").replace("Z", " UTC") : "";
+    document.getElementById("queue-pending").textContent = stalled ?
+      q.pending + (q.pending === 1 ? " analysis" : " analyses") + " queued or running" + since + "." : "";
+  }
+
   function renderProbe(run) {
     probeStatus.textContent = "";
     var p = el("p");
@@ -88,6 +101,7 @@
       .then(function (data) {
         if (!data) { window.setTimeout(poll, 3000); return; }
         var job = data.job;
+        renderQueue(data.queue);
         if (watchJob && job) {
           if (job.state === "done") {
             watchJob = false;

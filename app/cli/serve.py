@@ -55,13 +55,16 @@ def _run_serve(args: Any) -> int:
 
     filestore.sweep_tmp(settings)  # what a killed server or worker left in tmp/
     filestore.remove_orphans(settings)  # stored files no database row refers to
+    from app.store import queue_health
+
+    queue_health.remove_dead(settings)  # status files of killed servers and workers
     supervisor = None
     if not args.no_worker:
         supervisor = WorkerSupervisor([
             *RAWPROOF_ARGV, "worker", *common_argv(settings),
             "--concurrency", str(max(1, args.workers)), "--lease-seconds",
             str(args.lease_seconds), "--parent-pid", str(os.getpid()),
-        ])
+        ], settings, lease=args.lease_seconds)
         supervisor.start()
     server_options = _uvicorn_options(args)
     print(f"rawproof: serving {settings.data_dir} at http://{args.host}:{args.port}",
@@ -112,23 +115,61 @@ class WorkerSupervisor:
     Back-off between restarts doubles from 1 s to :attr:`max_backoff` s and
     starts again at 1 s once a worker has run for a minute. A worker that
     exits cleanly is also restarted: only :meth:`stop` ends the supervision.
+    The supervisor's status file (:mod:`app.store.queue_health`) says when the
+    worker died and when it is started again, for the registry and dataset pages.
     """
 
     max_backoff = 30.0
+    #: fault injection for tests: a restart waits until this file exists
+    GATE_ENV = "RAWPROOF_RESTART_GATE"
 
-    def __init__(self, argv: list[str]) -> None:
+    def __init__(self, argv: list[str], settings: Any = None, *, lease: float = 30.0) -> None:
         import threading
 
         self.argv = argv
         self.proc: subprocess.Popen | None = None
         self.restarts = 0
+        self.lease = lease
+        self._status = None
+        if settings is not None:
+            from app.store import queue_health
+
+            self._status = queue_health.supervisor_file(settings)
+        self._last_exit: dict[str, Any] | None = None
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._watch, name="worker-supervisor",
                                         daemon=True)
 
-    def start(self) -> None:
+    def _record(self, state: str, **extra: Any) -> None:
+        if self._status is None:
+            return
+        import socket
+        import time
+
+        self._status.write({
+            "role": "supervisor", "host": socket.gethostname(), "pid": os.getpid(),
+            "state": state, "lease": self.lease, "restarts": self.restarts,
+            "worker_pid": self.proc.pid if self.proc else None,
+            "last_exit": self._last_exit, "written_at": time.time(), **extra})
+
+    def _spawn(self) -> None:
+        import time
+
         self.proc = subprocess.Popen(self.argv)
+        self._record("running", started_at=time.time())
+
+    def start(self) -> None:
+        self._spawn()
         self._thread.start()
+
+    def _wait_for_gate(self) -> bool:
+        from pathlib import Path
+
+        gate = os.environ.get(self.GATE_ENV)
+        while gate and not Path(gate).exists():
+            if self._stop.wait(0.05):
+                return False
+        return True
 
     def _watch(self) -> None:
         import time
@@ -142,13 +183,16 @@ class WorkerSupervisor:
                     return
             if time.monotonic() - started > 60:
                 backoff = 1.0
-            print(f"rawproof: the worker exited ({proc.returncode if proc else '?'}); "
+            code = proc.returncode if proc else None
+            self._last_exit = {"code": code, "at": time.time()}
+            self._record("waiting", next_start_at=time.time() + backoff)
+            print(f"rawproof: the worker exited ({code if proc else '?'}); "
                   f"starting it again in {backoff:.0f} s", file=sys.stderr, flush=True)
-            if self._stop.wait(backoff):
+            if self._stop.wait(backoff) or not self._wait_for_gate():
                 return
             backoff = min(self.max_backoff, backoff * 2)
-            self.proc = subprocess.Popen(self.argv)
             self.restarts += 1
+            self._spawn()
             if self._stop.is_set():
                 self.proc.terminate()
 
@@ -161,6 +205,8 @@ class WorkerSupervisor:
                 proc.wait(timeout=10)
             except subprocess.TimeoutExpired:
                 proc.kill()
+        if self._status is not None:
+            self._status.remove()
 
 
 def _add_worker(p: argparse.ArgumentParser) -> None:

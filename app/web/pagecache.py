@@ -31,16 +31,19 @@ _LOCK = threading.Lock()
 _size = 0
 
 
-def cached_page(request: Request, db: Session, build: Callable[[], Response]) -> Response:
+def cached_page(request: Request, db: Session, build: Callable[[], Response], *,
+                extra_key: tuple = ()) -> Response:
     """``build()``'s page, or the copy rendered at the same database state.
 
     Requests signed in by API token (no web session) are always built fresh.
+    ``extra_key`` is state outside the database the page shows (the queue's
+    health, read from the workers' status files).
     """
     sess = getattr(request.state, "web_session", None)
     if sess is None:
         return build()
     key = (str(db.get_bind().url), request.url.path, request.url.query, sess.id,
-           change_key(db))
+           change_key(db), extra_key)
     with _LOCK:
         body = _PAGES.get(key)
         if body is not None:

@@ -21,6 +21,7 @@ import app as app_pkg
 from app import probe_jobs
 from app.store import service
 from app.store.errors import DecisionConflictError, NotFoundError
+from app.store.queue_health import queue_health
 from app.store.registry import SORTS, filter_rows, registry_rows
 from app.web.deps import (
     CurrentUser,
@@ -59,6 +60,15 @@ class MeOut(BaseModel):
     admin: bool
 
 
+class QueueOut(BaseModel):
+    pending: int = Field(description="jobs queued or running")
+    stalled: bool = Field(description="jobs wait and no worker serves them")
+    reason: Literal["worker_restarting", "storage_full", "read_only", "database_busy",
+                    "queue_error", "no_heartbeat", "no_worker"] | None = None
+    message: str = ""
+    since: str | None = None
+
+
 class JobOut(BaseModel):
     id: int
     state: Literal["queued", "running", "done", "failed"]
@@ -68,6 +78,7 @@ class JobOut(BaseModel):
     report_id: int | None = None
     created_at: str
     finished_at: str | None = None
+    queue: QueueOut | None = Field(None, description="why a queued or running job waits")
 
 
 class DecisionOut(BaseModel):
@@ -316,9 +327,10 @@ def list_datasets(db: DbSession, q: str = "", decision: str = "", trace: str = "
     return {"datasets": [_row_json(r) for r in rows]}
 
 
-def _dataset_json(db, ds) -> dict[str, Any]:  # noqa: ANN001
+def _dataset_json(db, ds, settings=None) -> dict[str, Any]:  # noqa: ANN001
     rep = service.get_current_report(db, ds.id)
     cur = service.current_decision(db, ds)
+    queue = queue_health(settings, db).to_json() if settings is not None else None
     return {
         "id": ds.id, "name": ds.name, "source": ds.source, "licence": ds.licence,
         "description": ds.description, "intended_use": ds.intended_use,
@@ -327,7 +339,7 @@ def _dataset_json(db, ds) -> dict[str, Any]:  # noqa: ANN001
         "withdrawn_reason": ds.withdrawn_reason or "",
         "files": [{"id": f.id, "name": f.relative_name, "sha256": f.file.sha256,
                    "size": f.file.size, "format": f.file.format} for f in ds.files],
-        "job": job_status(service.latest_job(db, ds.id)),
+        "job": job_status(service.latest_job(db, ds.id), queue),
         "report_id": rep.id if rep else None,
         "verdict": rep.verdict if rep else None,
         "decision": decision_json(cur) if cur else None,
@@ -335,9 +347,10 @@ def _dataset_json(db, ds) -> dict[str, Any]:  # noqa: ANN001
 
 
 @router.get("/datasets/{dataset_id}", response_model=DatasetOut)
-def get_dataset(dataset_id: int, db: DbSession):
-    """One dataset: metadata, files, latest job, current report id and decision."""
-    return _dataset_json(db, service.get_dataset(db, dataset_id))
+def get_dataset(dataset_id: int, db: DbSession, settings: SettingsDep):
+    """One dataset: metadata, files, latest job (with the queue's health while it waits),
+    current report id and decision."""
+    return _dataset_json(db, service.get_dataset(db, dataset_id), settings)
 
 
 @router.patch("/datasets/{dataset_id}", response_model=DatasetOut,

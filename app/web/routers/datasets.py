@@ -15,6 +15,7 @@ from app.store import files as filestore
 from app.store import service
 from app.store.errors import NotFoundError, StoreError
 from app.store.models import OUTCOMES, DatasetFile, Job, Report, User
+from app.store.queue_health import queue_health
 from app.web.deps import CurrentUser, DbSession, SettingsDep, csrf_protect, current_user
 from app.web.pagecache import cached_page
 from app.web.security import attachment_name
@@ -23,16 +24,23 @@ from app.web.templating import render
 router = APIRouter(tags=["datasets"], dependencies=[Depends(current_user)])
 
 
-def job_status(job: Job | None) -> dict[str, Any] | None:
-    """A job as JSON for the live progress view and the API."""
+def job_status(job: Job | None, queue: dict[str, Any] | None = None) -> dict[str, Any] | None:
+    """A job as JSON for the live progress view and the API.
+
+    ``queue`` (:meth:`app.store.queue_health.QueueHealth.to_json`) is attached to a
+    job that waits (queued or running), so a client polling it learns why it waits.
+    """
     if job is None:
         return None
-    return {
+    out = {
         "id": job.id, "state": job.state, "attempts": job.attempts, "error": job.error,
         "progress": job.progress, "report_id": job.report_id,
         "created_at": job.created_at.isoformat() + "Z",
         "finished_at": job.finished_at.isoformat() + "Z" if job.finished_at else None,
     }
+    if queue is not None and job.state in ("queued", "running"):
+        out["queue"] = queue
+    return out
 
 
 def decision_json(d) -> dict[str, Any]:  # noqa: ANN001
@@ -81,7 +89,9 @@ def dataset_context(db: Session, settings, dataset_id: int, user: User,  # noqa:
         answer = plain_answer(report, effective=safe_default_effective(report),
                               probe=probe_result)
     shape = [int(n) for n in ((report or {}).get("input") or {}).get("shape") or []]
+    queue = queue_health(settings, db)
     return {
+        "queue": queue,
         "dataset": ds,
         "report": report,
         "report_row": report_row,
@@ -91,7 +101,7 @@ def dataset_context(db: Session, settings, dataset_id: int, user: User,  # noqa:
         "files": ds.files,
         "duplicates": service.duplicates_of(db, ds),
         "job": job,
-        "job_json": job_status(job),
+        "job_json": job_status(job, queue.to_json()),
         "comments": service.list_comments(db, ds.id),
         "decisions": service.list_decisions(db, ds.id),
         "current_decision": current,
@@ -120,7 +130,8 @@ def dataset_context(db: Session, settings, dataset_id: int, user: User,  # noqa:
 def dataset_page(request: Request, dataset_id: int, db: DbSession, user: CurrentUser,
                  settings: SettingsDep):
     return cached_page(request, db, lambda: render(
-        request, "dataset.html", dataset_context(db, settings, dataset_id, user)))
+        request, "dataset.html", dataset_context(db, settings, dataset_id, user)),
+        extra_key=queue_health(settings, db).key)
 
 
 # ":int" so that ".../reports/7.json" reaches old_report_json below (issue 21, finding 9).
@@ -132,10 +143,12 @@ def old_report_page(request: Request, dataset_id: int, report_id: int, db: DbSes
 
 
 @router.get("/datasets/{dataset_id}/status")
-def dataset_status(dataset_id: int, db: DbSession):
+def dataset_status(dataset_id: int, db: DbSession, settings: SettingsDep):
     ds = service.get_dataset(db, dataset_id)
     rep = service.get_current_report(db, ds.id)
-    return {"dataset_id": ds.id, "job": job_status(service.latest_job(db, ds.id)),
+    queue = queue_health(settings, db).to_json()
+    return {"dataset_id": ds.id, "job": job_status(service.latest_job(db, ds.id), queue),
+            "queue": queue,
             "report_id": rep.id if rep else None,
             "probe": probe_jobs.probe_json(probe_jobs.latest_probe(db, ds.id))}
 

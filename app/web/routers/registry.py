@@ -9,8 +9,9 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from app.store.models import OUTCOMES, User
+from app.store.queue_health import queue_health
 from app.store.registry import SORTS, filter_rows, registry_rows
-from app.web.deps import DbSession, current_user
+from app.web.deps import DbSession, SettingsDep, current_user
 from app.web.labels import TRACE_LABELS
 from app.web.pagecache import cached_page
 from app.web.templating import render
@@ -30,6 +31,7 @@ router = APIRouter(tags=["registry"], dependencies=[Depends(current_user)])
 def home(
     request: Request,
     db: DbSession,
+    settings: SettingsDep,
     q: str = "",
     decision: str = "",
     trace: str = "",
@@ -39,12 +41,14 @@ def home(
     page: int = 1,
     withdrawn: str = "",
 ):
+    queue = queue_health(settings, db)
     return cached_page(request, db, lambda: _home(request, db, q, decision, trace, uploader,
-                                                  sort, order, page, withdrawn == "1"))
+                                                  sort, order, page, withdrawn == "1", queue),
+                       extra_key=queue.key)
 
 
 def _home(request: Request, db: Session, q: str, decision: str, trace: str, uploader: str,
-          sort: str, order: str, page: int, show_withdrawn: bool = False):
+          sort: str, order: str, page: int, show_withdrawn: bool = False, queue=None):  # noqa: ANN001
     all_rows = registry_rows(db)
     rows = filter_rows(all_rows, q=q, decision=decision if decision in (*OUTCOMES, "none") else "",
                        trace=trace, uploader=uploader,
@@ -58,6 +62,7 @@ def _home(request: Request, db: Session, q: str, decision: str, trace: str, uplo
     trace_ids = sorted({t for r in all_rows for t in r.traces} | set(TRACE_LABELS))
     uploaders = list(db.scalars(select(User).order_by(User.name)))
     return render(request, "registry.html", {
+        "queue": queue,
         "rows": rows, "n_total": len(all_rows) - (0 if show_withdrawn else n_withdrawn),
         "q": q, "decision": decision, "trace": trace,
         "uploader": uploader, "sort": sort, "order": order,
