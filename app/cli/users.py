@@ -1,7 +1,8 @@
 """The ``users`` sub-command of ``rawproof``: accounts, made by a lab admin.
 
     rawproof users add NAME [--admin] [--password PW] [--display-name TEXT]
-    rawproof users list | disable NAME | enable NAME | token NAME [--label L] [--revoke ID]
+    rawproof users list | disable NAME | enable NAME
+    rawproof users token NAME [--label L] [--may-create-tokens] [--revoke ID]
 """
 
 from __future__ import annotations
@@ -30,6 +31,9 @@ def _add_users(p: argparse.ArgumentParser) -> None:
     tok.add_argument("name")
     tok.add_argument("--label", default="")
     tok.add_argument("--revoke", type=int, metavar="ID", help="revoke token ID instead")
+    tok.add_argument("--may-create-tokens", action="store_true",
+                     help="the token may create further tokens (off by default: a token "
+                          "that leaks then cannot mint tokens that outlive its revocation)")
     for sp in sub.choices.values():
         add_common(sp, nested=True)
 
@@ -77,9 +81,13 @@ def _run_users(args: Any) -> int:
                     service.revoke_api_token(db, user, args.revoke, actor=user)
                     print(f"revoked token {args.revoke}")
                 else:
-                    row, token = service.create_api_token(db, user, args.label)
+                    row, token = service.create_api_token(
+                        db, user, args.label, may_create_tokens=args.may_create_tokens)
                     print(token)
-                    print(f"token id {row.id}; shown once, keep it secret", file=sys.stderr)
+                    scope = ("; it may create tokens" if row.may_create_tokens else
+                             "; it cannot create tokens")
+                    print(f"token id {row.id}; shown once, keep it secret{scope}",
+                          file=sys.stderr)
     except StoreError as exc:
         print(f"rawproof: {exc.message}", file=sys.stderr)
         return EXIT_BAD_INPUT

@@ -16,6 +16,7 @@ from starlette.responses import Response
 
 import app
 from app.store.models import OUTCOMES
+from app.store.passwords import MIN_LENGTH as PASSWORD_MIN_LENGTH
 from app.web import labels
 from app.web.paths import TEMPLATES_DIR
 from app.web.security import csrf_token
@@ -49,6 +50,8 @@ templates.env.globals.update(
     csrf_token=csrf_token,
     outcomes=OUTCOMES,
     version=app.__version__,
+    # the password policy's length (app.store.passwords), so the forms state the rule in force
+    password_min_length=PASSWORD_MIN_LENGTH,
     trace_label=labels.trace_label,
     status_label=labels.status_label,
     outcome_label=labels.outcome_label,
