@@ -691,10 +691,12 @@ def build_kspace_synthesis(report: dict[str, Any]) -> Figure | None:
 
 FIGURES["kspace_synthesis"] = FigureSpec(
     "kspace_synthesis", "Measured or computed k-space", ("kspace_synthesis",),
-    "Measured lines keep their own thermal noise: none is predicted from its neighbours "
-    "below the noise level, and a measured image's noise variance is even; lines far below "
-    "the noise, in a period, were filled by a parallel-imaging reconstruction, and a "
-    "patterned noise variance marks SENSE unfolding.",
+    "In raw k-space every line was measured and keeps its own thermal noise: none is "
+    "predicted from its neighbours below the noise level, and the image's noise variance "
+    "is even across the field of view. Lines far below the noise, in a period, were "
+    "computed by a parallel-imaging reconstruction, and a patterned noise variance marks "
+    "SENSE unfolding: such data are not the raw measurement, and undersampling them again "
+    "removes lines that were never acquired.",
     build_kspace_synthesis,
     lambda r: (_num_list(_ev(r, "kspace_synthesis").get("line_residual_over_noise")) is not None
                or _num_grid(_ev(r, "kspace_synthesis").get("noise_variance_map")) is not None))
