@@ -22,7 +22,7 @@ from collections import Counter, defaultdict
 from pathlib import Path
 from typing import Any
 
-from app.traces.calibration import fit_map
+from app.traces.calibration import fit_map, map_key
 from bench.validate import TRACE_IDS, load_set, run_cases
 
 CALIBRATION_SETS = ("insample", "dev")
@@ -55,24 +55,23 @@ def collect(rows: list[dict]) -> tuple[dict[str, dict[str, list[tuple[float, boo
 
 def fit_all(pairs: dict[str, dict[str, list[tuple[float, bool]]]]
             ) -> tuple[dict[str, dict], list[str]]:
-    """One map per trace (its most frequent statistic); messages for what was skipped."""
+    """One map per trace and decision statistic (a trace measures complex data and
+    magnitude images with different statistics), keyed ``"<trace>|<statistic>"``;
+    messages for what was skipped."""
     maps: dict[str, dict] = {}
     notes: list[str] = []
     for tid in TRACE_IDS:
         by_stat = pairs.get(tid) or {}
-        if not by_stat:
-            continue
-        stat, vals = max(by_stat.items(), key=lambda kv: len(kv[1]))
-        n_pos = sum(p for _, p in vals)
-        n_neg = len(vals) - n_pos
-        if min(n_pos, n_neg) < MIN_CASES:
-            notes.append(f"{tid}: only {n_pos} present and {n_neg} absent labelled values of "
-                         f"'{stat}' (< {MIN_CASES} of each): no map")
-            continue
-        m = fit_map([v for v, _ in vals], [p for _, p in vals], statistic=stat)
-        maps[tid] = m.to_json()
-        if len(by_stat) > 1:
-            notes.append(f"{tid}: several statistics seen ({sorted(by_stat)}); mapped '{stat}'")
+        for stat, vals in sorted(by_stat.items()):
+            n_pos = sum(p for _, p in vals)
+            n_neg = len(vals) - n_pos
+            if min(n_pos, n_neg) < MIN_CASES:
+                notes.append(f"{tid}: only {n_pos} present and {n_neg} absent labelled values "
+                             f"of '{stat}' (< {MIN_CASES} of each): no map, the analyser's "
+                             "own probability stays")
+                continue
+            m = fit_map([v for v, _ in vals], [p for _, p in vals], statistic=stat)
+            maps[map_key(tid, stat)] = m.to_json()
     return maps, notes
 
 

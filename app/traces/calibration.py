@@ -24,8 +24,8 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["CalibrationMap", "fit_isotonic", "fit_map", "probability_present",
-           "confidence_for", "load_maps"]
+__all__ = ["CalibrationMap", "confidence_for", "fit_isotonic", "fit_map", "load_maps",
+           "map_key", "probability_present"]
 
 MAPS_FILE = "calibration_maps.json"
 
@@ -171,6 +171,11 @@ def fit_map(values: Sequence[float], present: Sequence[bool], *, statistic: str 
                           int(v.size), int(y.sum()))
 
 
+def map_key(trace_id: str, statistic: str) -> str:
+    """The key of a trace's map for one decision statistic in the maps file."""
+    return f"{trace_id}|{statistic}"
+
+
 @functools.cache
 def load_maps() -> dict[str, CalibrationMap]:
     """The packaged maps, trace id -> map (empty when the file is absent or has none)."""
@@ -192,7 +197,10 @@ def probability_present(trace_id: str, statistic_value: float | None, *,
     """
     if statistic_value is None:
         return None
-    m = (load_maps() if maps is None else maps).get(trace_id)
+    table = load_maps() if maps is None else maps
+    m = table.get(map_key(trace_id, statistic)) if statistic is not None else None
+    if m is None:
+        m = table.get(trace_id)
     if m is None or (statistic is not None and m.statistic and statistic != m.statistic):
         return None
     p = m(float(statistic_value))
