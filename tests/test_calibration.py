@@ -91,12 +91,13 @@ def test_packaged_maps_load() -> None:
 def test_one_map_per_trace_and_statistic():
     """A trace that measures complex data and magnitude images with different statistics
     gets one map for each, looked up by the statistic the report states; a statistic with
-    no map of its own keeps the analyser's probability (None here). Truth built: below 0
-    never present, above 0 always (isotonic calibration, Zadrozny and Elkan 2002)."""
+    no map of its own keeps the analyser's probability (None here). Truth built: for "a"
+    present above 0, for "b" present only above 10 (isotonic calibration, Zadrozny and
+    Elkan 2002)."""
     from app.traces.calibration import fit_map, map_key, probability_present
 
     up = fit_map([-1.0] * 20 + [1.0] * 20, [False] * 20 + [True] * 20, statistic="a")
-    down = fit_map([-1.0] * 20 + [1.0] * 20, [True] * 20 + [False] * 20, statistic="b")
+    down = fit_map([1.0] * 20 + [20.0] * 20, [False] * 20 + [True] * 20, statistic="b")
     maps = {map_key("t", "a"): up, map_key("t", "b"): down}
     assert probability_present("t", 1.0, statistic="a", maps=maps) > 0.9
     assert probability_present("t", 1.0, statistic="b", maps=maps) < 0.1
