@@ -41,8 +41,12 @@ STATUS_WORDS: dict[str, str] = {
 }
 
 #: What a confidence number means, in one sentence, wherever one is shown.
-CONFIDENCE_MEANING = ("Confidence is the probability, calibrated on data rawproof was not "
-                      "tuned on, that this finding is right.")
+#: True to DEVELOPERS.md "Validation discipline": maps are fitted on the in-sample
+#: generator and the second simulator's development split; held-out and shelf only report.
+CONFIDENCE_MEANING = ("Confidence is the estimated probability that this finding is right: "
+                      "from a calibration map fitted on simulated development data, or from "
+                      "the analyser's own probability model (the report table says which); "
+                      "held-out simulations and real files only measure how well it holds.")
 
 #: The nominal acceleration the verdict panel quotes (the calculator's default).
 USUAL_ACCELERATION = 4.0

@@ -121,7 +121,9 @@ def test_typed_text_survives_the_end_of_the_analysis(server, browser, gate, data
     answer = page.inner_text("#answer")
     assert "Zero-filling" in answer and "not measured k-space" in answer
     assert "research aid, not a medical device" in answer
-    assert "the probability, calibrated on data rawproof was not tuned on" in answer
+    # what the confidence means, stated as DEVELOPERS.md "Validation discipline" has it
+    assert "estimated probability that this finding is right" in answer
+    assert "calibration map fitted on simulated development data" in answer
     page.screenshot(path=str(ARTIFACTS / "reviewer-02-verdict-panel-1366.png"), full_page=False)
     context.close()
 
