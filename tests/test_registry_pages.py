@@ -161,3 +161,41 @@ def test_kept_pages_stay_within_their_byte_budget() -> None:
     assert pagecache.kept_bytes() == 3 * len(page)
     assert list(pagecache._PAGES)[-1][1] == "/datasets/9"
     pagecache.clear()
+
+
+def test_inconclusive_traces_show_no_call_instead_of_a_probability(tmp_path) -> None:
+    """A trace that made no call has no probability of being right: its row says "no
+    call" instead of printing a confidence of 0.00, while definite calls keep their
+    number (shared/REPORT_CONTRACT.md: confidence is the probability that the status is
+    right). Truth built: two 6 x 6 frames of non-negative noise, below the spectral
+    analysers' 8-sample minimum (those traces are inconclusive), while magnitude_only
+    makes a definite call."""
+    import io
+
+    import numpy as np
+
+    from app.worker import run_inline
+
+    settings = dataclasses.replace(Settings(), data_dir=tmp_path / "data", database_url="")
+    migrate.upgrade(settings)
+    buf = io.BytesIO()
+    rng = np.random.default_rng(0)
+    np.save(buf, np.abs(rng.normal(size=(2, 6, 6))).astype(np.float32))
+    with session_scope(settings) as db:
+        ria = service.create_user(db, "ria", "ria-password-1")
+        ds = service.create_dataset(db, settings, uploader=ria, name="Tiny", source="x",
+                                    licence="CC0", description="", intended_use="",
+                                    files=[("tiny.npy", buf.getvalue())])
+        ds_id = ds.id
+    assert run_inline(settings) == 1
+    with TestClient(create_app(settings)) as client:
+        _signed_in(client)
+        html = client.get(f"/datasets/{ds_id}").text
+    rows = re.findall(r'<tr id="trace-(\w+)" class="s-(\w+)">(.*?)</tr>', html, re.S)
+    assert rows
+    for _, status, body in rows:
+        if status == "inconclusive":
+            assert "no call" in body
+        else:
+            assert re.search(r">\d\.\d\d<", body), body[:200]
+    assert any(s == "inconclusive" for _, s, _ in rows)
