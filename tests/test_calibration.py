@@ -102,3 +102,26 @@ def test_one_map_per_trace_and_statistic():
     assert probability_present("t", 1.0, statistic="a", maps=maps) > 0.9
     assert probability_present("t", 1.0, statistic="b", maps=maps) < 0.1
     assert probability_present("t", 1.0, statistic="c", maps=maps) is None
+
+
+def test_map_predicts_as_scikit_learn_isotonic_regression_inside_the_data():
+    """Between the two end blocks (which get the rule-of-succession estimate), the map
+    equals scikit-learn's IsotonicRegression(out_of_bounds="clip").predict at the fitted
+    values and at points inside and between blocks: constant over a block's range,
+    linear across gaps (scikit-learn is the outside reference)."""
+    from sklearn.isotonic import IsotonicRegression
+
+    from app.traces.calibration import fit_map
+
+    rng = np.random.default_rng(5)
+    x = np.sort(rng.uniform(-3, 3, 300))
+    y = rng.random(300) < 1 / (1 + np.exp(-2 * x))
+    cmap = fit_map(x, y)
+    ref = IsotonicRegression(out_of_bounds="clip").fit(x, y.astype(float))
+    # from the second block's start to the second-last block's end: the end blocks
+    # and the gaps next to them carry the smoothed end values
+    ends = sorted(set(cmap.x))
+    probe = np.concatenate([x, np.linspace(-3, 3, 97)])
+    inner = probe[(probe >= ends[2]) & (probe <= ends[-3])]
+    assert inner.size > 100
+    np.testing.assert_allclose([cmap(v) for v in inner], ref.predict(inner), atol=1e-12)

@@ -100,10 +100,10 @@ def fit_isotonic(x: Sequence[float], y: Sequence[float],
 class CalibrationMap:
     """A monotone map from a decision statistic to a probability, never 0 or 1.
 
-    ``x`` are the block centres of an isotonic fit, ``p`` the block frequencies
-    (Laplace-smoothed at the two end blocks), interpolated linearly between
-    centres and held constant beyond the ends; every output is clipped to
-    ``[eps, 1 - eps]``.
+    ``x`` are the ends of the blocks of an isotonic fit, ``p`` the block frequencies
+    (Laplace-smoothed at the two end blocks): constant over each block's range,
+    linear across the gaps between blocks, and held constant beyond the ends;
+    every output is clipped to ``[eps, 1 - eps]``.
     """
 
     statistic: str
@@ -159,7 +159,6 @@ def fit_map(values: Sequence[float], present: Sequence[bool], *, statistic: str 
     ok = np.isfinite(v)
     v, y = v[ok], y[ok]
     lo, hi, val, wt = fit_isotonic(v, y)
-    centres = (lo + hi) / 2.0
     p = val.copy()
     k_first, n_first = val[0] * wt[0], wt[0]
     k_last, n_last = val[-1] * wt[-1], wt[-1]
@@ -167,8 +166,17 @@ def fit_map(values: Sequence[float], present: Sequence[bool], *, statistic: str 
     p[-1] = (k_last + 1) / (n_last + 2)
     p = np.maximum.accumulate(p)  # smoothing the ends must not break monotonicity
     eps = float(min(1.0 / (n_first + 2), 1.0 / (n_last + 2)))
-    return CalibrationMap(statistic, tuple(map(float, centres)), tuple(map(float, p)), eps,
-                          int(v.size), int(y.sum()))
+    # each block holds its value over its whole range [lo, hi]; only the gaps between
+    # blocks are interpolated (as scikit-learn's IsotonicRegression predicts)
+    xs: list[float] = []
+    ps: list[float] = []
+    for a, b, q in zip(lo, hi, p, strict=True):
+        xs.append(float(a))
+        ps.append(float(q))
+        if b > a:
+            xs.append(float(b))
+            ps.append(float(q))
+    return CalibrationMap(statistic, tuple(xs), tuple(ps), eps, int(v.size), int(y.sum()))
 
 
 def map_key(trace_id: str, statistic: str) -> str:
