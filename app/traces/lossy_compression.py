@@ -265,8 +265,13 @@ DECLARED_VALUE = 65.0
 def decision_statistic(pix: PixelFinding, head: HeaderFinding) -> dict[str, Any]:
     """The number the call rests on, for calibration: DCT frequencies that show a JPEG
     quantiser step on the best 8 x 8 grid (0-64), or 65 when the header declares lossy
-    coding (a declaration is the stronger evidence; DICOM PS3.3 C.7.6.1.1.5)."""
-    measured = float(pix.grid.n_measured) if pix.grid is not None else None
+    coding (a declaration is the stronger evidence; DICOM PS3.3 C.7.6.1.1.5). Values the
+    pixels rule out without a grid (complex values, k-space, continuous grey levels on no
+    lattice) count as 0 quantised frequencies."""
+    if pix.grid is not None:
+        measured: float | None = float(pix.grid.n_measured)
+    else:
+        measured = 0.0 if pix.status == "absent" else None
     value = DECLARED_VALUE if head.lossy else measured
     return {"statistic": "quantised_dct_frequencies", "value": value,
             "threshold": float(MIN_MEASURED), "false_alarm_rate": None, "p_value": None}
