@@ -26,7 +26,7 @@ XFAIL: dict[tuple[str, str], str] = {
     **{(n, "resampling"): _RESAMPLED_DOWN for n in (
         "MR_small.dcm", "MR_small_bigendian.dcm", "MR_small_RLE.dcm",
         "MR_small_jpeg_ls_lossless.dcm", "MR_small_jp2klossless.dcm",
-        "dicomdirtests/MR1", "dicomdirtests/MR2")},
+        "dicomdirtests/MR1", "dicomdirtests/MR2", "dicomdirtests/MR700")},
     **{(n, "resampling"): _RESLICED for n in (
         "anatomical.nii", "functional.nii", "resampled_anat_moved.nii")},
     ("MR_small_jp2klossless.dcm", "lossy_compression"):
