@@ -152,3 +152,30 @@ def test_traces_without_declarations_are_measured():
     assert out["coil_combination"].status == "absent"
     assert out["coil_combination"].evidence["basis"] == "measured"
     assert warnings == []
+
+
+def test_calibrated_pixel_call_enters_as_a_likelihood_ratio():
+    """A calibrated pixel probability already holds the base rate of the data its map
+    was fitted on; combining it with a declaration divides that rate out (naive Bayes:
+    posterior log-odds = declaration log-odds + pixel log-odds - base-rate log-odds).
+    Built truth: a map whose base rate is 0.2 and a pixel call at exactly that rate
+    carries no evidence, so the result is the declaration's own strength."""
+    import math
+
+    from app.traces import calibration, declared
+    from app.traces.base import Trace
+
+    cmap = calibration.fit_map([0.0] * 80 + [1.0] * 20, [False] * 80 + [True] * 20,
+                               statistic="s")
+    base = (cmap.n_present + 1) / (cmap.n + 2)
+    dec = declared.Declaration("present", 0.8, "a rule", "PS3.3 test")
+    pixel = Trace("resampling", "absent", 1.0 - base, "pixels", {"rows": {"factor": 1.0},
+                  "cols": {"factor": 1.0}},
+                  {"decision": {"statistic": "s", "value": 0.5},
+                   "confidence_basis": "calibration map fitted on development data"})
+    import unittest.mock as mock
+
+    with mock.patch.object(calibration, "load_maps",
+                           lambda: {calibration.map_key("resampling", "s"): cmap}):
+        out = declared.combine(dec, pixel)
+    assert math.isclose(out.evidence["p_present"], 0.8, abs_tol=1e-3)

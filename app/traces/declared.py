@@ -21,8 +21,10 @@ evidence about the same yes/no question, starting from even odds:
 ``logit P(present) = logit P_declared + logit P_measured`` (naive Bayes), where
 ``P_declared`` is how strongly the rule's attribute implies the step (the
 ``strength`` of each rule below, a stated prior, not a fitted value) and
-``P_measured`` is the analyser's confidence turned into a probability of
-``present`` (0.5 when it was inconclusive). The status is the side with
+``P_measured`` is the analyser's calibrated confidence turned into a probability
+of ``present`` (0.5 when it was inconclusive), with the base rate of the data its
+calibration map was fitted on divided out (so that only the pixels' likelihood
+ratio is added). The status is the side with
 ``P >= 0.65``; between 0.35 and 0.65 the call is ``inconclusive``.
 
 Before any of this, a cheap signal statistic (:func:`signal_statistic`) checks
@@ -325,6 +327,23 @@ def _p_present(trace: Trace) -> float:
     return 0.5
 
 
+def _base_rate(trace: Trace) -> float:
+    """Share of present cases in the data the trace's calibration map was fitted on
+    (0.5, even odds, when its confidence did not come from a map)."""
+    from app.traces import calibration
+
+    dec = trace.evidence.get("decision") if isinstance(trace.evidence, dict) else None
+    if not isinstance(dec, dict) or not str(trace.evidence.get("confidence_basis", "")
+                                           ).startswith("calibration map"):
+        return 0.5
+    maps = calibration.load_maps()
+    m = maps.get(calibration.map_key(trace.id, str(dec.get("statistic", "")))) or \
+        maps.get(trace.id)
+    if m is None or m.n <= 0:
+        return 0.5
+    return (m.n_present + 1) / (m.n + 2)
+
+
 def combine(declaration: Declaration, trace: Trace) -> Trace:
     """One trace's call from its declaration and its measured call (see module docstring).
 
@@ -341,7 +360,11 @@ def combine(declaration: Declaration, trace: Trace) -> Trace:
     """
     p_decl = declaration.strength if declaration.status == "present" else 1 - declaration.strength
     p_meas = _p_present(trace)
-    p = 1.0 / (1.0 + math.exp(-(_logit(p_decl) + _logit(p_meas))))
+    # a calibrated pixel probability carries the base rate of the development data it
+    # was fitted on: divide it out, so that only the pixels' likelihood ratio is added
+    # to the declaration's odds (naive Bayes from even odds)
+    base_logit = _logit(_base_rate(trace)) if trace.status != "inconclusive" else 0.0
+    p = 1.0 / (1.0 + math.exp(-(_logit(p_decl) + _logit(p_meas) - base_logit)))
     status = "present" if p >= DECIDE else "absent" if p <= 1 - DECIDE else "inconclusive"
     measured_said = trace.status
     if measured_said == "inconclusive":
@@ -357,6 +380,9 @@ def combine(declaration: Declaration, trace: Trace) -> Trace:
                             "value": declaration.value}
     evidence["measured"] = {"status": trace.status, "confidence": round(trace.confidence, 4)}
     evidence["p_present"] = round(p, 4)
+    evidence["confidence_basis"] = ("the header's declaration combined with the "
+                                    + str(trace.evidence.get("confidence_basis",
+                                                             "analyser's own probability")))
     estimates = dict(trace.estimates)
     origin = trace.origin
     if status == "present" and trace.status != "present":

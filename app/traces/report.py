@@ -174,12 +174,15 @@ def analyse_volume(
                           max_frames=max_frames, options=options, progress=said)
     traces_obj, seconds, steps = result.traces, result.seconds, result.steps
     facts = steps["header"]
-    # header and pixels meet in each trace; blank inputs become inconclusive
+    # the pixel calls get their calibrated probabilities first; then header and pixels
+    # meet in each trace (the reconciler weighs the calibrated pixel call against what
+    # the header declares); blank inputs become inconclusive
+    traces_obj = {tid: calibrated(t) for tid, t in traces_obj.items()}
     traces_obj, joined = reconcile(traces_obj, facts, volume)
     header = ({"declared": facts.declared, "notes": facts.notes}
               if isinstance(facts, HeaderFacts) else
               {"declared": {}, "notes": [f"header could not be interpreted: {facts}"]})
-    traces = {tid: _jsonable(calibrated(t).to_dict()) for tid, t in traces_obj.items()}
+    traces = {tid: _jsonable(t.to_dict()) for tid, t in traces_obj.items()}
     timing = {k: v for k, v in seconds.items()}
     warnings: list[str] = list(result.notes) + joined
     report = {
