@@ -1,38 +1,16 @@
-"""Zero-filling: the central region of k-space that holds acquired data, per axis.
+"""Zero-filling: the ``zero_filling`` trace from the measured k-space support.
 
 Interpolation by zero-filling pads the acquired k-space with zeros before the
-inverse FFT. A complex image keeps exact zeros outside the acquired region; a
-magnitude or root-sum-of-squares image does not, because the magnitude step is
-nonlinear and spreads a low, structured echo (up to twice the acquired width)
-outside it. Either way the mean log-power of the spectrum falls in a sharp step
-at the edge of the acquired region and stays below the in-band level beyond it.
-
-Method: the frame-averaged log-power map (one FFT pass, :mod:`app.traces.spectrum`)
-is read line by line along the axis, over a band of the other axis's frequencies
-inside its acquired region that avoids its DC line (where the object's straight
-edges put ripples), and the lines are combined by their median. Each outward side
-of that profile is scored for a sustained level drop: the median level after a
-candidate edge against the median before it, less the decay that a line fitted
-before it predicts (a smooth decay scores low, a ripple that recovers scores
-low). An edge must also show in the inner and the outer half of the band at the
-same place (the edge of zero-filled k-space is a straight line in the map, a ring
-of the object's spectrum is not) and, when its drop is below 9 dB (what smooth
-roll-offs of the object reach), at the same distance within 2 samples or 4 % in
-both halves (a ring sits closer to DC in the outer half). It is placed where the
-profile has fallen
-30 % of the drop, with sub-sample interpolation. The support fraction is the width
-between the two edges over the axis size, the padding factor its inverse. A second
-edge at twice the distance (the end of the magnitude echo) is recognised as such.
-Magnitude images broaden the visible support by the bandwidth of the object's
-phase (about a sample per side); complex data give it to the sample.
+inverse FFT. The shared ``support`` step (:mod:`app.traces.support`, where the
+method and its tests against the thermal noise floor are described) measures the
+acquired region per axis; this analyser turns it into the contract's estimates
+(support fraction and padding factor per axis), the call and its evidence.
 
 References
 ----------
 .. [1] Bernstein, M. A., Fain, S. B. and Riederer, S. J. "Effect of windowing and
    zero-filled reconstruction of MRI data on spatial resolution and acquisition
    strategy", J. Magn. Reson. Imaging 14(3):270-280, 2001.
-.. [2] Canny, J. "A computational approach to edge detection", IEEE Trans. PAMI
-   8(6):679-698, 1986 (step detection against a local model).
 """
 
 from __future__ import annotations
