@@ -446,7 +446,7 @@ def plain_answer(report: dict[str, Any], *, effective: dict[str, Any] | None = N
     if found:
         names = [trace_name(f["trace_id"]) for f in found]
         listed = names[0] if len(names) == 1 else ", ".join(names[:-1]) + " and " + names[-1]
-        headline = f"Processed: before distribution these data went through {listed}."
+        headline = f"Processed: these data went through {listed} before they were distributed."
     elif verdict == "raw-like":
         headline = "Raw-like: no trace of processing was found" + (
             "; what was found is a property of the acquisition." if acq else ".")
