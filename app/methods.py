@@ -55,7 +55,7 @@ USUAL_ACCELERATION = 4.0
 TRACE_NAMES: dict[str, str] = {
     "zero_filling": "zero-filled k-space interpolation",
     "magnitude_only": "magnitude-only values",
-    "coil_combination": "root-sum-of-squares coil combination",
+    "coil_combination": "coil combination into magnitude images",
     "background_masking": "background masking",
     "lossy_compression": "lossy (JPEG-type) compression",
     "intensity_quantization": "intensity quantisation",
@@ -170,6 +170,13 @@ def _describe(tid: str, trace: dict[str, Any], shape: list[int]) -> str:
             s += f" with about {_g(L, 2)} effective channels"
         if sigma is not None:
             s += f" (noise standard deviation {_g(sigma)} in stored units)"
+        combination = est.get("combination")
+        if combination == "linear":
+            return (s + ", with a noise level that varies across the image, as a linear "
+                    "combination of receive channels (adaptive, Roemer or SENSE weights) "
+                    "leaves")
+        if combination == "single":
+            return s + ", as the magnitude of a single receive channel leaves"
         return s + ", as left by root-sum-of-squares combination of multi-coil images"
     if tid == "background_masking":
         f = _num(est.get("zero_background_fraction"))

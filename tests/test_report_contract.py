@@ -309,3 +309,21 @@ def test_confidence_is_the_calibration_maps_probability(monkeypatch):
     assert wrong.confidence < 0.05
     bare = calibrated(base.Trace("t", "present", 0.42, "x", {}, {}))
     assert bare.confidence == 0.42 and bare.evidence["confidence_basis"].startswith("analyser")
+
+
+def test_a_call_the_map_says_is_more_often_wrong_becomes_inconclusive(monkeypatch):
+    """A present call at a statistic where the development data were present in only 20 %
+    of cases is not a call rawproof can make: it is reported inconclusive with the reason,
+    the analyser's call kept in the evidence (isotonic calibration, Zadrozny and Elkan
+    2002; built truth: 20 % present at the statistic value 1)."""
+    from app.traces import calibration
+    from app.traces.report import calibrated
+
+    cmap = calibration.fit_map([1.0] * 50, [True] * 10 + [False] * 40, statistic="s")
+    monkeypatch.setattr(calibration, "load_maps", lambda: {"t": cmap})
+    t = calibrated(base.Trace("t", "present", 0.9, "found it", {},
+                              {"decision": {"statistic": "s", "value": 1.0}}))
+    # the single block gets the rule of succession: (10 + 1) / (50 + 2) = 21 %
+    assert t.status == "inconclusive" and "21 %" in t.summary
+    assert t.evidence["uncalibrated_call"]["status"] == "present"
+    assert t.confidence == pytest.approx(min(cmap(1.0), 1 - cmap(1.0)))

@@ -103,7 +103,9 @@ def calibrated(trace: base.Trace) -> base.Trace:
     in-sample generator and the second simulator's development split only), the
     confidence is the map's probability that the reported status is right; else it
     stays the analyser's own model-based probability. ``evidence["confidence_basis"]``
-    says which.
+    says which. A call whose calibrated probability of being right is below one half
+    becomes ``inconclusive`` with that reason (the analyser's call is kept in
+    ``evidence["uncalibrated_call"]``).
     """
     dec = trace.evidence.get("decision") if isinstance(trace.evidence, dict) else None
     value = dec.get("value") if isinstance(dec, dict) else None
@@ -111,8 +113,23 @@ def calibrated(trace: base.Trace) -> base.Trace:
     if value is not None and trace.status in ("present", "absent"):
         p = calibration.probability_present(trace.id, value, statistic=dec.get("statistic"))
         if p is not None:
-            trace.confidence = p if trace.status == "present" else 1.0 - p
+            right = p if trace.status == "present" else 1.0 - p
             basis = "calibration map fitted on development data"
+            if right < 0.5:
+                # a call that the development data say is more often wrong than right is
+                # not one rawproof can make honestly: it is reported as not decided
+                trace.evidence["uncalibrated_call"] = {"status": trace.status,
+                                                       "confidence": trace.confidence}
+                trace.summary = (
+                    f"Not decided: the analyser's measurement points to {trace.status}, "
+                    f"but on the development data a statistic of this size went with "
+                    f"{trace.status} in only {100 * right:.0f} % of cases. "
+                    f"(Analyser: {trace.summary})")
+                trace.status = "inconclusive"
+                trace.origin = "processing"
+                trace.confidence = min(right, 1.0 - right)
+            else:
+                trace.confidence = right
     trace.evidence["confidence_basis"] = basis
     return trace
 
