@@ -454,14 +454,17 @@ def complex_axis_support(spec: sp.Spectrum, axis: int, noise: Any = None, *,
         sides[side] = {"extent": len(prof) - run, "run": run, "tail": tail, "p": p,
                        "threshold": thr, "bins": m}
     found_sides = [s for s in sides.values() if s["run"] and s["p"] <= alpha]
-    # the decision statistic: how far (dB) the emptiest side lies below the floor
-    worst = min(sides.values(), key=lambda s: s["p"])
-    value = float(10 * np.log10(share * ref / max(worst["tail"], 1e-300))) if ref > 0 else 0.0
-    threshold = float(10 * np.log10(share * ref / worst["threshold"])) if \
-        worst["threshold"] > 0 else float("inf")
-    decision = {"statistic": "empty band below thermal noise floor (dB)",
+    # the decision statistic: zero-filling pads both sides, so the call rests on the
+    # less empty side (an intersection-union test: its p-value is the larger one); a
+    # single empty side is partial Fourier, the partial_fourier trace's finding
+    weaker = max(sides.values(), key=lambda s: s["p"])
+    value = float(10 * np.log10(share * ref / max(weaker["tail"], 1e-300))) if ref > 0 \
+        else 0.0
+    threshold = float(10 * np.log10(share * ref / weaker["threshold"])) if \
+        weaker["threshold"] > 0 else float("inf")
+    decision = {"statistic": "emptier-than-noise band on both sides (dB)",
                 "value": value, "threshold": threshold, "false_alarm_rate": FALSE_ALARM_RATE,
-                "p_value": min(1.0, 4.0 * worst["p"]),
+                "p_value": min(1.0, 4.0 * weaker["p"]),
                 "reference": "background noise" if usable else "weakest in-band line"}
     xp, xn = sides["pos"]["extent"] + 0.5, sides["neg"]["extent"] + 0.5
     if not found_sides:
