@@ -9,6 +9,8 @@ densely than its nominal rate is a fact of the trade (common practice, no source
 
 from __future__ import annotations
 
+import pytest
+
 from app.methods import TRACE_NAMES, methods_statement
 
 
@@ -87,6 +89,7 @@ def _open_files() -> list[tuple[str, str]]:
     ]
 
 
+@pytest.mark.slow
 def test_real_open_files_statement_and_figures() -> None:
     """On open test files that packages ship (pydicom's bundled JPGExtended.dcm and
     JPEG-lossy.dcm, nibabel's tests/data/anatomical.nii), the statement names every

@@ -124,6 +124,7 @@ def test_zero_fill_is_an_acquisition_property():
     assert trace.confidence == pytest.approx(1.0 - d["p_value"])
 
 
+@pytest.mark.slow
 def test_raw_complex_images_false_alarm_rate():
     """Raw complex coil images (truth: full k-space), 20 sizes / coil counts / SNRs:
     partial-Fourier calls within the binomial 99.9 % bound of the nominal 0.1 %
@@ -201,6 +202,7 @@ def test_phase_constrained_fill_is_found(method, frac):
     assert d["p_value"] <= d["false_alarm_rate"]
 
 
+@pytest.mark.slow
 def test_resynthesis_null_law_on_white_noise():
     """Pure complex white noise (truth: nothing filled, every column air): the residual
     over noise averages at least 1 and the test's p-values are conservative: at most the

@@ -113,6 +113,7 @@ def test_withdraw_edit_and_duplicates_on_the_page(server) -> None:
     assert uma.get(f"/datasets/{first}").status_code == 200
 
 
+@pytest.mark.slow
 def test_analyse_json_to_a_file_prints_no_report(tmp_path) -> None:
     """Issue 22 item 7: ``analyse --json -o FILE`` writes the report to FILE only."""
     scan = tmp_path / "s.npy"
@@ -130,6 +131,7 @@ def test_analyse_json_to_a_file_prints_no_report(tmp_path) -> None:
     assert plain_answer(report, effective=usual_effective(report))["text"] in summary
 
 
+@pytest.mark.slow
 def test_users_add_without_a_terminal_says_what_to_do(tmp_path) -> None:
     """Issue 22 item 7: no terminal and no --password: a message and exit code 2."""
     p = subprocess.run([*RAWPROOF, "users", "add", "zed", "--data", str(tmp_path)],

@@ -8,6 +8,8 @@ import pty
 import select
 import subprocess
 
+import pytest
+
 from app.config import Settings
 from app.store import service
 from app.store.db import session_scope
@@ -50,6 +52,7 @@ def _run(*args: str, stdin: str | None = None) -> subprocess.CompletedProcess:
                           timeout=120, cwd=REPO)
 
 
+@pytest.mark.slow
 def test_users_add_prompts_or_takes_a_flag_and_the_data_flag_goes_anywhere(tmp_path) -> None:
     data = tmp_path / "lab"
     # at a terminal (a pseudo-terminal here) the password is asked twice
