@@ -48,6 +48,7 @@ from app.traces import pf_fill
 from app.traces import spectrum as sp
 from app.traces import support as zf
 from app.traces.base import Trace, register
+from app.traces.rounding import round_record
 
 TRACE_ID = "partial_fourier"
 #: complex data: fractions below this are called partial Fourier
@@ -382,12 +383,6 @@ def _fill_test_evidence(t: pf_fill.FillTest | None) -> dict | None:
             "power": sp.round_sig(t.power)}
 
 
-def _rounded(d: dict | None) -> dict | None:
-    if d is None:
-        return None
-    return {k: (sp.round_sig(v) if isinstance(v, float) else v) for k, v in d.items()}
-
-
 def trace_from(spec: sp.Spectrum, support: dict[str, zf.AxisSupport],
                kspace: np.ndarray | None = None) -> Trace:
     """Build the ``partial_fourier`` trace from a spectrum."""
@@ -407,8 +402,8 @@ def trace_from(spec: sp.Spectrum, support: dict[str, zf.AxisSupport],
         "method": {ax: a.method for ax, a in axes.items()},
         "score_db": {ax: sp.round_sig(a.score_db) if np.isfinite(a.score_db) else None
                      for ax, a in axes.items()},
-        "decisions": {ax: _rounded(a.decision) for ax, a in axes.items()},
-        "decision": _rounded(decision),
+        "decisions": {ax: round_record(a.decision) for ax, a in axes.items()},
+        "decision": round_record(decision),
         "resynthesis": {ax: _fill_test_evidence(a.fill_test) for ax, a in axes.items()},
     }
     p = float(decision["p_value"]) if decision else 1.0

@@ -26,7 +26,7 @@ import numpy as np
 import scipy.fft as sfft
 
 from app.io.volume import Volume
-from app.traces.rounding import round_sig  # noqa: F401 - evidence helpers below use it
+from app.traces.rounding import round_sig
 
 _TINY = 1e-30
 #: at most this many columns go into the through-plane (slice-axis) profile
