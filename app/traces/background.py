@@ -6,18 +6,16 @@ found here once, on a bounded, evenly spaced subset of frames, and shared
 through the analysis plan's ``background`` step.
 
 K-space volumes are first brought to the image domain (centred orthonormal
-inverse FFT of the analysed frames), so a fake k-space made from processed
-images shows the processing. Method, per frame: the magnitude image
-(root-sum-of-squares over channels) is smoothed with a box filter; a
-threshold is chosen from the histogram of the smoothed image (Otsu's
-between-class variance, lowered to a few times the air level); the low region
-is opened (morphology), only its connected parts that touch the image border are kept
-(air surrounds the object; dark tissue inside it does not touch the border),
-and the result is eroded away from the object's edge. Blocks of the background
-whose mean power stands far above the rest (ghosting bands, ringing, stray
-signal) are dropped. A background that is not flat (its smoothed values vary
-like tissue, not like noise) is refused and the four image corners are tried
-instead.
+inverse FFT of the analysed frames, :mod:`app.traces.image_domain`), so a fake
+k-space made from processed images shows the processing. Each analysed frame's
+magnitude image (root-sum-of-squares over channels) is segmented by
+:func:`app.traces.background_mask.frame_background` (a histogram threshold,
+morphology, and checks that the region is flat like noise and darker than the
+object); the samples of all frames are pooled here, and :func:`constant_share`
+reads whether that background is one constant value (masking) rather than noise.
+
+This module also re-exports the per-frame segmentation, the image-domain frames
+and the exact lattice step (:mod:`app.traces.grey_lattice`) under their old names.
 
 References
 ----------
@@ -34,11 +32,37 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-import scipy.fft as sfft
-from scipy import ndimage
 
 from app.io.volume import Volume
+from app.traces.background_mask import frame_background, otsu_threshold
 from app.traces.context import evenly_spaced
+from app.traces.grey_lattice import LATTICE_TOL, lattice_step
+from app.traces.image_domain import image_blocks, kspace_is_centred
+
+__all__ = [
+    "FFT_TOLERANCE",
+    "FLATTENED_SHARE",
+    "FRAME_SHARE",
+    "LATTICE_TOL",
+    "MASKED_SHARE",
+    "MAX_FRAMES",
+    "MAX_PIXELS",
+    "MAX_SAMPLES_PER_FRAME",
+    "MIN_FRAMES",
+    "MIN_SAMPLES",
+    "PURE_SHARE",
+    "Background",
+    "ConstantShare",
+    "analysed_frames",
+    "background_step",
+    "constant_share",
+    "find_background",
+    "frame_background",
+    "image_blocks",
+    "kspace_is_centred",
+    "lattice_step",
+    "otsu_threshold",
+]
 
 MAX_FRAMES = 16
 #: at most this share of the frames (but at least MIN_FRAMES) is examined
@@ -46,13 +70,8 @@ FRAME_SHARE = 0.25
 MIN_FRAMES = 8
 FFT_TOLERANCE = 1e-5
 MAX_PIXELS = 1_500_000
-_WORK_SIDE = 128
 MAX_SAMPLES_PER_FRAME = 32768
 MIN_SAMPLES = 500
-_FLATNESS_LIMIT = 0.6
-_CONTRAST_LIMIT = 0.4
-_GHOST_Z = 3.5
-_BLOCK = 8
 
 
 @dataclass
@@ -120,286 +139,10 @@ class Background:
         return self.n_background / self.n_pixels if self.n_pixels else 0.0
 
 
-def otsu_threshold(values: np.ndarray, bins: int = 256) -> float:
-    """Otsu's threshold: the cut that maximises the between-class variance.
-
-    References
-    ----------
-    N. Otsu, IEEE Trans. SMC 9(1):62-66, 1979.
-    """
-    v = np.asarray(values, dtype=np.float64).ravel()
-    v = v[np.isfinite(v)]
-    if v.size == 0:
-        return 0.0
-    lo, hi = float(v.min()), float(v.max())
-    if hi <= lo:
-        return hi
-    counts, edges = np.histogram(v, bins=bins, range=(lo, hi))
-    centres = 0.5 * (edges[:-1] + edges[1:])
-    w0 = np.cumsum(counts).astype(np.float64)
-    w1 = w0[-1] - w0
-    s0 = np.cumsum(counts * centres)
-    mu0 = s0 / np.maximum(w0, 1)
-    mu1 = (s0[-1] - s0) / np.maximum(w1, 1)
-    between = w0 * w1 * (mu0 - mu1) ** 2
-    k = int(np.argmax(between[:-1]))
-    return float(edges[k + 1])
-
-
-def _box_size(shape: tuple[int, int]) -> int:
-    k = max(5, min(shape) // 24)
-    return k if k % 2 else k + 1
-
-
-def _flatness(m: np.ndarray, sm: np.ndarray, mask: np.ndarray) -> float:
-    """Spread of the box-smoothed background relative to the raw one.
-
-    White noise gives about ``1/k`` for a ``k x k`` box (more for spatially
-    correlated noise); tissue structure gives values near 1. A constant
-    background gives 0.
-    """
-    raw = m[mask]
-    if raw.size < 16:
-        return 1.0
-    s_raw = float(np.std(raw))
-    if s_raw == 0:
-        return 0.0
-    return float(np.std(sm[mask]) / s_raw)
-
-
-def _acceptable(m: np.ndarray, sm: np.ndarray, mask: np.ndarray, obj_level: float) -> bool:
-    """Whether a candidate background is large, flat like noise and darker than the object.
-
-    Air is far darker than the object: its median must stay below
-    :data:`_CONTRAST_LIMIT` of the object's median (dark tissue of a cropped
-    image with no air does not).
-    """
-    if mask.sum() < 64:
-        return False
-    if _flatness(m, sm, mask) >= _FLATNESS_LIMIT:
-        return False
-    return float(np.median(m[mask])) <= _CONTRAST_LIMIT * obj_level
-
-
-def _drop_bright_blocks(m2: np.ndarray, mask: np.ndarray) -> tuple[np.ndarray, int]:
-    """Drop background blocks whose mean power stands far above the others (ghosts)."""
-    rows, cols = mask.shape
-    by, bx = -(-rows // _BLOCK), -(-cols // _BLOCK)
-    pad = ((0, by * _BLOCK - rows), (0, bx * _BLOCK - cols))
-    mk = np.pad(mask, pad).reshape(by, _BLOCK, bx, _BLOCK)
-    pw = np.pad(np.where(mask, m2, 0.0), pad).reshape(by, _BLOCK, bx, _BLOCK)
-    cnt = mk.sum(axis=(1, 3))
-    tot = pw.sum(axis=(1, 3))
-    ok = cnt >= _BLOCK * _BLOCK // 4
-    if ok.sum() < 8:
-        return mask, 0
-    mean = tot[ok] / cnt[ok]
-    if np.all(mean <= 0):
-        return mask, 0
-    logm = np.log(np.maximum(mean, np.max(mean) * 1e-12))
-    med = float(np.median(logm))
-    mad = float(np.median(np.abs(logm - med))) * 1.4826
-    mad = max(mad, 0.05)
-    bad_vals = (logm - med) / mad > _GHOST_Z
-    bad_vals &= (logm - med) > np.log(1.5)
-    if not bad_vals.any():
-        return mask, 0
-    bad = np.zeros_like(ok)
-    bad[ok] = bad_vals
-    bad_px = np.repeat(np.repeat(bad, _BLOCK, axis=0), _BLOCK, axis=1)[:rows, :cols]
-    return mask & ~bad_px, int(bad_vals.sum())
-
-
-def _threshold(sm: np.ndarray) -> float:
-    """A cut below the object: Otsu's threshold, lowered to a few times the air level.
-
-    Otsu's cut separates the darkest class, which under strong coil shading can
-    hold dark parts of the object; the air forms the lowest mode of the smoothed
-    histogram, and smoothed noise stays well within 2.5 times that level (the
-    relative spread of a box mean of noise is about ``0.5 / k``). A constant
-    background (masking, no noise) is cut just above that constant.
-    """
-    v = sm.ravel()
-    if v.size == 0:
-        return 0.0
-    lo, hi = float(v.min()), float(v.max())
-    if hi <= lo:
-        return hi
-    t = otsu_threshold(v)
-    below = v[v < t]
-    if below.size < 64:
-        return t
-    try:
-        # float64 edges: a float32 range spanning many decades (a flipped exponent
-        # bit) leaves no room for 64 distinct float32 edges in the low part
-        counts, edges = np.histogram(below.astype(np.float64), bins=64)
-    except ValueError:
-        return t
-    j = int(np.argmax(counts))
-    mode = 0.5 * (edges[j] + edges[j + 1])
-    return float(min(t, 2.5 * mode)) if mode > 0 else t
-
-
-def _far_half(mask: np.ndarray) -> np.ndarray:
-    """Keep the half of the background farthest from the object.
-
-    Ringing and blurring of the object's edge reach into the air and decay
-    slowly with distance; the image border is not an edge here.
-    """
-    if mask.sum() < 256:
-        return mask
-    d = ndimage.distance_transform_edt(np.pad(mask, 1, constant_values=True))[1:-1, 1:-1]
-    cut = float(np.median(d[mask]))
-    return mask & (d >= cut)
-
-
-def _corner_mask(shape: tuple[int, int]) -> np.ndarray:
-    rows, cols = shape
-    h, w = max(4, rows // 8), max(4, cols // 8)
-    mask = np.zeros(shape, dtype=bool)
-    mask[:h, :w] = mask[:h, -w:] = mask[-h:, :w] = mask[-h:, -w:] = True
-    return mask
-
-
-def frame_background(m: np.ndarray) -> tuple[np.ndarray, str, int, float]:
-    """Find the background of one magnitude frame.
-
-    When no background is found and a region of one constant value (the
-    frame's minimum) covers part of the frame, that region is set aside like
-    non-finite pixels (zeros outside a resampled field of view) and the noisy
-    air around it is looked for instead.
-
-    Parameters
-    ----------
-    m : ndarray
-        2D magnitude image (non-finite pixels are never background).
-
-    Returns
-    -------
-    mask : ndarray of bool
-    method : {"threshold", "corners", "none"}
-    excluded_blocks : int
-    threshold : float
-        The histogram threshold on the smoothed image.
-
-    References
-    ----------
-    Otsu 1979 (threshold); Gudbjartsson and Patz 1995 (background as the
-    signal-free region).
-    """
-    found = _frame_background_any(m)
-    if found[1] != "none":
-        return found
-    fin = np.isfinite(m)
-    if not fin.any():
-        return found
-    const = fin & (m == np.min(m[fin]))
-    share = float(const.sum() / fin.sum())
-    if not 0.02 <= share <= 0.9:
-        return found
-    retry = _frame_background_any(np.where(const, np.nan, m))
-    return retry if retry[1] != "none" else found
-
-
-def _frame_background_any(m: np.ndarray) -> tuple[np.ndarray, str, int, float]:
-    factor = min(m.shape) // _WORK_SIDE
-    if factor >= 2:
-        return _frame_background_reduced(m, factor)
-    return _frame_background_full(m)
-
-
-def _frame_background_full(m: np.ndarray) -> tuple[np.ndarray, str, int, float]:
-    finite = np.isfinite(m)
-    m = np.where(finite, m, 0.0).astype(np.float64, copy=False)
-    k = _box_size(m.shape)
-    sm = ndimage.uniform_filter(m, size=k, mode="nearest")
-    t = _threshold(sm[finite])
-    low = (sm <= t) & finite
-    low = ndimage.binary_opening(low, structure=np.ones((3, 3), bool))
-    lab, n = ndimage.label(low)
-    mask = np.zeros(m.shape, dtype=bool)
-    if n:
-        border = np.unique(np.concatenate([lab[0], lab[-1], lab[:, 0], lab[:, -1]]))
-        border = border[border > 0]
-        mask = np.isin(lab, border)
-    erode = max(2, k // 2)
-    mask = ndimage.binary_erosion(mask, iterations=erode, border_value=1) & finite
-    mask = _far_half(mask)
-    m2 = m * m
-    excluded = 0
-    obj = finite & (sm > t)
-    obj_level = float(np.median(m[obj])) if obj.any() else float("inf")
-    kept, excluded = _drop_bright_blocks(m2, mask) if mask.sum() >= 64 else (mask, 0)
-    if _acceptable(m, sm, kept, obj_level):
-        return kept, "threshold", excluded, t
-    corners = _corner_mask(m.shape) & finite & (sm <= t)
-    if _acceptable(m, sm, corners, obj_level):
-        return corners, "corners", 0, t
-    return np.zeros(m.shape, dtype=bool), "none", 0, t
-
-
-def _frame_background_reduced(m: np.ndarray, factor: int) -> tuple[np.ndarray, str, int, float]:
-    """:func:`frame_background` on a ``factor x factor`` block mean, mask expanded back.
-
-    Large frames are segmented at a reduced size to bound the cost; a block
-    containing a non-finite pixel is not background.
-    """
-    rows, cols = m.shape
-    ny, nx = rows // factor, cols // factor
-    crop = m[:ny * factor, :nx * factor].astype(np.float64)
-    small = crop.reshape(ny, factor, nx, factor).mean(axis=(1, 3))
-    mask_s, method, excluded, t = _frame_background_full(small)
-    mask = np.zeros((rows, cols), dtype=bool)
-    mask[:ny * factor, :nx * factor] = np.repeat(np.repeat(mask_s, factor, 0), factor, 1)
-    return mask & np.isfinite(m), method, excluded, t
-
-
 def analysed_frames(n_frames: int, base: np.ndarray | None = None,
                     max_frames: int = MAX_FRAMES) -> np.ndarray:
     """At most ``max_frames`` evenly spaced frame indices (from ``base`` if given)."""
     return evenly_spaced(np.arange(n_frames) if base is None else base, max_frames)
-
-
-def kspace_is_centred(block: np.ndarray) -> bool:
-    """Whether k-space has its largest power near the centre (DC at ``n // 2``).
-
-    Common practice, no source: raw files store k-space either centred or with
-    DC at index 0.
-    """
-    p = np.abs(np.asarray(block).reshape(-1, *block.shape[-2:])) ** 2
-    mean = p.mean(axis=0)
-    rows, cols = mean.shape
-    r, c = np.unravel_index(int(np.argmax(mean)), mean.shape)
-    to_centre = abs(r - rows // 2) + abs(c - cols // 2)
-    to_corner = min(r, rows - r) + min(c, cols - c)
-    return bool(to_centre <= to_corner)
-
-
-def image_blocks(volume: Volume, indices: np.ndarray, *, batch: int = 8,
-                 workers: int = 2) -> Any:
-    """Yield ``(frame_indices, block)`` in the image domain.
-
-    Image volumes are passed through; k-space volumes are transformed by a
-    centred orthonormal inverse 2D FFT (noise sigma is kept), with DC taken at
-    the centre or at index 0, whichever holds the peak power.
-
-    References
-    ----------
-    J. W. Cooley and J. W. Tukey, Math. Comp. 19:297-301, 1965 (the FFT).
-    """
-    centred = None
-    for idx, block in volume.iter_slices(batch, indices=indices):
-        if volume.domain != "kspace":
-            yield idx, block
-            continue
-        k = np.nan_to_num(np.asarray(block).astype(np.complex64, copy=False))
-        if centred is None:
-            centred = kspace_is_centred(k)
-        if centred:
-            k = sfft.ifftshift(k, axes=(-2, -1))
-        img = sfft.fftshift(sfft.ifft2(k, axes=(-2, -1), norm="ortho", workers=workers),
-                            axes=(-2, -1))
-        yield idx, img.astype(np.complex64, copy=False)
 
 
 def _magnitude(block: np.ndarray, multi: bool) -> np.ndarray:
@@ -543,37 +286,6 @@ def background_step(volume: Volume, scope: Any, notes: Any) -> Background:
     for note in bg.notes:
         notes.add(note)
     return bg
-
-
-LATTICE_TOL = 0.01
-
-
-def lattice_step(values: np.ndarray, *, tol: float = LATTICE_TOL) -> float | None:
-    """The step ``d`` of a lattice ``v0 + k d`` that holds all ``values``, or None.
-
-    Integers: the greatest common divisor of the gaps between distinct values.
-    Floats: the smallest gap between distinct values, accepted when every value
-    lies within ``tol * d`` of the lattice (float images quantised to a few
-    levels and then scaled). Common practice, no source.
-    """
-    v = np.asarray(values).ravel()
-    if v.dtype.kind == "f":
-        v = v[np.isfinite(v)]
-    u = np.unique(v)
-    if u.size < 2:
-        return None
-    if u.dtype.kind in "iub":
-        return float(np.gcd.reduce(np.diff(u.astype(np.int64)))) or None
-    if u.size > 1_000_000:
-        return None
-    u = u.astype(np.float64)
-    d = float(np.diff(u).min())
-    span = float(u[-1] - u[0])
-    if d <= 0 or span / d > 1e7:
-        return None
-    d = span / round(span / d)
-    r = (u - u[0]) / d
-    return d if float(np.max(np.abs(r - np.round(r)))) <= tol else None
 
 
 @dataclass
