@@ -42,11 +42,7 @@ from scipy import ndimage
 
 from app.io.volume import Volume
 from app.traces import kspace_filtering as kf
-from app.traces import partial_fourier as pf
-from app.traces import resampling as rs
-from app.traces import spectrum as sp
-from app.traces import support as support_mod
-from app.traces import zero_filling as zf
+from app.traces import plan
 from demo_data import synth
 
 N_RAW = 100
@@ -102,21 +98,17 @@ def _volume(images: np.ndarray, complex_out: bool) -> Volume:
 
 
 def _analyse(vol: Volume) -> dict[str, Any]:
-    spec = sp.compute_spectrum(vol)
-    support = support_mod.detect(spec)
-    return {"spec": spec, "zf": zf.trace_from(spec, support),
-            "kf": kf.trace_from(spec, support), "pf": pf.trace_from(spec, support)}
+    """The three spectral analysers through the analysis plan (with the shared
+    spectrum, support and noise reference steps they declare), as a report runs
+    them, before calibration and header reconciliation."""
+    res = plan.execute(vol, only=["zero_filling", "kspace_filtering", "partial_fourier"],
+                       extra_steps=["spectrum"])
+    return {"spec": res.steps["spectrum"], "zf": res.traces["zero_filling"],
+            "kf": res.traces["kspace_filtering"], "pf": res.traces["partial_fourier"]}
 
 
-def _frames(vol: Volume) -> list[np.ndarray]:
-    a = vol.to_array()
-    if a.ndim == 4:
-        a = np.sqrt((np.abs(a) ** 2).sum(axis=1))
-    return list(np.abs(a) if np.iscomplexobj(a) else a)
-
-
-def _resampling_call(frames: list[np.ndarray]) -> Any:
-    return rs.trace_from(rs.detect(frames))
+def _resampling_call(vol: Volume) -> Any:
+    return plan.trace_of("resampling", vol)
 
 
 def run_raw(tallies: dict[str, Tally]) -> None:
@@ -128,7 +120,7 @@ def run_raw(tallies: dict[str, Tally]) -> None:
         tallies["zero_filling"].negative(res["zf"].status == "present")
         tallies["kspace_filtering"].negative(res["kf"].status == "present")
         tallies["partial_fourier"].negative(res["pf"].status == "present")
-        tallies["resampling"].negative(_resampling_call(_frames(vol)).status == "present")
+        tallies["resampling"].negative(_resampling_call(vol).status == "present")
 
 
 def run_large_raw(calls: list[bool]) -> None:
@@ -158,7 +150,7 @@ def run_zero_filling(t: Tally, resampled_zf: list[bool], filtered_zf: list[bool]
         tr = res["zf"]
         filtered_zf.append(res["kf"].status == "present")
         if i % 4 == 0:
-            resampled_zf.append(_resampling_call(_frames(vol)).status == "present")
+            resampled_zf.append(_resampling_call(vol).status == "present")
         ok = True
         for k, ax in enumerate(("rows", "cols")):
             true_pad = out[k] / acq[k]
@@ -235,7 +227,7 @@ def run_resampling(t: Tally) -> None:
             z = float(rng.uniform(1.1, 2.0))
             zoom = (z, z) if both else ((1.0, z) if rng.random() < 0.5 else (z, 1.0))
             out = [ndimage.zoom(f, zoom, order=order) for f in frames]
-            tr = _resampling_call(out)
+            tr = _resampling_call(Volume.from_array(np.stack(out)))
             ok = True
             for k, ax in enumerate(("rows", "cols")):
                 real = (out[0].shape[k] - 1) / (frames[0].shape[k] - 1) if zoom[k] != 1 else 1.0
@@ -244,7 +236,7 @@ def run_resampling(t: Tally) -> None:
         else:
             angle = float(rng.uniform(5, 45))
             out = [ndimage.rotate(f, angle, order=order, reshape=False) for f in frames]
-            tr = _resampling_call(out)
+            tr = _resampling_call(Volume.from_array(np.stack(out)))
             t.positive(tr.status == "present", f"rotation, order {order}", None)
 
 
