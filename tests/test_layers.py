@@ -63,6 +63,11 @@ def _in(module: str, layer: str) -> bool:
     ("app.store", "app.cli"),
     ("app.worker", "app.web"),
     ("app.worker", "app.cli"),
+    ("app.traces", "app.store"),
+    ("app.traces", "app.web"),
+    ("app.traces", "app.worker"),
+    ("app.traces", "app.cli"),
+    ("app.traces", "app.analysis"),
 ])
 def test_no_upward_import(lower, upper):
     """``lower`` never imports ``upper``."""
@@ -71,11 +76,22 @@ def test_no_upward_import(lower, upper):
     assert not bad, bad
 
 
-def test_no_circle_outside_traces():
-    """No import circle among the modules outside ``app.traces`` (Tarjan's strongly
-    connected components; a component of more than one module is a circle)."""
-    graph = {m: {d for d in deps if not _in(d, "app.traces")}
-             for m, deps in _graph().items() if not _in(m, "app.traces")}
+def test_no_analyser_imports_another():
+    """Analysers share work only through the plan's steps (app/traces/plan.py): no
+    analyser module imports another analyser module."""
+    from app.traces import plan
+
+    analysers = {m.__name__ for m in plan.ANALYSERS}
+    assert len(analysers) >= 10
+    graph = _graph()
+    bad = sorted(f"{m} -> {d}" for m in analysers for d in graph[m] if d in analysers)
+    assert not bad, bad
+
+
+def test_no_circle():
+    """No import circle anywhere in ``app`` (Tarjan's strongly connected components;
+    a component of more than one module is a circle)."""
+    graph = _graph()
     index: dict[str, int] = {}
     low: dict[str, int] = {}
     stack: list[str] = []

@@ -138,7 +138,6 @@ def correlation_ratio(frames: list[np.ndarray], *, workers: int = 1,
     ----------
     .. [1] Popescu and Farid, IEEE Trans. Signal Processing 53(2):758-767, 2005.
     """
-    from app.traces.resampling import centrosymmetric_median
 
     per_axis: list[list[np.ndarray]] = [[], []]
     for f in frames:
@@ -173,3 +172,32 @@ def through_plane_frames(volume_frames: np.ndarray, *, max_frames: int = 6) -> l
     rows = v.shape[1]
     picks = np.unique(np.linspace(rows * 0.2, rows * 0.8, max_frames).astype(int))
     return [np.ascontiguousarray(v[:, r, :], dtype=np.float64) for r in picks]
+
+
+def centrosymmetric_median(mag: np.ndarray, size: int = 7) -> np.ndarray:
+    """``scipy.ndimage.median_filter(mag, size, mode="wrap")`` of a centred, centrosymmetric map.
+
+    The magnitude spectrum of real frames is centrosymmetric (Hermitian symmetry),
+    and so is its wrapped local median: the median is taken over half of the
+    rows (sliding windows, one partition) and mirrored onto the other half.
+    """
+    n, m = mag.shape
+    h = size // 2
+    lo = n // 2
+    if n < size or m < size:
+        return ndimage.median_filter(mag, size=size, mode="wrap")
+    # filtered rows lo .. n - 1, then row 0 (index n, wrapped)
+    rows = np.arange(lo - h, n + 1 + h) % n
+    sub = np.pad(mag[rows], ((0, 0), (h, h)), mode="wrap")
+    win = np.lib.stride_tricks.sliding_window_view(sub, (size, size))
+    win = win.reshape(win.shape[0], win.shape[1], size * size)
+    k = (size * size) // 2
+    med = np.partition(win, k, axis=-1)[..., k]
+    out = np.empty_like(mag)
+    out[lo:] = med[:-1]
+    out[0] = med[-1]
+    if lo > 1:
+        src_r = (2 * lo - np.arange(1, lo)) % n
+        src_c = (2 * (m // 2) - np.arange(m)) % m
+        out[1:lo] = out[src_r][:, src_c]
+    return out

@@ -84,6 +84,7 @@ from app.traces.base import Trace, inconclusive, register
 from app.traces.context import Notes, Scope, evenly_spaced
 from app.traces.header import HeaderFacts
 from app.traces.jpeg_pixels import PixelFinding
+from app.traces.neighbour_correlation import centrosymmetric_median
 from app.traces.rounding import round_sig
 from app.traces.support import FOUND_SUPPORT, AxisSupport
 
@@ -267,35 +268,6 @@ def _frames(volume: Volume, scope: Scope) -> tuple[list[np.ndarray], list[str]]:
         frames = [f[r0:r0 + MAX_SIDE, c0:c0 + MAX_SIDE] for f in frames]
         notes.append(f"resampling analysed the central {MAX_SIDE} x {MAX_SIDE} samples")
     return frames, notes
-
-
-def centrosymmetric_median(mag: np.ndarray, size: int = 7) -> np.ndarray:
-    """``scipy.ndimage.median_filter(mag, size, mode="wrap")`` of a centred, centrosymmetric map.
-
-    The magnitude spectrum of real frames is centrosymmetric (Hermitian symmetry),
-    and so is its wrapped local median: the median is taken over half of the
-    rows (sliding windows, one partition) and mirrored onto the other half.
-    """
-    n, m = mag.shape
-    h = size // 2
-    lo = n // 2
-    if n < size or m < size:
-        return ndimage.median_filter(mag, size=size, mode="wrap")
-    # filtered rows lo .. n - 1, then row 0 (index n, wrapped)
-    rows = np.arange(lo - h, n + 1 + h) % n
-    sub = np.pad(mag[rows], ((0, 0), (h, h)), mode="wrap")
-    win = np.lib.stride_tricks.sliding_window_view(sub, (size, size))
-    win = win.reshape(win.shape[0], win.shape[1], size * size)
-    k = (size * size) // 2
-    med = np.partition(win, k, axis=-1)[..., k]
-    out = np.empty_like(mag)
-    out[lo:] = med[:-1]
-    out[0] = med[-1]
-    if lo > 1:
-        src_r = (2 * lo - np.arange(1, lo)) % n
-        src_c = (2 * (m // 2) - np.arange(m)) % m
-        out[1:lo] = out[src_r][:, src_c]
-    return out
 
 
 def _ratio(frames: list[np.ndarray], predictor: np.ndarray, workers: int) -> np.ndarray:
