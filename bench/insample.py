@@ -22,7 +22,7 @@ from typing import Any
 import numpy as np
 from scipy import ndimage
 
-from bench.validate import TRACE_IDS, Case, make_truth
+from bench.cases import TRACE_IDS, Case, make_truth
 
 SEED = 2026
 
@@ -31,10 +31,11 @@ def _rng(kind: str, i: int) -> np.random.Generator:
     return np.random.default_rng([SEED, sum(map(ord, kind)), i])
 
 
-def _truth(params: dict | None = None, **present: str) -> dict:
+def _truth(params: dict | None = None, *, origin: dict[str, str] | None = None,
+           **present: str) -> dict:
     traces = {tid: "absent" for tid in TRACE_IDS}
     traces.update(present)
-    return make_truth(traces, params=params)
+    return make_truth(traces, params=params, origin=origin)
 
 
 def _acquire(rng: np.random.Generator, coils: int, slices: int = 3,
@@ -249,7 +250,10 @@ def _t_partial_fourier(i: int) -> dict:
     if not complex_out:
         present["magnitude_only"] = "present"
         present["coil_combination"] = "present" if coils > 1 else "absent"
-    return _truth(params, **present)
+    # complex data whose missing part is zeros is what a scanner delivers from a
+    # partial-Fourier acquisition (shared/REPORT_CONTRACT.md, origin)
+    origin = {"partial_fourier": "acquisition"} if complex_out else None
+    return _truth(params, origin=origin, **present)
 
 
 def _rs_draw(i: int) -> tuple[np.random.Generator, int, int, tuple[float, float] | None, float]:
@@ -406,7 +410,11 @@ _KINDS: dict[str, tuple[Any, Any, int, int, str]] = {
     "raw_complex": (_b_raw_complex, _raw_truth, 6, 1, "npy image complex coils"),
     "raw_single": (_b_raw_single, _raw_truth, 4, 0, "npy image complex"),
     "raw_kspace": (_b_raw_kspace, _raw_truth, 6, 1, "npy kspace coils"),
-    "real_signed": (_b_real_signed, lambda i: _truth(), 2, 0, "npy image real"),
+    # a real-valued image has Hermitian-symmetric k-space whatever its sign: processed
+    # (shared/REPORT_CONTRACT.md, magnitude_only domain real_signed)
+    "real_signed": (_b_real_signed,
+                    lambda i: _truth({"magnitude_only.domain": "real_signed"},
+                                     magnitude_only="present"), 2, 0, "npy image real"),
     "zero_filling": (_b_zero_filling, _t_zero_filling, 12, 1, "npy"),
     "kspace_filtering": (_b_kspace_filtering, _t_kspace_filtering, 10, 1, "npy"),
     "partial_fourier": (_b_partial_fourier, _t_partial_fourier, 9, 1, "npy"),

@@ -25,7 +25,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from bench.validate import Case, make_truth
+from bench.cases import Case, make_truth
 
 # Facts of the trade used below (common practice, no source):
 # - MR images stored by a scanner are magnitude reconstructions unless the header
