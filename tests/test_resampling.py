@@ -295,3 +295,17 @@ def test_kspace_input_is_tested_on_its_image():
     assert t_zoom.status == "present", t_zoom.summary
     assert abs(t_zoom.estimates["cols"]["factor"] - 1.5) <= 0.045
     assert t_raw.confidence != t_zoom.confidence
+
+
+@pytest.mark.parametrize("side", [16, 24])
+def test_thumbnail_too_small_is_inconclusive(side):
+    """A frame under rs.MIN_SIDE samples gets no pixel call, whatever it holds: here a
+    2x linear zoom (scipy.ndimage.zoom, order 1) of white noise, which a larger frame
+    shows (test_zoom_* above); below the minimum the call is inconclusive, not absent."""
+    rng = np.random.default_rng(side)
+    frames = np.stack([ndimage.zoom(rng.standard_normal((side // 2, side // 2)), 2.0, order=1)
+                       for _ in range(4)])
+    trace = trace_of("resampling", Volume.from_array(frames.astype(np.float32)))
+    assert trace.status == "inconclusive"
+    assert trace.evidence["too_small"]["min_side"] == rs.MIN_SIDE == 32
+    assert "too small" in trace.summary

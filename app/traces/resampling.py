@@ -110,6 +110,12 @@ CONFIRM_ALPHA = 1e-4
 #: contiguous slices read for the through-plane test (and the fewest it needs)
 THROUGH_SLICES = 64
 MIN_THROUGH_SLICES = 16
+#: frames narrower than this (samples, either side) are not tested: the p-map spectrum's
+#: 7 x 7 local median and the low-frequency exclusion leave too few bins per axis for a
+#: periodic peak to stand out, so a pixel call there would be a guess (our own power
+#: argument, no source; 16 x 16 thumbnails downsized from 256 x 256 were called
+#: absent with confidence)
+MIN_SIDE = 32
 DEFAULT_ESTIMATES: dict[str, Any] = {"rows": {"factor": None}, "cols": {"factor": None}}
 
 
@@ -722,9 +728,13 @@ def analyse(volume: Volume, *, scope: Scope, notes: Notes,
     frames, subset = _frames(volume, scope)
     for note in subset:
         notes.add(note)
-    if min(frames[0].shape) < 16:
-        return Trace(TRACE_ID, "inconclusive", 0.0, "The image is too small to test.",
-                     dict(DEFAULT_ESTIMATES), {})
+    if min(frames[0].shape) < MIN_SIDE:
+        return Trace(TRACE_ID, "inconclusive", 0.0,
+                     f"The image ({frames[0].shape[0]} x {frames[0].shape[1]}) is too small "
+                     f"to test for resampling: at least {MIN_SIDE} samples per side are "
+                     "needed for a periodic interpolation pattern to stand out.",
+                     dict(DEFAULT_ESTIMATES), {"too_small": {"shape": list(frames[0].shape),
+                                                             "min_side": MIN_SIDE}})
     # when the JPEG test found 8 x 8 blocks in the pixels (the shared step the lossy
     # analyser reports), their 1/8-periodic peaks are not counted as interpolation;
     # zero-filling k-space by s is interpolation by s (a sinc kernel): its
