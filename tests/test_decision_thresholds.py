@@ -428,9 +428,10 @@ def test_on_axis_peak_ratio(value: float, found: bool) -> None:
 
 
 @pytest.mark.parametrize("frames,value,found", [(4, 4.5, False), (4, 5.5, True),
+                                                (6, 4.5, False), (6, 5.5, True),
                                                 (1, 7.5, False), (1, 8.5, True)])
 def test_off_axis_peak_ratio_falls_with_frames(frames: int, value: float, found: bool) -> None:
-    """Off the axes a peak needs 5 times its median over four frames, 8 over one.
+    """Off the axes a peak needs 5 times its median over four or six frames, 8 over one.
 
     Truth: one bin at (10, 16) bins from DC (a rotation's periodicity, Kirchner,
     MM&Sec 2008) on a flat ratio map. The stated rule (resampling.OFF_AXIS_RATIO):
