@@ -71,7 +71,8 @@ def circular_spread(z: np.ndarray) -> float:
     if z.size == 0:
         return 0.0
     R = float(np.abs(np.mean(z / np.abs(z))))
-    return float(np.sqrt(-2.0 * np.log(max(R, 1e-12))))
+    # rounding can leave R a hair above 1 when every phase is the same
+    return float(np.sqrt(-2.0 * np.log(min(max(R, 1e-12), 1.0))))
 
 
 def classify_values(volume: Volume, bg: Background) -> ValueKind:
