@@ -59,15 +59,27 @@ def test_windowed_complex_data_is_present(family, param, pad):
     """
     trace = trace_of("kspace_filtering", _windowed(family, param, pad=pad))
     assert trace.status == "present"
-    assert trace.estimates["window"] in {name for name, _ in kf.CANDIDATES}
+    # from the image spectrum's profile the family is not named (it cannot be told
+    # apart there: see the next test); the closest fit stays in the evidence
+    assert trace.estimates["window"] is None
+    assert trace.evidence["window_label"] == "smooth roll-off, family not identified"
+    assert trace.evidence["closest_family"]["window"] in {name for name, _ in kf.CANDIDATES}
+    assert "family not identified" in trace.summary
 
 
-@pytest.mark.parametrize("pad", [1.0, 2.0])
-def test_gaussian_window_named_with_its_width(pad):
-    """A Gaussian window of width 0.4 is named gaussian, width within 0.1 (truth: 0.4)."""
-    trace = trace_of("kspace_filtering", _windowed("gaussian", 0.4, pad=pad))
-    assert trace.estimates["window"] == "gaussian"
-    assert abs(trace.estimates["param"] - 0.4) <= 0.1
+def test_profile_fit_does_not_identify_families():
+    """Why the profile path names no family: over the five families (Harris 1978;
+    Tukey; Fermi; Gaussian), applied to the same acquisition, the closest profile fit
+    is one and the same family for most of them, so it does not track the window.
+    If this ever fails, the profile fit has learnt to tell families apart and naming
+    the family can be reconsidered (with the bench's figures)."""
+    closest = [trace_of("kspace_filtering", _windowed(fam, par, pad=1.0, seed=3))
+               .evidence["closest_family"]["window"]
+               for fam, par in (("hann", None), ("hamming", None), ("tukey", 0.5),
+                                ("fermi", 0.7), ("gaussian", 0.4))]
+    right = sum(c == f for c, f in zip(closest, ("hann", "hamming", "tukey", "fermi",
+                                                   "gaussian"), strict=True))
+    assert right <= 2, closest
 
 
 def test_hann_on_rss_magnitude_is_present():
