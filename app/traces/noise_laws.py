@@ -27,6 +27,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import fft as sfft
 from scipy import optimize, special, stats
 
 L_MIN = 0.5
@@ -273,18 +274,24 @@ class NoiseEvenness:
     Attributes
     ----------
     statistic : float
-        The between-block to within-block ratio of the squared values' variance,
-        divided by the spatial correlation factor ``kappa`` (about 1 for one sigma).
+        The between-tile to within-tile ratio of the noise power, with the
+        within-tile variance corrected for correlation and the between-tile
+        variance divided by the tile factor ``K`` (about 1 for one sigma).
     p_value : float
-        Upper tail of the F law with ``(k - 1, (N - k) / kappa)`` degrees of freedom.
+        Upper tail of the F law with ``(df1, df2)`` effective degrees of freedom.
     blocks : int
-        Blocks of the region used (``k``).
+        Tiles of the region used (``k``).
     kappa : float
-        Sum of the autocorrelation of the squared values about their tile means,
-        over lags up to 3 pixels (1 for independent samples; larger after
-        interpolation or filtering).
+        Sum of the noise power's autocorrelation over the lags of one tile
+        window (``|lag| < block`` per axis, the product of the two axes'
+        sums): the variance inflation of a mean over a large region (1 for
+        independent samples; larger after interpolation or filtering).
     spread : float
-        Ratio of the 90th to the 10th percentile of the blocks' mean power.
+        Ratio of the 90th to the 10th percentile of the tiles' mean power.
+    tile_factor : float
+        ``K``: the variance of a tile mean of correlated samples over that of
+        independent ones (the autocorrelation weighted by the share of the
+        tile's pixel pairs at each lag).
     """
 
     statistic: float
@@ -292,100 +299,181 @@ class NoiseEvenness:
     blocks: int
     kappa: float
     spread: float
+    tile_factor: float = 1.0
+
+
+def _lag_window(field: np.ndarray, mask: np.ndarray, max_lag: int
+                ) -> tuple[np.ndarray, np.ndarray]:
+    """Lagged products ``sum d_i d_{i+h}`` and pair counts over a mask, lags ``|h| <= max_lag``.
+
+    Both come from one zero-padded FFT each (Wiener-Khinchin); the arrays are
+    indexed ``[hy + max_lag, hx + max_lag]``.
+    """
+    ny, nx = field.shape
+    shape = (sfft.next_fast_len(ny + max_lag), sfft.next_fast_len(nx + max_lag))
+    prods = sfft.irfft2(np.abs(sfft.rfft2(field, shape)) ** 2, shape)
+    pairs = sfft.irfft2(np.abs(sfft.rfft2(mask.astype(np.float64), shape)) ** 2, shape)
+    lags = np.r_[-max_lag:0, 0:max_lag + 1]
+    return prods[np.ix_(lags, lags)], np.rint(pairs[np.ix_(lags, lags)])
+
+
+#: offsets (pixels) of the lines parallel to each axis whose autocovariance is subtracted from
+#: the axis's own: they carry the smooth trend's share but hardly any of the noise's
+OFFSETS = (2, 3, 4)
+
+
+def _noise_profiles(prods: np.ndarray, pairs: np.ndarray, block: int
+                    ) -> tuple[np.ndarray, np.ndarray] | None:
+    """Autocorrelation profiles of the noise power along each axis, a smooth trend removed.
+
+    Zero-filling, k-space windows and separable interpolation filter the noise
+    with a product of one-dimensional filters, so its autocorrelation is a
+    product ``rho(hy, hx) = rho_y(hy) rho_x(hx)``, and so is that of the power
+    ``|x|^2`` (Isserlis 1918: ``rho_y = |rho_x|^2`` for circular Gaussian
+    noise). A sigma that varies smoothly across the image adds a covariance
+    ``T(h)`` that changes slowly with the lag. The autocovariance ``A`` along
+    an axis minus the mean of ``A`` on the parallel lines at the offsets
+    :data:`OFFSETS` is ``c0 rho_x(hx) (1 - mean rho_y(g))`` plus only the
+    second difference of ``T`` across a few pixels; divided by its value at
+    lag 0 it leaves ``rho_x``. Returns ``(rho_y, rho_x)`` over ``|h| < block``,
+    or None when lag 0 holds no noise.
+    """
+    H = (prods.shape[0] - 1) // 2
+    if pairs[H, H] <= 0:
+        return None
+    acov = prods / np.maximum(pairs, 1.0)
+    h = np.arange(-(block - 1), block) + H
+    g = np.asarray(OFFSETS)
+    line_x = acov[H, h] - 0.5 * (acov[H + g][:, h] + acov[H - g][:, h]).mean(axis=0)
+    line_y = acov[h, H] - 0.5 * (acov[:, H + g][h] + acov[:, H - g][h]).mean(axis=1)
+    if line_x[block - 1] <= 0 or line_y[block - 1] <= 0:
+        return None
+    return line_y / line_y[block - 1], line_x / line_x[block - 1]
 
 
 def noise_evenness(frames: list[np.ndarray], masks: list[np.ndarray], *,
-                   block: int = 8, max_lag: int = 3) -> NoiseEvenness | None:
+                   block: int = 8) -> NoiseEvenness | None:
     """Test the noise power of a background for one common sigma (one-way analysis of variance).
 
-    The squared magnitudes of the background samples are grouped in
+    The noise power ``y = |x|^2`` of the background samples is grouped in
     ``block x block`` tiles lying wholly in the background. Under one sigma
-    (one channel, root-sum-of-squares of a stationary array) the tile means of
-    ``x^2`` scatter only as the samples do: the analysis-of-variance ratio
-    follows the F law. Adaptive, Roemer and SENSE weights leave a sigma that
-    varies across the image (Walsh et al. 2000; Roemer et al. 1990; Pruessmann
-    et al. 1999), which lifts the ratio. Spatially correlated noise (readout
-    roll-off, interpolation) makes neighbouring samples alike; the ratio and
-    the within-tile degrees of freedom are divided by ``kappa``, the sum of the
-    measured autocorrelation of ``x^2`` over lags up to ``max_lag``.
+    (one channel, root-sum-of-squares of a stationary array) the tile means
+    scatter only as the samples do: the analysis-of-variance ratio follows the
+    F law. Adaptive, Roemer and SENSE weights leave a sigma that varies across
+    the image (Walsh et al. 2000; Roemer et al. 1990; Pruessmann et al. 1999),
+    which lifts the ratio.
+
+    Spatially correlated noise (zero-filling, k-space windows, interpolation)
+    makes neighbouring samples alike. With the autocorrelation ``rho(h)`` of
+    ``y``, the variance of a tile mean is ``c0 K / n`` with the tile factor
+    ``K = sum_h rho(h) (1 - |hy|/B)(1 - |hx|/B)`` over ``|h| < B``, and the
+    within-tile variance has expectation ``c0 (n - K) / (n - 1)`` (the variance
+    of a mean of correlated samples; Priestley 1981). The autocovariance is
+    measured on the whole-tile background from the lagged products over the
+    pair counts at each lag (unbiased for any mask shape); ``rho`` is taken
+    separable, one profile per axis, each with the share a smooth sigma trend
+    adds removed (:func:`_noise_profiles`), so the trend is tested, not taken
+    for correlation.
+
+    The tile means of a power are not Gaussian: the noise power of Gaussian
+    noise follows a gamma law of shape ``a`` (1 for complex, 1/2 for real
+    samples) with excess kurtosis ``6 / a``, estimated here from the pooled
+    squared coefficient of variation ``1 / a``; a tile mean of ``n / K``
+    effective samples keeps ``6 K / (a n)``. The between-tile degrees of
+    freedom are divided by ``1 + kurtosis / 2`` (Box 1953), those of the
+    within-tile variance likewise and by the sum of ``rho^2``.
 
     Parameters
     ----------
     frames : list of ndarray
-        2D magnitudes (or moduli of complex values), one per frame.
+        2D magnitudes, complex or real values, one per frame.
     masks : list of ndarray of bool
         The background of each frame.
+    block : int
+        Tile side ``B`` (``n = B^2`` samples a tile).
 
     Returns
     -------
     NoiseEvenness or None
-        None when fewer than 8 whole tiles lie in the background.
+        None when fewer than 8 whole tiles lie in the background, or the
+        background is too small to measure the correlation over a tile.
 
     References
     ----------
     R. A. Fisher, *Statistical Methods for Research Workers*, Oliver and Boyd,
-    1925 (analysis of variance; recalled from memory). D. O. Walsh, A. F. Gmitro
-    and M. W. Marcellin, "Adaptive reconstruction of phased array MR imagery",
-    Magnetic Resonance in Medicine 43(5):682-690, 2000. P. B. Roemer et al., "The
-    NMR phased array", Magnetic Resonance in Medicine 16(2):192-225, 1990.
+    1925 (analysis of variance; recalled from memory). M. B. Priestley,
+    *Spectral Analysis and Time Series*, Academic Press, 1981 (the variance of
+    a mean of correlated samples and the lag-window estimate of the
+    autocovariance). L. Isserlis, "On a formula for the product-moment
+    coefficient of any order of a normal frequency distribution in any number
+    of variables", Biometrika 12:134-139, 1918 (``rho_y = |rho_x|^2`` for
+    circular Gaussian noise, which makes separable k-space filters separable
+    in ``y`` too). G. E. P. Box, "Non-normality and tests on variances",
+    Biometrika 40:318-335, 1953 (the kurtosis correction of the degrees of
+    freedom; recalled from memory). D. O. Walsh, A. F. Gmitro and
+    M. W. Marcellin, "Adaptive reconstruction of phased array MR imagery",
+    Magnetic Resonance in Medicine 43(5):682-690, 2000. P. B. Roemer et al.,
+    "The NMR phased array", Magnetic Resonance in Medicine 16(2):192-225, 1990.
     K. P. Pruessmann et al., "SENSE: sensitivity encoding for fast MRI",
     Magnetic Resonance in Medicine 42(5):952-962, 1999.
     """
-    means, variances, counts = [], [], []
-    num = 0.0
-    den = 0.0
+    B = int(block)
+    n = B * B
+    H = B - 1 + max(OFFSETS)
+    tile_means, tile_vars = [], []
+    prods = np.zeros((2 * H + 1, 2 * H + 1))
+    pairs = np.zeros_like(prods)
+    n_pixels = 0
     for m, mask in zip(frames, masks, strict=True):
-        x2 = np.abs(np.asarray(m, dtype=np.complex128 if np.iscomplexobj(m)
-                               else np.float64)) ** 2
-        mk = np.asarray(mask, bool) & np.isfinite(x2)
-        ny, nx = (x2.shape[0] // block) * block, (x2.shape[1] // block) * block
+        y = np.abs(np.asarray(m, dtype=np.complex128 if np.iscomplexobj(m)
+                              else np.float64)) ** 2
+        mk = np.asarray(mask, bool) & np.isfinite(y)
+        ny, nx = (y.shape[0] // B) * B, (y.shape[1] // B) * B
         if ny == 0 or nx == 0:
             continue
-        t = x2[:ny, :nx].reshape(ny // block, block, nx // block, block)
-        tm = mk[:ny, :nx].reshape(ny // block, block, nx // block, block)
-        whole = tm.all(axis=(1, 3))
+        t = y[:ny, :nx].reshape(ny // B, B, nx // B, B)
+        whole = mk[:ny, :nx].reshape(ny // B, B, nx // B, B).all(axis=(1, 3))
         if not whole.any():
             continue
-        sel = t.transpose(0, 2, 1, 3)[whole].reshape(-1, block * block)
-        means.append(sel.mean(axis=1))
-        variances.append(sel.var(axis=1, ddof=1))
-        counts.append(np.full(sel.shape[0], block * block))
-        # autocorrelation of x^2 about each tile's own mean (a sigma varying across the image
-        # is the effect tested, not a correlation), whole tiles only, lags up to max_lag
-        dev = (t - t.mean(axis=(1, 3), keepdims=True)) * whole[:, None, :, None]
-        d = dev.reshape(ny, nx)
-        for dy in range(-max_lag, max_lag + 1):
-            for dx in range(-max_lag, max_lag + 1):
-                a = d[max(0, dy):ny + min(0, dy) or None, max(0, dx):nx + min(0, dx) or None]
-                b = d[max(0, -dy):ny - max(0, dy), max(0, -dx):nx - max(0, dx)]
-                a = a[:b.shape[0], :b.shape[1]]
-                num += float(np.sum(a * b))
-        den += float(np.sum(d * d))
-    if not means:
+        sel = t.transpose(0, 2, 1, 3)[whole].reshape(-1, n)
+        tile_means.append(sel.mean(axis=1))
+        tile_vars.append(sel.var(axis=1, ddof=1))
+        inside = np.repeat(np.repeat(whole, B, axis=0), B, axis=1)
+        d = np.where(inside, y[:ny, :nx] - sel.mean(), 0.0)
+        p, c = _lag_window(d, inside, H)
+        prods += p
+        pairs += c
+        n_pixels += int(inside.sum())
+    k = sum(mu.size for mu in tile_means)
+    n_frames = sum(1 for mu in tile_means if mu.size > 1)
+    if k < 8 or k - n_frames < 1:
         return None
-    mu = np.concatenate(means)
-    var = np.concatenate(variances)
-    n = np.concatenate(counts)
-    k = mu.size
-    if k < 8 or den <= 0:
+    profiles = _noise_profiles(prods, pairs, B)
+    if profiles is None:
         return None
-    # demeaning in tiles of m samples leaves white noise a correlation of -1/(m - 1) at each lag
-    # within a tile: that share of pairs is added back, so white noise gives kappa = 1
-    m = block * block
-    inside = sum((block - abs(dy)) * (block - abs(dx)) / m
-                 for dy in range(-max_lag, max_lag + 1) for dx in range(-max_lag, max_lag + 1)
-                 if dy or dx)
-    kappa = float(max(1.0, num / den + inside / (m - 1)))
-    grand = float(np.sum(n * mu) / np.sum(n))
-    between = float(np.sum(n * (mu - grand) ** 2) / (k - 1))
-    within = float(np.sum((n - 1) * var) / np.sum(n - 1))
+    rho_y, rho_x = profiles
+    share = 1.0 - np.abs(np.arange(-(B - 1), B)) / B
+    K = float(np.clip(np.sum(rho_y * share) * np.sum(rho_x * share), 1.0, n / 2.0))
+    kappa = float(max(np.sum(rho_y) * np.sum(rho_x), 1.0))
+    sum_sq = float(max(np.sum(rho_y**2) * np.sum(rho_x**2), 1.0))
+    mu = np.concatenate(tile_means)
+    var = np.concatenate(tile_vars)
+    between = sum(float(np.sum((t - t.mean()) ** 2)) for t in tile_means) * n / (k - n_frames)
+    within = float(np.mean(var)) * (n - 1) / (n - K)
     if within <= 0:
         return None
-    f = between / within / kappa
-    df2 = max(1.0, float(np.sum(n - 1)) / kappa)
-    p = float(stats.f.sf(f, k - 1, df2))
+    # squared coefficient of variation of the power (1 / a of its gamma law): E[s^2] over
+    # E[m^2] = mu^2 (1 + cv2 K / n), solved for cv2; a trend cancels tile by tile
+    r = float(np.sum(var) * (n - 1) / (n - K) / np.sum(mu * mu))
+    cv2 = r / max(1.0 - r * K / n, 0.5)
+    kurt_power = 6.0 * cv2
+    kurt_mean = kurt_power * K / n
+    df1 = (k - n_frames) / (1.0 + kurt_mean / 2.0)
+    df2 = max(1.0, (n_pixels - k) / (sum_sq * (1.0 + kurt_power / 2.0)))
+    f = between / (within * K)
+    p_value = float(stats.f.sf(f, df1, df2))
     spread = float(np.percentile(mu, 90) / max(np.percentile(mu, 10), 1e-300))
-    return NoiseEvenness(float(f), p, int(k), kappa, spread)
+    return NoiseEvenness(float(f), p_value, int(k), kappa, spread, K)
 
 
 #: ``n Var(r)`` of the moment ratio ``r = E[x]^2 / E[x^2]`` (delta method): Rayleigh, half-normal
