@@ -15,7 +15,7 @@ from scipy.signal import windows
 
 from app.io.volume import Volume
 from app.traces import kspace_filtering as kf
-from app.traces.plan import trace_of
+from app.traces.plan import step_of, trace_of
 from demo_data import synth
 
 
@@ -108,3 +108,26 @@ def test_registered_analyser_contract():
         assert set(fits[ax]) >= {"window", "param", "curve_db", "error"}
         assert len(fits[ax]["curve_db"]) == len(fits[ax]["k"])
     assert "profiles_db" in trace.evidence
+
+
+@pytest.mark.parametrize(("family", "param", "complex_out"), [
+    ("hann", None, True), ("tukey", 0.5, False), (None, None, True), (None, None, False)])
+def test_decision_value_is_the_call_margin(family, param, complex_out):
+    """The decision record's value is non-negative exactly when a window is called
+    (one statistic, one threshold at 0), so a calibration map of it stays consistent
+    with the call."""
+    trace = trace_of("kspace_filtering", _windowed(family, param, seed=7,
+                                                   complex_out=complex_out))
+    dec = trace.evidence["decision"]
+    assert dec["threshold"] == 0.0
+    assert (dec["value"] >= 0.0) is (trace.status == "present")
+
+
+def test_axis_margin_matches_called():
+    """AxisFit.margin_db >= 0 if and only if AxisFit.called, on fits of both kinds."""
+    for family in ("hann", None):
+        vol = _windowed(family, None, seed=11)
+        spec = step_of("spectrum", vol)
+        fits = kf.detect(spec, step_of("support", vol))
+        for f in fits.values():
+            assert (f.margin_db >= 0.0) is f.called
