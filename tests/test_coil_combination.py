@@ -355,3 +355,19 @@ def test_zero_filled_single_channel_is_not_linear(pad: float) -> None:
     t = _run(mag)
     assert t.estimates["combination"] != "linear"
     assert t.evidence["noise_evenness"]["p_tiles"] > 1e-3
+
+
+def test_separate_channels_rest_on_structure_not_on_the_noise_test() -> None:
+    """Separate complex channels delivered side by side: absent because nothing was
+    combined (a fact of the data's layout), whatever the noise test says; its decision
+    record is not the noise test's statistic, so the calibration map of that statistic
+    never sees these absent calls. Truth: 4 complex Gaussian channels (white noise)."""
+    rng = np.random.default_rng(5)
+    coils = rng.standard_normal((1, 4, 96, 96)) + 1j * rng.standard_normal((1, 4, 96, 96))
+    coils[:, :, 24:72, 24:72] += 20.0
+    t = _run(coils.astype(np.complex64), coil_axis=1)
+    assert t.status == "absent"
+    assert t.evidence["decision"]["statistic"] != "minus_log10_p_no_combination"
+    assert t.evidence["decision"]["value"] < t.evidence["decision"]["threshold"]
+    assert t.evidence["decision"]["separate_channels"] == 4
+    assert "noise_evenness" in t.evidence

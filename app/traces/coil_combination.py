@@ -233,6 +233,23 @@ def _decision_record(statistic: str, p: float | None, value: float | None = None
             "false_alarm_rate": FALSE_ALARM, "p_value": round_sig(p)}
 
 
+#: confidence of an absent call that rests on the data's structure (separate channels
+#: delivered side by side), not on a noise test (common practice, no source)
+SEPARATE_CONFIDENCE = 0.99
+
+
+def _separate_record(n_coils: int) -> dict[str, Any]:
+    """Decision record of separate channels delivered: a fact of the data's structure.
+
+    Its statistic differs from the noise tests' so that the calibration map of
+    ``minus_log10_p_no_combination`` never meets an absent call that did not rest on
+    it (the noise tests are still run and kept in the evidence).
+    """
+    return {"statistic": "images combined from the delivered channels", "value": 0.0,
+            "threshold": 1.0, "false_alarm_rate": None, "p_value": None,
+            "separate_channels": int(n_coils)}
+
+
 def _confidence(status: str, p: float | None) -> float:
     """The analyser's own probability that its status is right, from the decision's p-value.
 
@@ -343,9 +360,10 @@ def _gaussian_trace(volume: Volume, bg: Background, kind: str) -> Trace:
         estimates["noise_model"] = evidence["chosen"] = "unknown"
         evidence["decision"] = _decision_record("minus_log10_p_no_combination", None)
         if separate:
+            evidence["decision"] = _separate_record(volume.n_coils)
             summary = (f"The data hold {what}{coils}: nothing was combined; the noise law was "
                        f"not measured: {why}.")
-            return Trace(TRACE_ID, "absent", 0.5, summary, estimates, evidence)
+            return Trace(TRACE_ID, "absent", SEPARATE_CONFIDENCE, summary, estimates, evidence)
         return inconclusive(TRACE_ID, f"One image of {what}: whether it combines several "
                             f"channels with linear weights is not measurable: {why}.",
                             n_background=int(bg.n_background))
@@ -372,9 +390,10 @@ def _gaussian_trace(volume: Volume, bg: Background, kind: str) -> Trace:
     where = " of the inverse FFT" if volume.domain == "kspace" else ""
     sig = f"background{where} sigma {fit.sigma:.4g} (KS distance {fit.statistic:.3f})"
     if separate:
+        evidence["decision"] = _separate_record(volume.n_coils)
         summary = (f"The data hold {what}{coils}: nothing was combined (each channel is "
                    f"delivered on its own; {sig}).")
-        return Trace(TRACE_ID, "absent", _confidence("absent", p), summary, estimates, evidence)
+        return Trace(TRACE_ID, "absent", SEPARATE_CONFIDENCE, summary, estimates, evidence)
     if p < FALSE_ALARM:
         estimates["combination"] = "linear"
         summary = (f"One image of {what} whose Gaussian noise varies across the image (tile "
@@ -463,11 +482,10 @@ def analyse(volume: Volume, *, background: Background,
     if per_channel:
         estimates = {"noise_model": chosen, "sigma": round_sig(res["sigma"]),
                      "effective_channels": None, "combination": "unknown"}
-        evidence["decision"] = _decision_record("minus_log10_p_no_combination", p_rss)
+        evidence["decision"] = _separate_record(volume.n_coils)
         summary = (f"The data hold {volume.n_coils} separate magnitude channels, not combined "
                    f"(background law of one channel: {chosen}).")
-        return Trace(TRACE_ID, "absent", _confidence("absent", p_rss), summary, estimates,
-                     evidence)
+        return Trace(TRACE_ID, "absent", SEPARATE_CONFIDENCE, summary, estimates, evidence)
     if chosen == "noncentral_chi":
         eff = evidence["effective_channels"]
         capped = eff is not None and eff > MAX_PLAUSIBLE_CHANNELS
