@@ -371,3 +371,46 @@ def test_separate_channels_rest_on_structure_not_on_the_noise_test() -> None:
     assert t.evidence["decision"]["value"] < t.evidence["decision"]["threshold"]
     assert t.evidence["decision"]["separate_channels"] == 4
     assert "noise_evenness" in t.evidence
+
+
+def _complex_frames(rng: np.random.Generator, *, blob: bool, trend: bool) -> list[np.ndarray]:
+    n = 128
+    y, x = np.mgrid[:n, :n]
+    out = []
+    for _ in range(3):
+        sig = 0.01 * (1 + np.exp(-((y - 64) ** 2 + (x - 64) ** 2) / (2 * 40 ** 2))) if trend \
+            else 0.01
+        z = sig * (rng.standard_normal((n, n)) + 1j * rng.standard_normal((n, n)))
+        if blob:  # a smooth signal 5 sigma high reaching into the air
+            z = z + 0.05 * np.exp(-((y - 20) ** 2 + (x - 100) ** 2) / (2 * 15 ** 2))
+        out.append(z)
+    return out
+
+
+def test_linear_test_on_complex_data_ignores_smooth_stray_signal() -> None:
+    """Complex Gaussian noise of one sigma (Gudbjartsson and Patz 1995) plus a smooth
+    blob of signal in the air: the test of one common sigma must not reject (the pair
+    differences cancel the blob); taken on the magnitudes themselves it does. The
+    same test rejects a noise sigma that doubles towards the centre (a Roemer-like
+    weight pattern, Roemer et al. 1990)."""
+    rng = np.random.default_rng(3)
+    masks = [np.ones((128, 128), bool)] * 3
+    stray = _complex_frames(rng, blob=True, trend=False)
+    assert cc.linear_combination_test(stray, masks, law="rayleigh")["p_value"] < 1e-3
+    assert cc.linear_combination_test(stray, masks, law="rayleigh",
+                                      gaussian_noise=True)["p_value"] > 1e-2
+    varying = _complex_frames(rng, blob=False, trend=True)
+    assert cc.linear_combination_test(varying, masks, law="rayleigh",
+                                      gaussian_noise=True)["p_value"] < 1e-6
+
+
+def test_pair_differences_keep_the_noise_law() -> None:
+    """|a - b| / sqrt(2) of independent complex Gaussian samples of one sigma is
+    Rayleigh with that sigma (scipy.stats.rayleigh, KS test)."""
+    from scipy import stats
+
+    rng = np.random.default_rng(4)
+    f = 0.02 * (rng.standard_normal((64, 64)) + 1j * rng.standard_normal((64, 64)))
+    d = cc.pair_differences([f], [np.ones((64, 64), bool)])
+    assert d.size == 64 * 32
+    assert stats.kstest(d, stats.rayleigh(scale=0.02).cdf).pvalue > 0.01

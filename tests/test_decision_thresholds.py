@@ -231,7 +231,7 @@ def test_linear_combination_false_alarm_rate(monkeypatch: pytest.MonkeyPatch, p:
     stated false-alarm rate 1e-3 (coil_combination.FALSE_ALARM).
     """
     monkeypatch.setattr(cc, "linear_combination_test",
-                        lambda frames, masks, *, law: _linear_test_result(p))
+                        lambda frames, masks, *, law, **kw: _linear_test_result(p))
     rng = np.random.default_rng(8)
     y, x = np.mgrid[:128, :128]
     obj = 40.0 * (((y - 64) ** 2 + (x - 64) ** 2) < 30 ** 2)

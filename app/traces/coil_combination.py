@@ -277,14 +277,36 @@ def _test_frames(volume: Volume, bg: Background, channel: int | None = None
     return frames[:len(masks)], masks
 
 
+def pair_differences(frames: list[np.ndarray], masks: list[np.ndarray]) -> np.ndarray:
+    """``|a - b| / sqrt(2)`` over non-overlapping horizontal pixel pairs inside the masks.
+
+    For Gaussian noise (complex or signed real values) the difference of two samples
+    with one sigma has that sigma again, so these values follow the same law as the
+    noise itself (Rayleigh for complex, half-normal for real), while a smooth signal
+    left in the background (the object's tails, stray signal) cancels; a sigma that
+    varies across the image still varies in them. Non-overlapping pairs keep white
+    noise's differences independent (common practice, no source).
+    """
+    out = []
+    for f, m in zip(frames, masks, strict=True):
+        f = np.asarray(f)
+        m = np.asarray(m, bool)
+        a, b = f[:, 0:-1:2], f[:, 1::2]
+        ok = m[:, 0:-1:2] & m[:, 1::2]
+        out.append((np.abs(a - b)[ok] / np.sqrt(2.0)).ravel())
+    return np.concatenate(out) if out else np.zeros(0)
+
+
 def linear_combination_test(frames: list[np.ndarray], masks: list[np.ndarray], *,
-                            law: str) -> dict[str, Any]:
+                            law: str, gaussian_noise: bool = False) -> dict[str, Any]:
     """Test the background for a sigma that varies across the image (linear coil weights).
 
     Two views of one effect, combined by Fisher's method: the analysis of
     variance of the tiles' noise power (:func:`noise_laws.noise_evenness`) and
     the deficit of the moment ratio below the one-sigma law
-    (:func:`noise_laws.moment_ratio_z`, one-sided).
+    (:func:`noise_laws.moment_ratio_z`, one-sided). With ``gaussian_noise`` (complex
+    or signed real values) the moment ratio is taken over pair differences
+    (:func:`pair_differences`), which stray smooth signal in the air cannot lower.
 
     Returns
     -------
@@ -299,10 +321,23 @@ def linear_combination_test(frames: list[np.ndarray], masks: list[np.ndarray], *
     *Statistical Methods for Research Workers*, 1925 (combined p-values;
     scipy.stats.combine_pvalues).
     """
-    ev = nl.noise_evenness(frames, masks)
+    if gaussian_noise and frames:
+        # complex or signed real values: both views are taken on pair differences, in
+        # which a smooth signal left in the background cancels (see pair_differences)
+        diffs = [(np.asarray(f)[:, 0:-1:2] - np.asarray(f)[:, 1::2]) / np.sqrt(2.0)
+                 for f in frames]
+        dmasks = [np.asarray(m, bool)[:, 0:-1:2] & np.asarray(m, bool)[:, 1::2]
+                  for m in masks]
+        ev = nl.noise_evenness(diffs, dmasks)
+    else:
+        ev = nl.noise_evenness(frames, masks)
     kappa = ev.kappa if ev is not None else 1.0
-    x = np.concatenate([np.abs(np.asarray(f))[np.asarray(m, bool)].ravel()
-                        for f, m in zip(frames, masks, strict=True)]) if frames else np.zeros(0)
+    if gaussian_noise:
+        x = pair_differences(frames, masks) if frames else np.zeros(0)
+    else:
+        x = np.concatenate([np.abs(np.asarray(f))[np.asarray(m, bool)].ravel()
+                            for f, m in zip(frames, masks, strict=True)]) if frames \
+            else np.zeros(0)
     z = nl.moment_ratio_z(x, law=law, kappa=kappa)
     p_ratio = float(stats.norm.cdf(z)) if np.isfinite(z) else 1.0
     p_even = ev.p_value if ev is not None else 1.0
@@ -383,7 +418,7 @@ def _gaussian_trace(volume: Volume, bg: Background, kind: str) -> Trace:
     })
     law = "rayleigh" if kind == "complex" else "halfnormal"
     frames, masks = _test_frames(volume, bg)
-    lin = linear_combination_test(frames, masks, law=law)
+    lin = linear_combination_test(frames, masks, law=law, gaussian_noise=True)
     evidence.update(_linear_evidence(lin))
     p = lin["p_value"]
     evidence["decision"] = _decision_record("minus_log10_p_no_combination", p)
