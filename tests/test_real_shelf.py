@@ -20,15 +20,18 @@ from bench import shelf
 
 pytestmark = pytest.mark.slow
 
-_RESAMPLED_DOWN = "resampling reported absent on a documented downsized image"
+_RESAMPLED_DOWN = ("resampling not found on a documented downsized image (absent; on the "
+                   "16 x 16 thumbnails inconclusive: too small to test)")
 _RESLICED = "resampling reported absent on a documented SPM-resliced/normalised volume"
 XFAIL: dict[tuple[str, str], str] = {
     **{(n, "resampling"): _RESAMPLED_DOWN for n in (
         "MR_small.dcm", "MR_small_bigendian.dcm", "MR_small_RLE.dcm",
         "MR_small_jpeg_ls_lossless.dcm", "MR_small_jp2klossless.dcm",
-        "dicomdirtests/MR1", "dicomdirtests/MR2", "dicomdirtests/MR700")},
-    **{(n, "resampling"): _RESLICED for n in (
-        "anatomical.nii", "resampled_anat_moved.nii")},
+        "dicomdirtests/MR1", "dicomdirtests/MR2")},
+    # dicomdirtests/MR700 (ImageType PROJECTION IMAGE) and resampled_anat_moved.nii
+    # (descrip 'spm - realigned') are too small for the pixel test; their headers'
+    # declarations make them present ("declared, not measured")
+    ("anatomical.nii", "resampling"): _RESLICED,
     ("MR_small_jp2klossless.dcm", "lossy_compression"):
         "lossless JPEG 2000 transfer syntax reported inconclusive instead of absent",
     ("test_piesno.nii.gz", "coil_combination"):
