@@ -309,3 +309,28 @@ def test_thumbnail_too_small_is_inconclusive(side):
     assert trace.status == "inconclusive"
     assert trace.evidence["too_small"]["min_side"] == rs.MIN_SIDE == 32
     assert "too small" in trace.summary
+
+
+def _smooth_volume(seed: int, n: int = 32) -> np.ndarray:
+    rng = np.random.default_rng(seed)
+    base = np.abs(synth.phantom((96, 96), seed=seed))
+    z = np.linspace(-1, 1, n)
+    return (np.stack([base * (1 - 0.3 * zz ** 2) for zz in z])
+            + 0.02 * rng.standard_normal((n, 96, 96)))
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+def test_through_plane_reslicing_by_two_is_found(seed):
+    """A volume resliced 2x along its slice axis (scipy.ndimage.zoom, order 1) gets
+    resampling present with a ``slices`` factor of 2 from the through-plane test (the
+    periodicity at 1/2 cycle per slice; Popescu and Farid 2005: frequency 1/2 <->
+    factor 2); the same volume unresliced gets neither the call nor a slices factor."""
+    vol = _smooth_volume(seed)
+    resliced = ndimage.zoom(vol, (2.0, 1, 1), order=1).astype(np.float32)
+    t = trace_of("resampling", Volume.from_array(resliced))
+    assert t.status == "present"
+    assert t.estimates["slices"]["factor"] == pytest.approx(2.0, rel=0.05)
+    assert t.evidence["tests"]["through_plane"]["frequency"] == pytest.approx(0.5, abs=0.02)
+    raw = trace_of("resampling", Volume.from_array(vol.astype(np.float32)))
+    assert raw.status == "absent" and "slices" not in raw.estimates
+    assert raw.evidence["tests"]["through_plane"]["frequency"] is None
