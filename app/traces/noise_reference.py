@@ -70,6 +70,16 @@ OUTER_SHARE = 1 / 16
 TAPER = 4.0
 #: standard deviation (pixels) of the local mean removed before the periodogram
 HIGHPASS_SIGMA = 1.5
+#: Whether the support step uses the joint support-and-window fit to the background
+#: noise spectrum (magnitude images: support; every kind: the window;
+#: app/traces/support.py reads this switch). Off: measured on the sim2 dev split it
+#: does not yet beat the step locator (resized and JPEG archives and resliced volumes
+#: have low-passed background noise that it reads as a narrower support or a window;
+#: 1.25-1.5x padding of magnitude images is weak evidence). While it is off, the
+#: masked periodogram of magnitude and real images, which only that fit reads, is
+#: not computed (it was a third of the analysis time of a magnitude volume); the
+#: noise level, the block variances and the outer bands are.
+USE_NOISE_SPECTRUM = False
 
 
 @dataclass
@@ -283,6 +293,8 @@ def measure(volume: Volume, spectrum: sp.Spectrum, background: Any, *,
             if magnitude_values and not np.iscomplexobj(x):
                 x = x.astype(np.float64)
             variances.append(block_variances(x, mask))
+            if not (complex_like or USE_NOISE_SPECTRUM):
+                continue
             # masked periodogram: the background, its mean removed, over its area; for
             # real values of the intensity (squared magnitude summed over channels),
             # whose spectrum is the autocorrelation of the complex noise spectrum
@@ -322,6 +334,14 @@ def measure(volume: Volume, spectrum: sp.Spectrum, background: Any, *,
         return none("the background is constant (masked or replaced)")
     norm = 1.0 if volume.domain == "kspace" else float(rows * cols)
     floor = norm * pixel_var
+    if n_masks == 0:
+        # no periodogram taken (magnitude or real values while the noise-spectrum fit
+        # is off): the level and its uncertainty only
+        rse = float(np.sqrt(2.0 / dof) * 1.25 / np.sqrt(var.size))
+        return NoiseReference("background", value_kind, pixel_var, floor, rse,
+                              int(var.size), None, 0, outer, None,
+                              psd_of="complex" if complex_like else "intensity",
+                              mask_kernel=None, area=0.0, highpass_sigma=HIGHPASS_SIGMA)
     psd = sfft.fftshift(psd / max(1, n_masks))
     if complex_like:
         # the per-pixel variance is a multi-coil sum: psd in white units

@@ -42,6 +42,7 @@ from typing import Any
 
 import numpy as np
 
+from app.traces import noise_reference as noise_reference_mod
 from app.traces import spectrum as sp
 
 #: a step of at least this many dB (median over the band) marks an edge
@@ -596,11 +597,9 @@ def noise_axis_support(fit: NoiseShapeFit) -> AxisSupport:
 
 # ----- the joint support-and-window fit to the background noise spectrum -----------------
 #: Whether the support step uses the joint support-and-window fit to the background
-#: noise spectrum (magnitude images: support; every kind: the window). Off: measured on
-#: the sim2 dev split it does not yet beat the step locator (resized and JPEG archives
-#: and resliced volumes have low-passed background noise that it reads as a narrower
-#: support or a window; 1.25-1.5x padding of magnitude images is weak evidence).
-USE_NOISE_SPECTRUM = False
+#: noise spectrum: the switch lives with the noise reference, which skips the intensity
+#: periodogram of magnitude images while it is off (see there).
+USE_NOISE_SPECTRUM = noise_reference_mod.USE_NOISE_SPECTRUM
 #: false-alarm rate per dataset of the noise-spectrum tests (zero-fill, window)
 NOISE_FALSE_ALARM = 1e-3
 #: bins this close to DC (share of the axis) are left out of the noise-spectrum fit:
