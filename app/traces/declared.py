@@ -220,12 +220,28 @@ def _partial_fourier_rule(d: dict[str, Any], out: dict[str, Declaration]) -> Non
         return
     dirs = d.get("partial_fourier_direction") or []
     est = {"rows": {"fraction": None}, "cols": {"fraction": None}, "fill": None}
-    if pf:
+    ismrmrd = d.get("ismrmrd_encoding_limits") is not None
+    if pf and ismrmrd:
+        frac = d.get("partial_fourier_fraction")
+        est = dict(est, rows={"fraction": frac}, fill="zeros")
+        lim = d["ismrmrd_encoding_limits"] or {}
+        out["partial_fourier"] = Declaration(
+            "present", 0.9, f"ISMRMRD encoding limits: lines {lim.get('minimum')}.."
+            f"{lim.get('maximum')} about centre {lim.get('center')} (fraction {frac:g} of the "
+            "phase-encode extent)",
+            "ISMRMRD header (Inati et al. 2017): encodingLimits kspace_encoding_step_1",
+            {"partial_fourier": True, "fraction": frac}, est, origin="acquisition")
+    elif pf:
         src = "ScanOptions PFP/PFF" if d.get("scan_options") else "PartialFourier YES"
         out["partial_fourier"] = Declaration(
             "present", 0.9, f"{src} ({', '.join(dirs) or 'direction not given'})",
             "PS3.3 C.8.3.1 (ScanOptions), C.8.13.5 (MR Modifier: PartialFourier)",
             {"partial_fourier": True, "direction": dirs}, est, origin="acquisition")
+    elif ismrmrd:
+        out["partial_fourier"] = Declaration(
+            "absent", 0.85, "ISMRMRD encoding limits symmetric about the centre",
+            "ISMRMRD header (Inati et al. 2017): encodingLimits kspace_encoding_step_1",
+            {"partial_fourier": False}, est)
     else:
         out["partial_fourier"] = Declaration("absent", 0.85, "PartialFourier NO",
                                              "PS3.3 C.8.13.5 (MR Modifier)",

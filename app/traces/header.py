@@ -142,6 +142,8 @@ def provenance(volume: Volume) -> tuple[dict[str, Any], list[str]]:
         ``image_kind`` (``magnitude``, ``phase``, ``real``, ``imaginary`` or
         ``mixed``), ``mosaic`` and ``mosaic_images``, ``scan_options``,
         ``partial_fourier`` (bool) and ``partial_fourier_direction``,
+        ``ismrmrd_encoding_limits``, ``partial_fourier_fraction`` and
+        ``parallel_acceleration`` (ISMRMRD raw files),
         ``kspace_filtering`` (the Enhanced MR defined term), ``aux_file`` and
         ``descrip_resampling_words`` (NIfTI). :mod:`app.traces.declared` turns
         these into per-trace declarations.
@@ -161,6 +163,7 @@ def provenance(volume: Volume) -> tuple[dict[str, Any], list[str]]:
     _jpeg_tables(f, declared, notes)
     _component(f, declared, notes)
     _mr_modifiers(f, declared, notes)
+    _ismrmrd(f, declared, notes)
     _acquisition(f, declared, notes)
     _bits(f, declared, notes)
     _nifti(f, declared, notes)
@@ -276,6 +279,44 @@ def _mr_modifiers(f: dict[str, Any], d: dict[str, Any], notes: list[str]) -> Non
             notes.append(f"The header declares a k-space filter: KSpaceFiltering {kf}.")
         else:
             notes.append("The header declares no k-space filter (KSpaceFiltering NONE).")
+
+
+def _ismrmrd(f: dict[str, Any], d: dict[str, Any], notes: list[str]) -> None:
+    """What a raw k-space file's ISMRMRD header declares about its acquisition.
+
+    The encoding limits of ``kspace_encoding_step_1`` (the phase-encode lines)
+    against their centre give the acquired share of the symmetric extent: below
+    one, a partial-Fourier acquisition (an acquisition property); lines of the
+    encoded matrix outside the limits were padded by the file's writer; the
+    encoded over the reconstructed readout field of view is the readout
+    oversampling, kept in the file as acquired (Inati et al., MRM 77:411-421,
+    2017, the ISMRMRD header schema).
+    """
+    frac = f.get("partial_fourier_fraction")
+    if frac is None or d.get("partial_fourier") is not None:
+        return
+    d["ismrmrd_encoding_limits"] = f.get("ismrmrd_step1_limits")
+    if float(frac) < 0.99:
+        d["partial_fourier"] = True
+        d["partial_fourier_direction"] = ["PHASE"]
+        d["partial_fourier_fraction"] = float(frac)
+        notes.append(f"The ISMRMRD header's encoding limits declare a partial-Fourier "
+                     f"acquisition: {100 * float(frac):.1f} % of the symmetric phase-encode "
+                     "extent acquired.")
+    else:
+        d["partial_fourier"] = False
+        notes.append("The ISMRMRD header's encoding limits are symmetric about the k-space "
+                     "centre: no partial-Fourier acquisition.")
+    if f.get("padded_lines"):
+        notes.append(f"{int(f['padded_lines'])} encoded phase-encode lines lie outside the "
+                     "acquired limits: the file's writer padded them with zeros.")
+    if f.get("readout_oversampling") and float(f["readout_oversampling"]) > 1.01:
+        notes.append(f"The readout is oversampled {float(f['readout_oversampling']):g}x "
+                     "(encoded over reconstructed field of view) and kept as acquired.")
+    if f.get("parallel_acceleration") and float(f["parallel_acceleration"]) > 1:
+        d["parallel_acceleration"] = float(f["parallel_acceleration"])
+        notes.append(f"The ISMRMRD header declares parallel imaging at acceleration "
+                     f"{float(f['parallel_acceleration']):g} along the phase-encode lines.")
 
 
 def _compression(f: dict[str, Any], fmt: str, d: dict[str, Any], notes: list[str]) -> None:
