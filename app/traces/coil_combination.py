@@ -277,24 +277,33 @@ def _test_frames(volume: Volume, bg: Background, channel: int | None = None
     return frames[:len(masks)], masks
 
 
-def pair_differences(frames: list[np.ndarray], masks: list[np.ndarray]) -> np.ndarray:
-    """``|a - b| / sqrt(2)`` over non-overlapping horizontal pixel pairs inside the masks.
+def pair_difference_frames(frames: list[np.ndarray], masks: list[np.ndarray]
+                           ) -> tuple[list[np.ndarray], list[np.ndarray]]:
+    """``(a - b) / sqrt(2)`` of non-overlapping horizontal pixel pairs, with their masks
+    (a pair counts where both pixels lie in the mask); frames half as wide.
 
     For Gaussian noise (complex or signed real values) the difference of two samples
     with one sigma has that sigma again, so these values follow the same law as the
-    noise itself (Rayleigh for complex, half-normal for real), while a smooth signal
-    left in the background (the object's tails, stray signal) cancels; a sigma that
-    varies across the image still varies in them. Non-overlapping pairs keep white
-    noise's differences independent (common practice, no source).
+    noise itself (Rayleigh for complex, half-normal for real, in modulus), while a
+    smooth signal left in the background (the object's tails, stray signal) cancels;
+    a sigma that varies across the image still varies in them. Non-overlapping pairs
+    keep white noise's differences independent (common practice, no source).
     """
-    out = []
-    for f, m in zip(frames, masks, strict=True):
-        f = np.asarray(f)
-        m = np.asarray(m, bool)
-        a, b = f[:, 0:-1:2], f[:, 1::2]
-        ok = m[:, 0:-1:2] & m[:, 1::2]
-        out.append((np.abs(a - b)[ok] / np.sqrt(2.0)).ravel())
-    return np.concatenate(out) if out else np.zeros(0)
+    diffs = [(np.asarray(f)[:, 0:-1:2] - np.asarray(f)[:, 1::2]) / np.sqrt(2.0)
+             for f in frames]
+    dmasks = [np.asarray(m, bool)[:, 0:-1:2] & np.asarray(m, bool)[:, 1::2] for m in masks]
+    return diffs, dmasks
+
+
+def _masked_moduli(frames: list[np.ndarray], masks: list[np.ndarray]) -> np.ndarray:
+    return np.concatenate([np.abs(np.asarray(f))[np.asarray(m, bool)].ravel()
+                           for f, m in zip(frames, masks, strict=True)]) if frames \
+        else np.zeros(0)
+
+
+def pair_differences(frames: list[np.ndarray], masks: list[np.ndarray]) -> np.ndarray:
+    """``|a - b| / sqrt(2)`` over the pairs of :func:`pair_difference_frames`, pooled."""
+    return _masked_moduli(*pair_difference_frames(frames, masks))
 
 
 #: a pixel belongs to the object where the 5 x 5 box mean exceeds this multiple of the
@@ -348,24 +357,13 @@ def linear_combination_test(frames: list[np.ndarray], masks: list[np.ndarray], *
     *Statistical Methods for Research Workers*, 1925 (combined p-values;
     scipy.stats.combine_pvalues).
     """
-    if gaussian_noise and frames:
-        # complex or signed real values: both views are taken on pair differences, in
-        # which a smooth signal left in the background cancels (see pair_differences)
-        diffs = [(np.asarray(f)[:, 0:-1:2] - np.asarray(f)[:, 1::2]) / np.sqrt(2.0)
-                 for f in frames]
-        dmasks = [np.asarray(m, bool)[:, 0:-1:2] & np.asarray(m, bool)[:, 1::2]
-                  for m in masks]
-        ev = nl.noise_evenness(diffs, dmasks)
-    else:
-        ev = nl.noise_evenness(frames, masks)
-    kappa = ev.kappa if ev is not None else 1.0
     if gaussian_noise:
-        x = pair_differences(frames, masks) if frames else np.zeros(0)
-    else:
-        x = np.concatenate([np.abs(np.asarray(f))[np.asarray(m, bool)].ravel()
-                            for f, m in zip(frames, masks, strict=True)]) if frames \
-            else np.zeros(0)
-    z = nl.moment_ratio_z(x, law=law, kappa=kappa)
+        # complex or signed real values: both views are taken on pair differences, in
+        # which a smooth signal left in the background cancels
+        frames, masks = pair_difference_frames(frames, masks)
+    ev = nl.noise_evenness(frames, masks)
+    kappa = ev.kappa if ev is not None else 1.0
+    z = nl.moment_ratio_z(_masked_moduli(frames, masks), law=law, kappa=kappa)
     p_ratio = float(stats.norm.cdf(z)) if np.isfinite(z) else 1.0
     p_even = ev.p_value if ev is not None else 1.0
     p = float(stats.combine_pvalues([max(p_ratio, 1e-300), max(p_even, 1e-300)],
@@ -421,7 +419,6 @@ def _gaussian_trace(volume: Volume, bg: Background, kind: str) -> Trace:
         why = "the background is below 1e-5 of the signal peak (noise-free data)"
     if why is not None:
         estimates["noise_model"] = evidence["chosen"] = "unknown"
-        evidence["decision"] = _decision_record("minus_log10_p_no_combination", None)
         if separate:
             evidence["decision"] = _separate_record(volume.n_coils)
             summary = (f"The data hold {what}{coils}: nothing was combined; the noise law was "
@@ -449,11 +446,11 @@ def _gaussian_trace(volume: Volume, bg: Background, kind: str) -> Trace:
     lin = linear_combination_test(frames, masks, law=law, gaussian_noise=True)
     evidence.update(_linear_evidence(lin))
     p = lin["p_value"]
-    evidence["decision"] = _decision_record("minus_log10_p_no_combination", p)
+    evidence["decision"] = (_separate_record(volume.n_coils) if separate else
+                            _decision_record("minus_log10_p_no_combination", p))
     where = " of the inverse FFT" if volume.domain == "kspace" else ""
     sig = f"background{where} sigma {fit.sigma:.4g} (KS distance {fit.statistic:.3f})"
     if separate:
-        evidence["decision"] = _separate_record(volume.n_coils)
         summary = (f"The data hold {what}{coils}: nothing was combined (each channel is "
                    f"delivered on its own; {sig}).")
         return Trace(TRACE_ID, "absent", SEPARATE_CONFIDENCE, summary, estimates, evidence)
@@ -536,8 +533,11 @@ def analyse(volume: Volume, *, background: Background,
     frames, masks = _test_frames(volume, bg)
     mags = [np.abs(f) for f in frames]
     corners = object_free_corners(mags, masks)
-    lin = linear_combination_test(mags, corners, law="rayleigh")
-    if lin["blocks"] >= MIN_TILES:
+    # the corners' test is run only where they hold enough tiles; it is also set aside
+    # when it could not use them (too small a background to measure the correlation)
+    lin = (linear_combination_test(mags, corners, law="rayleigh")
+           if nl.count_whole_tiles(mags, corners) >= MIN_TILES else None)
+    if lin is not None and lin["blocks"] >= MIN_TILES:
         lin["tiles_from"] = "object-free corners"
     else:
         lin = linear_combination_test(mags, masks, law="rayleigh")

@@ -351,6 +351,29 @@ def _noise_profiles(prods: np.ndarray, pairs: np.ndarray, block: int
     return line_y / line_y[block - 1], line_x / line_x[block - 1]
 
 
+def whole_tiles(values: np.ndarray, mask: np.ndarray, block: int = 8) -> np.ndarray | None:
+    """Which ``block x block`` tiles (from the top-left corner) lie wholly in the mask
+    with finite values: a ``(rows // block, cols // block)`` boolean grid, or None
+    when the frame is smaller than one tile."""
+    ny, nx = (values.shape[0] // block) * block, (values.shape[1] // block) * block
+    if ny == 0 or nx == 0:
+        return None
+    mk = np.asarray(mask, bool) & np.isfinite(values)
+    return mk[:ny, :nx].reshape(ny // block, block, nx // block, block).all(axis=(1, 3))
+
+
+def count_whole_tiles(frames: list[np.ndarray], masks: list[np.ndarray], *,
+                      block: int = 8) -> int:
+    """The number of tiles :func:`noise_evenness` would use (``blocks``)."""
+    total = 0
+    for f, m in zip(frames, masks, strict=True):
+        a = np.asarray(f)
+        whole = whole_tiles(np.abs(a.astype(np.complex128 if np.iscomplexobj(a)
+                                            else np.float64)) ** 2, m, block)
+        total += int(whole.sum()) if whole is not None else 0
+    return total
+
+
 def noise_evenness(frames: list[np.ndarray], masks: list[np.ndarray], *,
                    block: int = 8) -> NoiseEvenness | None:
     """Test the noise power of a background for one common sigma (one-way analysis of variance).
@@ -427,14 +450,11 @@ def noise_evenness(frames: list[np.ndarray], masks: list[np.ndarray], *,
     for m, mask in zip(frames, masks, strict=True):
         y = np.abs(np.asarray(m, dtype=np.complex128 if np.iscomplexobj(m)
                               else np.float64)) ** 2
-        mk = np.asarray(mask, bool) & np.isfinite(y)
-        ny, nx = (y.shape[0] // B) * B, (y.shape[1] // B) * B
-        if ny == 0 or nx == 0:
+        whole = whole_tiles(y, mask, B)
+        if whole is None or not whole.any():
             continue
+        ny, nx = whole.shape[0] * B, whole.shape[1] * B
         t = y[:ny, :nx].reshape(ny // B, B, nx // B, B)
-        whole = mk[:ny, :nx].reshape(ny // B, B, nx // B, B).all(axis=(1, 3))
-        if not whole.any():
-            continue
         sel = t.transpose(0, 2, 1, 3)[whole].reshape(-1, n)
         tile_means.append(sel.mean(axis=1))
         tile_vars.append(sel.var(axis=1, ddof=1))
