@@ -334,31 +334,27 @@ def measure(volume: Volume, spectrum: sp.Spectrum, background: Any, *,
         return none("the background is constant (masked or replaced)")
     norm = 1.0 if volume.domain == "kspace" else float(rows * cols)
     floor = norm * pixel_var
-    if n_masks == 0:
-        # no periodogram taken (magnitude or real values while the noise-spectrum fit
-        # is off): the level and its uncertainty only
-        rse = float(np.sqrt(2.0 / dof) * 1.25 / np.sqrt(var.size))
-        return NoiseReference("background", value_kind, pixel_var, floor, rse,
-                              int(var.size), None, 0, outer, None,
-                              psd_of="complex" if complex_like else "intensity",
-                              mask_kernel=None, area=0.0, highpass_sigma=HIGHPASS_SIGMA)
-    psd = sfft.fftshift(psd / max(1, n_masks))
-    if complex_like:
-        # the per-pixel variance is a multi-coil sum: psd in white units
-        psd_white = psd / pixel_var
-    else:
-        # intensity: white noise gives a flat spectrum whose mean (Parseval) is the
-        # variance of the intensity; units of that mean away from DC
-        rr, cc = np.meshgrid(np.abs(np.arange(rows) - rows // 2),
-                             np.abs(np.arange(cols) - cols // 2), indexing="ij")
-        away = (rr > rows // 16) | (cc > cols // 16)
-        psd_white = psd / max(float(psd[away].mean()), 1e-300)
     rse = float(np.sqrt(2.0 / dof) * 1.25 / np.sqrt(var.size))
+    # no periodogram was taken for magnitude or real values while the noise-spectrum fit
+    # is off: the level and its uncertainty only (n_psd and area stay 0)
+    psd_white = mask_kernel = None
+    if n_masks:
+        psd = sfft.fftshift(psd / n_masks)
+        mask_kernel = sfft.fftshift(kernel / n_masks)
+        if complex_like:
+            # the per-pixel variance is a multi-coil sum: psd in white units
+            psd_white = psd / pixel_var
+        else:
+            # intensity: white noise gives a flat spectrum whose mean (Parseval) is the
+            # variance of the intensity; units of that mean away from DC
+            rr, cc = np.meshgrid(np.abs(np.arange(rows) - rows // 2),
+                                 np.abs(np.arange(cols) - cols // 2), indexing="ij")
+            away = (rr > rows // 16) | (cc > cols // 16)
+            psd_white = psd / max(float(psd[away].mean()), 1e-300)
     return NoiseReference("background", value_kind, pixel_var, floor, rse, int(var.size),
                           psd_white, n_psd, outer, None,
                           psd_of="complex" if complex_like else "intensity",
-                          mask_kernel=sfft.fftshift(kernel / max(1, n_masks)),
-                          area=area, highpass_sigma=HIGHPASS_SIGMA)
+                          mask_kernel=mask_kernel, area=area, highpass_sigma=HIGHPASS_SIGMA)
 
 
 def noise_reference_step(volume: Volume, scope: Any, spectrum: sp.Spectrum,

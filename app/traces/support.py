@@ -526,13 +526,14 @@ def support_step(spectrum: sp.Spectrum, noise_reference: Any = None) -> dict[str
     if spectrum.complex_input or spectrum.domain == "kspace":
         out = {ax: complex_axis_support(spectrum, i, noise_reference)
                for i, ax in enumerate(("rows", "cols"))}
-        if USE_NOISE_SPECTRUM:
+        if noise_reference_mod.USE_NOISE_SPECTRUM:
             for i, ax in enumerate(("rows", "cols")):
                 out[ax].noise_fit = noise_shape_fit(noise_reference, i)
         if "slices" in spectrum.profiles:
             out["slices"] = complex_axis_support(spectrum, 0, noise_reference, slices=True)
         return out
-    fits = {ax: noise_shape_fit(noise_reference if USE_NOISE_SPECTRUM else None, i)
+    fits = {ax: noise_shape_fit(noise_reference if noise_reference_mod.USE_NOISE_SPECTRUM
+                               else None, i)
             for i, ax in enumerate(("rows", "cols"))}
     misfit = [f for f in fits.values() if f is not None and f.dispersion > FAMILY_DISPERSION]
     if all(f is not None for f in fits.values()) and not misfit:
@@ -596,10 +597,9 @@ def noise_axis_support(fit: NoiseShapeFit) -> AxisSupport:
 
 
 # ----- the joint support-and-window fit to the background noise spectrum -----------------
-#: Whether the support step uses the joint support-and-window fit to the background
-#: noise spectrum: the switch lives with the noise reference, which skips the intensity
-#: periodogram of magnitude images while it is off (see there).
-USE_NOISE_SPECTRUM = noise_reference_mod.USE_NOISE_SPECTRUM
+# Whether the support step uses the joint support-and-window fit to the background
+# noise spectrum is noise_reference.USE_NOISE_SPECTRUM (one switch: the noise reference
+# skips the intensity periodogram of magnitude images while it is off).
 #: false-alarm rate per dataset of the noise-spectrum tests (zero-fill, window)
 NOISE_FALSE_ALARM = 1e-3
 #: bins this close to DC (share of the axis) are left out of the noise-spectrum fit:
