@@ -116,16 +116,21 @@ class AxisFit:
 
     @property
     def margin_db(self) -> float:
-        """By how much (dB) the fit passes the least of its three call conditions.
+        """By how much (dB) the fit passes the least of its three call conditions
+        (:func:`call_margins`); the fit is called when it is not negative."""
+        return float(min(call_margins(self.rms_plain_db, self.rms_window_db,
+                                      self.attenuation_db)))
 
-        ``rms_window < RATIO * rms_plain`` is ``gain > (1 - RATIO) * rms_plain``, so
-        every condition reads as a gain or attenuation over a level in dB; the fit is
-        called when the least margin is not negative (one statistic, one threshold,
-        which the calibration map can read whatever the call).
-        """
-        gain = self.rms_plain_db - self.rms_window_db
-        return float(min(gain - MIN_GAIN_DB, gain - (1.0 - RATIO) * self.rms_plain_db,
-                         self.attenuation_db - MIN_ATTENUATION_DB))
+
+def call_margins(rms_plain: float, rms_window: float, attenuation: float
+                 ) -> tuple[float, float, float]:
+    """The window call's three conditions as margins in dB, each passed when positive
+    or zero: the gain over ``MIN_GAIN_DB``; ``RATIO * rms_plain - rms_window`` (the
+    same as the gain over ``(1 - RATIO) * rms_plain``; passed strictly); the
+    attenuation at 90 % of the support over ``MIN_ATTENUATION_DB``. One statistic, one
+    threshold, which the calibration map can read whatever the call."""
+    return (rms_plain - rms_window - MIN_GAIN_DB, RATIO * rms_plain - rms_window,
+            attenuation - MIN_ATTENUATION_DB)
 
 
 def _fit_models(k: np.ndarray, L: np.ndarray, w2: np.ndarray
@@ -215,8 +220,8 @@ def fit_axis(lines_db: np.ndarray, half_support: float, *, axis: str, scale_free
     fam, par, s = labels[best]
     u90 = 0.9 / s
     att = float(-20 * np.log10(max(window_curve(fam, par, np.array([u90]))[0], 1e-6)))
-    called = (rms[best] < RATIO * plain_rms[0] and plain_rms[0] - rms[best] >= MIN_GAIN_DB
-              and att >= MIN_ATTENUATION_DB)
+    gain_m, ratio_m, att_m = call_margins(float(plain_rms[0]), float(rms[best]), att)
+    called = ratio_m > 0 and gain_m >= 0 and att_m >= 0
     others = [r for r, lab in zip(rms, labels, strict=True) if lab[0] != fam and np.isfinite(r)]
     margin = float(min(others) - rms[best]) if others else float("inf")
     return AxisFit(axis, fam if called else None, par if called else None, s,

@@ -192,11 +192,11 @@ def analyse_volume(
                           max_frames=max_frames, options=options, progress=said)
     traces_obj, seconds, steps = result.traces, result.seconds, result.steps
     facts = steps["header"]
-    # the pixel calls get their calibrated probabilities first; then header and pixels
-    # meet in each trace (the reconciler weighs the calibrated pixel call against what
-    # the header declares); blank inputs become inconclusive
-    # one observation two steps explain equally (attribution.py) is not decided; the
-    # calibration maps were fitted on the calls this rule lets through
+    # 1. one observation two steps explain equally (attribution.py) is not decided; the
+    #    calibration maps were fitted on the calls this rule lets through
+    # 2. the pixel calls get their calibrated probabilities
+    # 3. header and pixels meet in each trace (the reconciler weighs the calibrated pixel
+    #    call against what the header declares); blank inputs become inconclusive
     traces_obj = attribute(traces_obj)
     traces_obj = {tid: calibrated(t) for tid, t in traces_obj.items()}
     traces_obj, joined = reconcile(traces_obj, facts, volume)
